@@ -1,0 +1,1 @@
+"""Design goals, one module each, registered by name (filled by the search stage)."""
