@@ -1,0 +1,90 @@
+"""Command-line subcommands, one module each, plus small helpers they share.
+
+Each module ``optgrade/commands/<name>.py`` exposes
+
+- ``add_parser(subparsers) -> argparse.ArgumentParser``: registers the
+  subcommand (with --help text);
+- ``run(args) -> int``: does the work and returns the exit status.
+
+:mod:`optgrade.cli` imports the modules listed in :data:`COMMAND_NAMES` that exist. Input errors
+are raised as :class:`optgrade.errors.StudyError`; the command line prints their messages and
+exits with status 2. Use the helpers below so that every subcommand reports bad input the same way.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from optgrade.errors import StudyError
+from optgrade.units import UnitError, parse_quantity
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import Study
+
+__all__ = [
+    "COMMAND_NAMES",
+    "add_study_argument",
+    "open_study",
+    "parse_quantity_arg",
+    "quantity_type",
+]
+
+#: Subcommands in the order they appear in ``optgrade --help``.
+COMMAND_NAMES: tuple[str, ...] = ("check", "bands", "trace", "search", "export", "verify")
+
+
+def parse_quantity_arg(text: str | None, dimension: str, option_name: str) -> float:
+    """Parse a command-line quantity such as ``--height "8 mm"`` into an SI float.
+
+    Parameters
+    ----------
+    text
+        The option's text, e.g. ``"8 mm"``, ``"150 kHz"``.
+    dimension
+        Expected dimension name ("length", "frequency", "mass", ... see
+        :data:`optgrade.units.DIMENSIONS`).
+    option_name
+        The option as the user typed it, e.g. ``"--height"``; it names the field in the message.
+
+    Returns
+    -------
+    float
+        Value in SI (degrees for angles).
+
+    Raises
+    ------
+    StudyError
+        With one message ``--option: reason``; the command line exits with status 2.
+    """
+    try:
+        return parse_quantity(text, dimension)
+    except UnitError as exc:
+        raise StudyError([f"{option_name}: {exc}"]) from None
+
+
+def quantity_type(dimension: str, option_name: str):
+    """An argparse ``type=`` callable that parses a quantity (errors become StudyError, exit 2)."""
+
+    def _convert(text: str) -> float:
+        return parse_quantity_arg(text, dimension, option_name)
+
+    _convert.__name__ = f"{dimension} quantity"
+    return _convert
+
+
+def add_study_argument(parser: argparse.ArgumentParser) -> None:
+    """Add the positional ``STUDY`` argument (path to a study TOML file)."""
+    parser.add_argument("study", metavar="STUDY", help="study file (TOML with units)")
+
+
+def open_study(path: str | Path) -> Study:
+    """Load and validate a study file for a subcommand.
+
+    Raises :class:`StudyError` (messages ``path: field.path: reason``) on any defect; the
+    command line prints them and exits with status 2.
+    """
+    from optgrade.study import load_study
+
+    return load_study(path)
