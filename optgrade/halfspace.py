@@ -1,0 +1,230 @@
+"""The elastic half-space: Rayleigh function, Rayleigh root and vertical surface compliance.
+
+Conventions (physics.md section 2): time dependence exp(-i w t), z into the solid, vertical load
+and displacement positive into the solid, SI units throughout.
+
+Outgoing branch (physics.md section 3): alpha = sqrt(xi^2 - kL^2) with Re alpha >= 0, taken as
+-i sqrt(kL^2 - xi^2) (principal root) inside the cone. The choice between the two forms is made on
+Re xi^2 against Re kL^2 (resp. kT^2), so the same expression continues analytically when a
+complex Bloch wavenumber moves off the real axis (leaky modes live on the improper sheet of the
+radiating harmonics; see `optgrade.lattice`).
+
+Material damping of the substrate: both Lame moduli carry the factor (1 - i eta), so the complex
+speeds are c (1 - i eta)^(1/2); with exp(-i w t) this makes Im k > 0 (decay): energy is absorbed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+from numpy.typing import ArrayLike
+from scipy.optimize import brentq
+
+__all__ = [
+    "Substrate",
+    "rayleigh_function",
+    "rayleigh_speed",
+    "surface_compliance",
+    "vertical_wavenumber",
+]
+
+
+def rayleigh_speed(cl: float, ct: float) -> float:
+    """Exact Rayleigh-wave speed cR (m/s) of an isotropic elastic half-space.
+
+    Solves the Rayleigh equation (2 - x)^2 = 4 sqrt(1 - x) sqrt(1 - x ct^2/cl^2), x = cR^2/ct^2,
+    on 0 < x < 1 with a bracketing root finder (Lord Rayleigh 1885; J. D. Achenbach, *Wave
+    Propagation in Elastic Solids*, 1973, section 5.11).
+
+    Parameters
+    ----------
+    cl, ct : float
+        Compressional and shear speed (m/s), cl > ct > 0.
+
+    Returns
+    -------
+    float
+        cR in m/s, 0 < cR < ct.
+    """
+    cl = float(cl)
+    ct = float(ct)
+    if not (ct > 0 and cl > ct):
+        raise ValueError(f"need cl > ct > 0, got cl={cl}, ct={ct}")
+    s = (ct / cl) ** 2
+
+    def f(x: float) -> float:
+        return (2.0 - x) ** 2 - 4.0 * np.sqrt(1.0 - x) * np.sqrt(1.0 - s * x)
+
+    x = brentq(f, 1e-6, 1.0, xtol=1e-15, rtol=1e-15, maxiter=200)
+    return ct * float(np.sqrt(x))
+
+
+@dataclass(frozen=True)
+class Substrate:
+    """Isotropic elastic half-space.
+
+    Attributes
+    ----------
+    density : float
+        Mass density rho (kg/m^3).
+    cl, ct : float
+        Compressional and shear wave speeds (m/s).
+    loss_factor : float
+        Loss factor eta of both Lame moduli (complex modulus M (1 - i eta)), dimensionless.
+    """
+
+    density: float
+    cl: float
+    ct: float
+    loss_factor: float = 0.0
+
+    def __post_init__(self) -> None:
+        if not (self.density > 0):
+            raise ValueError(f"density must be positive, got {self.density}")
+        if not (self.ct > 0 and self.cl > self.ct):
+            raise ValueError(f"need cl > ct > 0, got cl={self.cl}, ct={self.ct}")
+        if not (0.0 <= self.loss_factor < 1.0):
+            raise ValueError(f"loss_factor must be in [0, 1), got {self.loss_factor}")
+
+    @property
+    def mu(self) -> float:
+        """Shear modulus mu = rho cT^2 (Pa), real part."""
+        return self.density * self.ct**2
+
+    @property
+    def poisson(self) -> float:
+        """Poisson ratio nu = (cL^2 - 2 cT^2) / (2 (cL^2 - cT^2)), dimensionless."""
+        return (self.cl**2 - 2.0 * self.ct**2) / (2.0 * (self.cl**2 - self.ct**2))
+
+    @cached_property
+    def cr(self) -> float:
+        """Rayleigh speed (m/s), exact root of the Rayleigh equation (lossless speeds)."""
+        return rayleigh_speed(self.cl, self.ct)
+
+    @property
+    def complex_factor(self) -> complex:
+        """Modulus factor (1 - i eta) of the complex moduli (dimensionless)."""
+        return complex(1.0, -self.loss_factor)
+
+    @property
+    def complex_speeds(self) -> tuple[complex, complex]:
+        """Complex speeds (cL, cT) * (1 - i eta)^(1/2) (m/s)."""
+        f = np.sqrt(self.complex_factor)
+        return complex(self.cl * f), complex(self.ct * f)
+
+    @property
+    def complex_mu(self) -> complex:
+        """Complex shear modulus mu (1 - i eta) (Pa)."""
+        return self.mu * self.complex_factor
+
+
+def vertical_wavenumber(xi2: ArrayLike, k2: ArrayLike) -> np.ndarray:
+    """Vertical wavenumber sqrt(xi^2 - k^2) on the outgoing branch (1/m).
+
+    Parameters
+    ----------
+    xi2 : array_like, complex
+        Squared horizontal wavenumber xi^2 (1/m^2).
+    k2 : array_like, complex
+        Squared bulk wavenumber kL^2 or kT^2 (1/m^2), Im k2 >= 0 for a lossy solid.
+
+    Returns
+    -------
+    ndarray, complex
+        sqrt(xi^2 - k^2) where Re xi^2 >= Re k^2, and -i sqrt(k^2 - xi^2) (principal roots) inside
+        the cone (physics.md section 3). On the real xi axis Re >= 0 (decaying or downgoing); off
+        the axis the same expression is the analytic continuation used for leaky roots.
+    """
+    xi2 = np.asarray(xi2, dtype=complex)
+    k2 = np.asarray(k2, dtype=complex)
+    d = xi2 - k2
+    inside = d.real < 0.0
+    return np.where(inside, -1j * np.sqrt(-d), np.sqrt(d))
+
+
+def _rayleigh_q(xi2: np.ndarray, kl2: np.ndarray, kt2: np.ndarray) -> tuple:
+    alpha = vertical_wavenumber(xi2, kl2)
+    beta = vertical_wavenumber(xi2, kt2)
+    a = (2.0 * xi2 - kt2) ** 2
+    b = 4.0 * xi2 * alpha * beta
+    direct = a - b
+    # Rationalised form (a^2 - b^2)/(a + b) with the exact polynomial a^2 - b^2: used where the
+    # direct difference cancels (xi >> k), so the static limit keeps full precision.
+    num = (
+        16.0 * xi2**3 * (kl2 - kt2)
+        + 8.0 * xi2**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
+        - 8.0 * xi2 * kt2**3
+        + kt2**4
+    )
+    den = a + b
+    use_rational = np.abs(den) >= np.abs(a)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(use_rational, num / np.where(use_rational, den, 1.0), direct)
+    return r, alpha
+
+
+def rayleigh_function(xi: ArrayLike, w: ArrayLike, cl: complex, ct: complex) -> np.ndarray:
+    """Rayleigh function R(xi) = (2 xi^2 - kT^2)^2 - 4 xi^2 alpha beta (1/m^4).
+
+    Parameters
+    ----------
+    xi : array_like
+        Horizontal wavenumber (1/m); real or complex.
+    w : array_like
+        Angular frequency (rad/s); broadcast against xi.
+    cl, ct : float or complex
+        Compressional and shear speeds (m/s); complex for a lossy solid.
+
+    Returns
+    -------
+    ndarray, complex
+        R on the outgoing branch. Its real zero at xi = w / cR is the Rayleigh equation
+        (Achenbach 1973, section 5.11).
+    """
+    xi = np.asarray(xi)
+    w = np.asarray(w)
+    kl2 = (w / cl) ** 2
+    kt2 = (w / ct) ** 2
+    r, _ = _rayleigh_q(np.asarray(xi * xi, dtype=complex), kl2, kt2)
+    return r
+
+
+def compliance_sq(xi2: ArrayLike, w: ArrayLike, substrate: Substrate) -> np.ndarray:
+    """Surface compliance G as a function of xi^2 (m/Pa per unit wavenumber area); see below."""
+    cl, ct = substrate.complex_speeds
+    w = np.asarray(w, dtype=float)
+    kl2 = (w / cl) ** 2
+    kt2 = (w / ct) ** 2
+    xi2 = np.asarray(xi2, dtype=complex)
+    r, alpha = _rayleigh_q(xi2, kl2, kt2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return -alpha * kt2 / (substrate.complex_mu * r)
+
+
+def surface_compliance(xi: ArrayLike, w: ArrayLike, substrate: Substrate) -> np.ndarray:
+    """Vertical surface compliance G(xi, w) of the half-space, outgoing branch.
+
+    G = - alpha kT^2 / (mu R(xi)) relates the vertical surface displacement to the vertical
+    surface traction in the wavenumber domain (physics.md section 3). The same expression serves
+    a 2-D line load (xi = horizontal wavenumber) and a 3-D point load (xi = |2-D wavevector|).
+
+    Parameters
+    ----------
+    xi : array_like
+        Horizontal wavenumber (1/m), real or complex, broadcast against w.
+    w : array_like
+        Angular frequency (rad/s).
+    substrate : Substrate
+        The half-space; its loss factor makes the moduli complex.
+
+    Returns
+    -------
+    ndarray, complex
+        G in m/Pa x (1/m^2 or 1/m) i.e. displacement per unit transformed traction. Static limit
+        (w -> 0 or xi -> inf): (1 - nu)/(mu |xi|) (Flamant / Boussinesq; K. L. Johnson, *Contact
+        Mechanics*, 1985). Im G >= 0 where the load radiates (power flows into the solid).
+    """
+    xi = np.asarray(xi)
+    return compliance_sq(xi * xi, w, substrate)

@@ -1,0 +1,223 @@
+"""Base dynamic stiffness of surface resonators (physics.md section 4).
+
+Z(w) is the vertical force the resonator applies to the surface per unit vertical base
+displacement, both positive into the solid, for time dependence exp(-i w t). A rigid mass gives
+Z = M w^2 > 0.
+
+Material damping: complex Young's modulus E (1 - i eta). With exp(-i w t) the power flowing from
+the surface into the resonator is (w / 2) |u|^2 Im Z, and this sign convention gives Im Z >= 0
+for eta > 0 (energy absorbed; tested in tests/test_resonators.py).
+
+Thin-rod (axial) theory only: valid while the rod diameter is small against the bar wavelength
+(flag d > lambda_r / 5); bending modes, which couple to horizontal motion, are not represented.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike
+from scipy.optimize import brentq
+
+__all__ = [
+    "Rod",
+    "oscillator_stiffness",
+    "rod_compliance",
+    "rod_resonances",
+    "rod_stiffness",
+    "is_thin_rod",
+]
+
+
+@dataclass(frozen=True)
+class Rod:
+    """Cylindrical rod (pin, post) standing on the surface, axial motion only.
+
+    Attributes
+    ----------
+    youngs_modulus : float
+        Young's modulus E (Pa).
+    density : float
+        Mass density rho_r (kg/m^3).
+    diameter : float
+        Rod diameter d (m); the contact disc has radius d / 2.
+    loss_factor : float
+        Loss factor eta of the complex modulus E (1 - i eta), dimensionless.
+    """
+
+    youngs_modulus: float
+    density: float
+    diameter: float
+    loss_factor: float = 0.0
+
+    def __post_init__(self) -> None:
+        for name in ("youngs_modulus", "density", "diameter"):
+            if not (getattr(self, name) > 0):
+                raise ValueError(f"{name} must be positive, got {getattr(self, name)}")
+        if not (0.0 <= self.loss_factor < 1.0):
+            raise ValueError(f"loss_factor must be in [0, 1), got {self.loss_factor}")
+
+    @property
+    def area(self) -> float:
+        """Cross-section area A = pi d^2 / 4 (m^2)."""
+        return float(np.pi * self.diameter**2 / 4.0)
+
+    @property
+    def bar_speed(self) -> float:
+        """Bar (rod) speed c_r = sqrt(E / rho_r) (m/s), lossless."""
+        return float(np.sqrt(self.youngs_modulus / self.density))
+
+    @property
+    def radius(self) -> float:
+        """Contact radius r = d / 2 (m)."""
+        return 0.5 * self.diameter
+
+
+def _rod_parts(w, rod: Rod, height, head_mass):
+    """Return numerator and denominator of Z = EAk (sin + q cos) / (cos - q sin)."""
+    w = np.asarray(w, dtype=float)
+    height = np.asarray(height, dtype=float)
+    head_mass = np.asarray(head_mass, dtype=float)
+    e_c = rod.youngs_modulus * complex(1.0, -rod.loss_factor)
+    # E A k_r = A sqrt(E rho) w  (impedance-like factor, N/m)
+    eak = rod.area * np.sqrt(e_c * rod.density) * w
+    kr = w * np.sqrt(rod.density / e_c)
+    phase = kr * height
+    s, c = np.sin(phase), np.cos(phase)
+    # q = M w^2 / (E A k_r) = M w / (A sqrt(E rho)), finite at w = 0
+    qq = head_mass * w / (rod.area * np.sqrt(e_c * rod.density))
+    return eak * (s + qq * c), c - qq * s
+
+
+def rod_stiffness(
+    w: ArrayLike, rod: Rod, height: ArrayLike, head_mass: ArrayLike = 0.0
+) -> np.ndarray:
+    """Base dynamic stiffness Z(w) of an axial rod with an optional head mass (N/m).
+
+    Z = E A k_r (tan(k_r L) + q) / (1 - q tan(k_r L)), q = M w^2 / (E A k_r), k_r = w / c_r
+    (thin-rod theory, physics.md section 4; written with sin/cos to stay finite).
+
+    Parameters
+    ----------
+    w : array_like
+        Angular frequency (rad/s).
+    rod : Rod
+        Rod material and diameter.
+    height : array_like
+        Rod height L (m), broadcast against w and head_mass.
+    head_mass : array_like
+        Head (tip) mass M (kg), default 0.
+
+    Returns
+    -------
+    ndarray, complex
+        Z in N/m; -> (m_rod + M) w^2 at low frequency; infinite at the resonances.
+    """
+    num, den = _rod_parts(w, rod, height, head_mass)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return num / den
+
+
+def rod_compliance(
+    w: ArrayLike, rod: Rod, height: ArrayLike, head_mass: ArrayLike = 0.0
+) -> np.ndarray:
+    """Inverse base stiffness 1/Z(w) of a rod with head mass (m/N); zero at the resonances.
+
+    Same model as `rod_stiffness`; this is the quantity the Bloch dispersion relation
+    1/Z = Sigma needs (physics.md section 5), finite at the rod resonances.
+    """
+    num, den = _rod_parts(w, rod, height, head_mass)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return den / num
+
+
+def oscillator_stiffness(
+    w: ArrayLike, mass: ArrayLike, w0: ArrayLike, loss_factor: float = 0.0
+) -> np.ndarray:
+    """Base stiffness of a lumped mass-spring oscillator (N/m).
+
+    Z = M w^2 w0^2 (1 - i eta) / (w0^2 (1 - i eta) - w^2) (physics.md section 4; the spring
+    carries the complex stiffness k (1 - i eta)).
+
+    Parameters
+    ----------
+    w : array_like
+        Angular frequency (rad/s).
+    mass : array_like
+        Oscillating mass M (kg).
+    w0 : array_like
+        Natural angular frequency sqrt(k / M) (rad/s).
+    loss_factor : float
+        Loss factor eta of the spring.
+    """
+    w = np.asarray(w, dtype=float)
+    w02 = np.asarray(w0, dtype=float) ** 2 * complex(1.0, -loss_factor)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.asarray(mass) * w**2 * w02 / (w02 - w**2)
+
+
+def rod_resonances(
+    height: float,
+    diameter: float,
+    youngs_modulus: float,
+    density: float,
+    head_mass: float = 0.0,
+    n_modes: int = 1,
+) -> np.ndarray:
+    """Axial resonance frequencies of a base-excited rod with a free (or mass-loaded) top (Hz).
+
+    The base is held (the surface displacement is the input), so the resonances are the poles of
+    Z: without head mass f_n = (2n - 1) c_r / (4 L); with head mass M the roots of
+    (k L) tan(k L) = m_rod / M (axial bar with tip mass, R. D. Blevins, *Formulas for Natural
+    Frequency and Mode Shape*, 1979).
+
+    Parameters
+    ----------
+    height, diameter : float
+        Rod height L and diameter d (m).
+    youngs_modulus, density : float
+        Rod modulus E (Pa) and density (kg/m^3).
+    head_mass : float
+        Tip mass M (kg), default 0.
+    n_modes : int
+        Number of modes returned.
+
+    Returns
+    -------
+    ndarray
+        The first n_modes resonance frequencies (Hz), increasing.
+    """
+    if not (height > 0 and diameter > 0 and youngs_modulus > 0 and density > 0):
+        raise ValueError("height, diameter, youngs_modulus and density must be positive")
+    if head_mass < 0:
+        raise ValueError("head_mass must be >= 0")
+    c = float(np.sqrt(youngs_modulus / density))
+    n = np.arange(1, int(n_modes) + 1)
+    if head_mass == 0.0:
+        x = (2 * n - 1) * np.pi / 2.0
+    else:
+        m_rod = density * np.pi * diameter**2 / 4.0 * height
+        ratio = m_rod / head_mass
+        # one root of x tan x = ratio in each ((n-1) pi, (n-1) pi + pi/2)
+        x = np.array(
+            [
+                brentq(
+                    lambda t: t * np.sin(t) - ratio * np.cos(t),
+                    (k - 1) * np.pi + 1e-300,
+                    (k - 1) * np.pi + np.pi / 2.0,
+                    xtol=1e-14,
+                )
+                for k in n
+            ]
+        )
+    return x * c / (2.0 * np.pi * height)
+
+
+def is_thin_rod(freq: ArrayLike, rod: Rod) -> np.ndarray:
+    """Whether thin-rod theory holds: d <= lambda_r / 5 with lambda_r = c_r / f (bool array).
+
+    Rule of thumb (common practice, stated in physics.md section 4).
+    """
+    freq = np.asarray(freq, dtype=float)
+    return rod.diameter <= rod.bar_speed / np.maximum(freq, 1e-300) / 5.0
