@@ -1,0 +1,379 @@
+"""Adiabatic (WKB) propagation of a Rayleigh wave along a graded resonator row (physics.md s. 6).
+
+For every frequency the march starts at the entry resonator (x = 0) with unit incident surface
+power and follows one local Bloch branch cell by cell:
+
+1. **Branch choice.** The branch that exists at the entry cell; the lower (surface) branch
+   first, the upper branch (above the rod resonance) only where the lower one has no root. If
+   neither exists the entry cell is in a local gap and the wave is reflected at x = 0.
+2. **Entry step.** The change from the bare surface (Rayleigh wavenumber kR) to the array's
+   first cell reflects ``R0 = ((K1' - kR) / (K1' + kR))^2`` of the power (normal-incidence
+   impedance-step estimate with the real parts of the wavenumbers, wave impedance taken
+   proportional to the wavenumber; common practice for a first estimate of a mismatch, not a
+   published result for this geometry). It is applied once, on entry; repeated reflections
+   between the entry step and a turning point are neglected, and the far end is taken as
+   reflection-free.
+3. **Forward march.** Cell j (length a_j) keeps ``P_j = P_{j-1} exp(-2 K''_j a_j)``. The lost
+   power ``P_{j-1} - P_j`` is booked to the four radiation channels and ``absorbed`` in the
+   proportions ``LocalModes.shares`` give for that cell (shares are renormalised to sum to 1;
+   a cell that reports decay without any split books it to ``absorbed``). Its position is the
+   cell centre ``x_j + a_j / 2``; its angle is the cell's radiation angle.
+4. **Turning point.** The first cell whose continued branch has no root (``nan``: local gap)
+   turns the remaining power back as a surface wave at ``x`` of that cell. The returning wave
+   crosses the same cells again in reverse order with the same decay, still leaking. Channels
+   are named in the frame of the *incident* wave (+x): radiation that travels towards -x is
+   "backward" whoever produced it. A back-travelling wave's own forward (m = 0) harmonic
+   therefore counts as ``backward_*`` and its folded (m = -1) harmonic as ``forward_*``, with
+   the angle negated, so the angle's sign always matches the channel name (negative = pointing
+   back to the source).
+5. **Exit.** Power that reaches the far end is ``transmitted_surface``; power that comes back
+   out at x = 0 (entry step plus return path) is ``reflected_surface``.
+
+The fractions of the seven channels sum to 1 for every frequency by construction (telescoping
+products; checked to 1e-9 in the tests). Adiabaticity along the forward path:
+``eps_j = |K_{j+1} - K_j| / (a_j |K_j|^2)`` (physics.md section 6); ``eps_max`` is its largest
+value between cells that both carry the wave (0 when fewer than two do), and
+``is_adiabatic = eps_max <= 0.1``. Turning points themselves are not counted: total reflection
+there is the standard WKB turning-point result.
+
+The march (:func:`march`) only needs the arrays of a ``LocalModes`` (contract in DEVELOPERS.md),
+however they were produced: the fast surrogate, direct root solves, or hand-built toy dispersion
+in tests. It is vectorised over frequencies and cells (cumulative sums, no Python loops).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from optgrade.layout import Layout
+
+__all__ = [
+    "CHANNELS",
+    "RADIATING",
+    "ADIABATIC_LIMIT",
+    "Trace",
+    "march",
+    "trace",
+    "trace_study",
+]
+
+#: The seven channels every frequency's power is split into (DEVELOPERS.md).
+CHANNELS: tuple[str, ...] = (
+    "transmitted_surface",
+    "reflected_surface",
+    "forward_shear",
+    "forward_compressional",
+    "backward_shear",
+    "backward_compressional",
+    "absorbed",
+)
+
+#: Order of ``LocalModes.shares`` along its second axis (the last one is ``absorbed``).
+RADIATING: tuple[str, ...] = (
+    "forward_shear",
+    "forward_compressional",
+    "backward_shear",
+    "backward_compressional",
+)
+
+#: eps above this marks a result outside the adiabatic model's validity (physics.md s. 6).
+ADIABATIC_LIMIT = 0.1
+
+# a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
+_SWAP = np.array([2, 3, 0, 1, 4])
+
+
+class _Modes(Protocol):
+    k: np.ndarray
+    shares: np.ndarray
+    angle: np.ndarray
+
+
+@dataclass(frozen=True)
+class Trace:
+    """Where the power of a Rayleigh wave entering a layout goes, frequency by frequency.
+
+    Attributes
+    ----------
+    frequency : ndarray, shape (n_freq,)
+        Frequency (Hz).
+    fractions : dict[str, ndarray]
+        Power fraction per channel (dimensionless, 0..1); the seven sum to 1 per frequency.
+    position : dict[str, ndarray]
+        Power-weighted position (m) along the row where each channel receives its power; nan
+        where it gets nothing. ``transmitted_surface`` leaves at ``layout.length``;
+        ``reflected_surface`` is weighted between the entry step (0) and the turning point.
+    angle : dict[str, ndarray]
+        Power-weighted mean angle from the surface normal (deg), negative = pointing back to
+        the source; nan where the channel gets nothing. Surface channels are +90 (transmitted)
+        and -90 (reflected); ``absorbed`` is always nan.
+    eps_max : ndarray
+        Largest adiabaticity parameter on the forward path (dimensionless).
+    is_adiabatic : ndarray of bool
+        ``eps_max <= 0.1``.
+    branch : ndarray of int
+        Branch followed (0 lower, 1 upper, -1 none: entry cell in a gap).
+    turning_position : ndarray
+        Position of the turning point (m), nan where the wave is not turned back.
+    entry_reflection : ndarray
+        Part of the reflected power due to the entry impedance step.
+    phase : ndarray
+        Accumulated phase sum K'_j a_j of the transmitted wave (rad); nan where nothing is
+        transmitted.
+    """
+
+    frequency: np.ndarray
+    fractions: dict[str, np.ndarray]
+    position: dict[str, np.ndarray]
+    angle: dict[str, np.ndarray]
+    eps_max: np.ndarray
+    is_adiabatic: np.ndarray
+    branch: np.ndarray
+    turning_position: np.ndarray
+    entry_reflection: np.ndarray
+    phase: np.ndarray
+
+    def total(self) -> np.ndarray:
+        """Sum of all channel fractions per frequency (1 up to rounding)."""
+        return np.sum([self.fractions[c] for c in CHANNELS], axis=0)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict (lists, ``None`` for nan) with the trace.json keys."""
+
+        def clean(a: np.ndarray) -> list:
+            return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, float)]
+
+        return {
+            "frequency_hz": clean(self.frequency),
+            "fractions": {c: clean(self.fractions[c]) for c in CHANNELS},
+            "position_m": {c: clean(self.position[c]) for c in CHANNELS},
+            "angle_deg": {c: clean(self.angle[c]) for c in CHANNELS},
+            "eps_max": clean(self.eps_max),
+            "is_adiabatic": [bool(v) for v in self.is_adiabatic],
+            "branch": [int(v) for v in self.branch],
+            "turning_position_m": clean(self.turning_position),
+            "entry_reflection": clean(self.entry_reflection),
+        }
+
+
+def _weighted_mean(weight: np.ndarray, value: np.ndarray, axis: int) -> np.ndarray:
+    """Sum(w v) / sum(w) over ``axis`` ignoring non-finite values; nan where the weight is 0."""
+    ok = np.isfinite(value) & (weight > 0)
+    w = np.where(ok, weight, 0.0)
+    num = np.sum(w * np.where(ok, value, 0.0), axis=axis)
+    den = np.sum(w, axis=axis)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def march(
+    modes: _Modes,
+    x: ArrayLike,
+    spacing: ArrayLike,
+    freq: ArrayLike,
+    cr: float,
+) -> Trace:
+    """WKB march of a unit-power Rayleigh wave through cells with known local modes.
+
+    Parameters
+    ----------
+    modes : LocalModes
+        Object with ``k`` (complex, (2, n_cells, n_freq), Bloch wavenumber in 1/m, nan in a
+        local gap), ``shares`` ((2, 5, n_cells, n_freq), split of K'' among forward shear,
+        forward compressional, backward shear, backward compressional, absorbed) and ``angle``
+        ((2, 4, n_cells, n_freq), radiation angle from the normal in rad) as in DEVELOPERS.md.
+    x : array_like, shape (n_cells,)
+        Resonator positions (m), entry at 0.
+    spacing : array_like, shape (n_cells,)
+        Cell lengths a_j (m).
+    freq : array_like, shape (n_freq,)
+        Frequencies (Hz).
+    cr : float
+        Rayleigh speed of the bare substrate (m/s), for the entry impedance step.
+
+    Returns
+    -------
+    Trace
+    """
+    freq = np.atleast_1d(np.asarray(freq, dtype=float))
+    x = np.asarray(x, dtype=float)
+    a = np.asarray(spacing, dtype=float)
+    k = np.asarray(modes.k)
+    n_cells, n_freq = x.size, freq.size
+    if k.shape != (2, n_cells, n_freq):
+        raise ValueError(f"modes.k has shape {k.shape}, expected {(2, n_cells, n_freq)}")
+    shares = np.asarray(modes.shares, dtype=float)
+    angle = np.asarray(modes.angle, dtype=float)
+    if shares.shape != (2, 5, n_cells, n_freq) or angle.shape != (2, 4, n_cells, n_freq):
+        raise ValueError(
+            f"modes.shares/angle have shapes {shares.shape}/{angle.shape}, expected "
+            f"{(2, 5, n_cells, n_freq)}/{(2, 4, n_cells, n_freq)}"
+        )
+
+    # 1. branch chosen at the entry cell, then followed
+    exists = np.isfinite(k.real) & np.isfinite(k.imag)
+    branch = np.where(exists[0, 0], 0, np.where(exists[1, 0], 1, -1))
+    is_upper = branch == 1
+    kb = np.where(is_upper, k[1], k[0])  # (n_cells, n_freq)
+    sh = np.where(is_upper, shares[1], shares[0])  # (5, n_cells, n_freq)
+    ang = np.where(is_upper, angle[1], angle[0])  # (4, n_cells, n_freq)
+    is_valid = np.where(is_upper, exists[1], exists[0]) & (branch >= 0)
+    is_all = is_valid.all(axis=0)
+    n_path = np.where(is_all, n_cells, np.argmin(is_valid, axis=0))  # cells the wave crosses
+    in_path = np.arange(n_cells)[:, None] < n_path[None, :]
+    is_turning = n_path < n_cells
+
+    # 2. entry step
+    kr = 2.0 * np.pi * freq / cr
+    k1 = np.where(branch >= 0, kb[0].real, kr)
+    entry = np.where(branch >= 0, ((k1 - kr) / (k1 + kr)) ** 2, 1.0)
+    p_in = 1.0 - entry
+
+    # 3. forward march: losses as fractions of p_in
+    kim = np.where(in_path, np.clip(np.nan_to_num(kb.imag), 0.0, None), 0.0)
+    tau = 2.0 * kim * a[:, None]  # power decay exponent per cell
+    cum = np.cumsum(tau, axis=0)
+    total_tau = cum[-1]
+    gone = -np.expm1(-tau)  # 1 - exp(-tau), accurate for small tau
+    loss_fwd = np.exp(-(cum - tau)) * gone
+    # 4. return path from the turning point (same cells, reverse order)
+    p_turn = np.where(is_turning, np.exp(-total_tau), 0.0)
+    loss_ret = p_turn * np.exp(-(total_tau - cum)) * gone
+    loss_ret = np.where(in_path, loss_ret, 0.0)
+    back_out = p_turn * np.exp(-total_tau)
+    through = np.where(is_turning, 0.0, np.exp(-total_tau))
+
+    # split of the lost power among the five leaking channels
+    sh = np.where(np.isfinite(sh), np.clip(sh, 0.0, None), 0.0)
+    sh_sum = sh.sum(axis=0)
+    unit_absorbed = np.zeros((5, 1, 1))
+    unit_absorbed[4] = 1.0
+    sh = np.where(sh_sum > 0, sh / np.where(sh_sum > 0, sh_sum, 1.0), unit_absorbed)
+    w_fwd = sh * (p_in * loss_fwd)  # (5, n_cells, n_freq)
+    w_ret = sh[_SWAP] * (p_in * loss_ret)
+    weight = w_fwd + w_ret
+    leaked = weight.sum(axis=1)  # (5, n_freq)
+
+    centre = (x + 0.5 * a)[:, None]
+    pos_leak = _weighted_mean(weight, np.broadcast_to(centre, weight.shape), axis=1)
+    ang_ret = -ang[_SWAP[:4]]
+    ang_w = np.concatenate([w_fwd[:4], w_ret[:4]], axis=1)
+    ang_v = np.degrees(np.concatenate([ang, ang_ret], axis=1))
+    ang_leak = _weighted_mean(ang_w, ang_v, axis=1)
+
+    x_end = x[-1] + a[-1]
+    x_turn = np.where(is_turning, np.append(x, x_end)[n_path], np.nan)
+    reflected = entry + p_in * back_out
+    transmitted = p_in * through
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pos_refl = np.where(
+            reflected > 0,
+            np.nan_to_num(x_turn) * p_in * back_out / np.where(reflected > 0, reflected, 1.0),
+            np.nan,
+        )
+
+    fractions = {"transmitted_surface": transmitted, "reflected_surface": reflected}
+    position = {
+        "transmitted_surface": np.where(transmitted > 0, x_end, np.nan),
+        "reflected_surface": pos_refl,
+    }
+    angles = {
+        "transmitted_surface": np.where(transmitted > 0, 90.0, np.nan),
+        "reflected_surface": np.where(reflected > 0, -90.0, np.nan),
+    }
+    for c, name in enumerate((*RADIATING, "absorbed")):
+        fractions[name] = leaked[c]
+        position[name] = pos_leak[c]
+        angles[name] = ang_leak[c] if c < 4 else np.full(n_freq, np.nan)
+    fractions = {c: fractions[c] for c in CHANNELS}
+    position = {c: position[c] for c in CHANNELS}
+    angles = {c: angles[c] for c in CHANNELS}
+
+    # adiabaticity on the forward path
+    if n_cells >= 2:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            eps = np.abs(np.diff(kb, axis=0)) / (a[:-1, None] * np.abs(kb[:-1]) ** 2)
+        is_pair = in_path[1:] & np.isfinite(eps)
+        eps_max = np.max(np.where(is_pair, eps, 0.0), axis=0)
+    else:
+        eps_max = np.zeros(n_freq)
+
+    phase = np.where(
+        is_turning, np.nan, np.sum(np.where(in_path, np.nan_to_num(kb.real), 0.0) * a[:, None], 0)
+    )
+    return Trace(
+        frequency=freq,
+        fractions=fractions,
+        position=position,
+        angle=angles,
+        eps_max=eps_max,
+        is_adiabatic=eps_max <= ADIABATIC_LIMIT,
+        branch=branch.astype(np.int8),
+        turning_position=np.where(branch < 0, 0.0, x_turn),
+        entry_reflection=entry,
+        phase=phase,
+    )
+
+
+def _rayleigh_speed_of(surrogate: Any) -> float:
+    """Rayleigh speed (m/s) of the substrate behind a surrogate (duck-typed lookup)."""
+    for path in ("cr", "substrate.cr", "substrate_cr"):
+        obj = surrogate
+        try:
+            for part in path.split("."):
+                obj = getattr(obj, part)
+        except AttributeError:
+            continue
+        if obj is not None and np.isfinite(float(obj)):
+            return float(obj)
+    raise AttributeError("surrogate does not expose the substrate's Rayleigh speed (cr)")
+
+
+def trace(
+    layout: Layout,
+    surrogate: Any,
+    freq: ArrayLike,
+    *,
+    cr: float | None = None,
+) -> Trace:
+    """Channel fractions of a layout over frequency (the propagation stage's main entry).
+
+    Parameters
+    ----------
+    layout : Layout
+        The graded row (SI).
+    surrogate : object
+        Anything with ``local_modes(height, spacing, head_mass, freq) -> LocalModes`` (the fast
+        surrogate, or a direct solver with the same method).
+    freq : array_like
+        Frequencies (Hz).
+    cr : float, optional
+        Rayleigh speed of the substrate (m/s); read from the surrogate when omitted.
+
+    Returns
+    -------
+    Trace
+    """
+    freq = np.atleast_1d(np.asarray(freq, dtype=float))
+    modes = surrogate.local_modes(layout.height, layout.spacing, layout.head_mass, freq)
+    speed = _rayleigh_speed_of(surrogate) if cr is None else float(cr)
+    return march(modes, layout.x, layout.spacing, freq, speed)
+
+
+def study_frequencies(study: Any) -> np.ndarray:
+    """The study's frequency grid: ``goal.n_frequencies`` points evenly over ``goal.band`` (Hz)."""
+    lo, hi = (float(v) for v in study.goal.band)
+    return np.linspace(lo, hi, int(study.goal.n_frequencies))
+
+
+def trace_study(study: Any, layout: Layout, surrogate: Any = None) -> Trace:
+    """Trace a layout over the study's goal band, building the study's surrogate if needed."""
+    if surrogate is None:
+        from optgrade.surrogate import surrogate_for_study
+
+        surrogate = surrogate_for_study(study)
+    return trace(layout, surrogate, study_frequencies(study), cr=float(study.substrate.cr))

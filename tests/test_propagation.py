@@ -1,0 +1,205 @@
+"""WKB march along a graded row (optgrade.propagation), physics.md section 6.
+
+Two groups of checks:
+
+* The march fed with hand-built local modes (toy dispersion with a known answer), so that the
+  bookkeeping is checked against closed forms independent of the dispersion stage:
+  - constant attenuation K'': transmitted power exp(-2 K'' L) (exponential decay of power for a
+    uniform attenuation constant; any wave text, e.g. J. D. Achenbach, *Wave Propagation in
+    Elastic Solids*, 1973, attenuation of harmonic waves);
+  - a turning point returns all remaining power (total reflection at a WKB turning point: C. M.
+    Bender and S. A. Orszag, *Advanced Mathematical Methods for Scientists and Engineers*,
+    1978, ch. 10, connection formulas);
+  - the entry step reflects ((K1 - kR) / (K1 + kR))^2 (normal-incidence power reflection at an
+    impedance step, e.g. L. E. Kinsler et al., *Fundamentals of Acoustics*, from memory; the
+    impedance ~ wavenumber identification is our modelling choice, documented in the module).
+* The march fed with the project's dispersion stage (surrogate / band solver): see
+  tests/test_propagation_physics.py.
+"""
+
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from optgrade.layout import layout_from_cells
+from optgrade.propagation import CHANNELS, march
+
+CR = 2900.0  # m/s, an aluminium-like Rayleigh speed (physics.md section 3, from memory)
+
+
+def _modes(k_lower, k_upper=None, shares=None, angle=None):
+    """LocalModes-like object from (n_cells, n_freq) arrays of the two branches."""
+    k_lower = np.asarray(k_lower, dtype=complex)
+    k_upper = np.full_like(k_lower, np.nan) if k_upper is None else np.asarray(k_upper, complex)
+    n, f = k_lower.shape
+    if shares is None:
+        shares = np.zeros((2, 5, n, f))
+        shares[:, 0] = 1.0  # all leakage to forward shear
+    if angle is None:
+        angle = np.zeros((2, 4, n, f))
+        angle[:, 0] = np.radians(30.0)
+        angle[:, 1] = np.radians(20.0)
+        angle[:, 2] = np.radians(-40.0)
+        angle[:, 3] = np.radians(-25.0)
+    return SimpleNamespace(k=np.stack([k_lower, k_upper]), shares=shares, angle=angle)
+
+
+def test_constant_attenuation_transmits_exp_minus_2_kpp_L():
+    freq = np.linspace(10e3, 100e3, 7)
+    lay = layout_from_cells(np.full(40, 5e-3), np.linspace(3e-3, 4e-3, 40), 1e-3)
+    kr = 2 * np.pi * freq / CR
+    kpp = 0.8  # 1/m
+    k = np.broadcast_to(kr + 1j * kpp, (40, freq.size))  # K' = kR: no entry step
+    shares = np.zeros((2, 5, 40, freq.size))
+    shares[:, 0] = 0.6
+    shares[:, 4] = 0.4
+    tr = march(_modes(k, shares=shares), lay.x, lay.spacing, freq, CR)
+    expected = np.exp(-2 * kpp * lay.length)
+    np.testing.assert_allclose(tr.fractions["transmitted_surface"], expected, rtol=1e-13)
+    np.testing.assert_allclose(tr.fractions["forward_shear"], 0.6 * (1 - expected), rtol=1e-12)
+    np.testing.assert_allclose(tr.fractions["absorbed"], 0.4 * (1 - expected), rtol=1e-12)
+    np.testing.assert_allclose(tr.fractions["reflected_surface"], 0.0, atol=1e-15)
+    np.testing.assert_allclose(tr.total(), 1.0, atol=1e-12)
+    np.testing.assert_allclose(tr.angle["forward_shear"], 30.0, rtol=1e-12)
+    # power-weighted position of the leak: independent loop over cells
+    p, num, den = 1.0, 0.0, 0.0
+    for xj, aj in zip(lay.x, lay.spacing, strict=True):
+        lost = p * (1 - np.exp(-2 * kpp * aj))
+        num += lost * (xj + aj / 2)
+        den += lost
+        p -= lost
+    np.testing.assert_allclose(tr.position["forward_shear"], num / den, rtol=1e-12)
+    np.testing.assert_allclose(tr.phase, kr * lay.length, rtol=1e-12)
+    assert tr.is_adiabatic.all() and np.all(tr.branch == 0)
+
+
+def _toy_slowing(x, freq, f0, kpp):
+    """Toy lower branch K = kR / sqrt(1 - (f / f0(x))^2) + i K'', no root where f >= f0(x)."""
+    ratio = freq[None, :] / f0[:, None]
+    kr = 2 * np.pi * freq[None, :] / CR
+    with np.errstate(invalid="ignore", divide="ignore"):
+        k = kr / np.sqrt(1 - ratio**2) + 1j * kpp
+    return np.where(ratio < 1, k, np.nan + 0j)
+
+
+def test_turning_point_returns_power_and_books_back_channels():
+    n = 50
+    lay = layout_from_cells(np.full(n, 5e-3), 2e-3, 1e-3)
+    f0 = np.linspace(200e3, 100e3, n)  # local cut-off falls along the row
+    freq = np.linspace(60e3, 180e3, 25)
+    kpp = 0.5
+    k = _toy_slowing(lay.x, freq, f0, kpp)
+    tr = march(_modes(k), lay.x, lay.spacing, freq, CR)
+    np.testing.assert_allclose(tr.total(), 1.0, atol=1e-12)
+
+    j_turn = np.argmax(f0[:, None] <= freq[None, :], axis=0)
+    is_turned = (f0[:, None] <= freq[None, :]).any(axis=0)
+    x_t = np.where(is_turned, lay.x[j_turn], np.nan)
+    np.testing.assert_array_equal(np.isnan(tr.turning_position), ~is_turned)
+    np.testing.assert_allclose(tr.turning_position[is_turned], x_t[is_turned], rtol=1e-12)
+
+    kr = 2 * np.pi * freq / CR
+    k1 = k[0].real
+    r0 = ((k1 - kr) / (k1 + kr)) ** 2
+    one_way = np.exp(-2 * kpp * x_t)
+    # forward leakage -> forward_shear, return leakage of the same harmonic -> backward_shear
+    t = tr.fractions
+    np.testing.assert_allclose(t["reflected_surface"][is_turned],
+                               (r0 + (1 - r0) * one_way**2)[is_turned], rtol=1e-12)
+    np.testing.assert_allclose(t["forward_shear"][is_turned],
+                               ((1 - r0) * (1 - one_way))[is_turned], rtol=1e-12)
+    np.testing.assert_allclose(t["backward_shear"][is_turned],
+                               ((1 - r0) * one_way * (1 - one_way))[is_turned], rtol=1e-12)
+    np.testing.assert_allclose(tr.angle["backward_shear"][is_turned], -30.0, rtol=1e-12)
+    np.testing.assert_allclose(t["transmitted_surface"][is_turned], 0.0, atol=0)
+    full = np.exp(-2 * kpp * lay.length)
+    np.testing.assert_allclose(t["transmitted_surface"][~is_turned],
+                               ((1 - r0) * full)[~is_turned], rtol=1e-12)
+    # turning positions move towards the entry as the frequency rises
+    assert np.all(np.diff(tr.turning_position[is_turned]) <= 0)
+    # the slowing wave's K changes fastest just before the cut-off: eps largest near it
+    assert tr.eps_max[is_turned].max() > tr.eps_max[~is_turned].max()
+
+
+def test_branch_choice_and_entry_gap():
+    n, freq = 10, np.array([1e3, 2e3, 3e3])
+    lay = layout_from_cells(np.full(n, 1e-2), 1e-2, 1e-3)
+    kr = 2 * np.pi * freq / CR
+    lower = np.broadcast_to(1.5 * kr + 0.0j, (n, 3)).copy()
+    upper = np.broadcast_to(0.9 * kr + 0.1j, (n, 3)).copy()
+    lower[:, 1] = np.nan  # f2: lower branch absent -> follow upper
+    lower[:, 2] = np.nan
+    upper[:, 2] = np.nan  # f3: no branch at the entry: reflected at x = 0
+    tr = march(_modes(lower, upper), lay.x, lay.spacing, freq, CR)
+    assert list(tr.branch) == [0, 1, -1]
+    np.testing.assert_allclose(tr.fractions["transmitted_surface"][0], 1 - (0.5 / 2.5) ** 2)
+    np.testing.assert_allclose(tr.entry_reflection[1], (0.1 / 1.9) ** 2, rtol=1e-12)
+    assert tr.fractions["reflected_surface"][2] == 1.0
+    assert tr.position["reflected_surface"][2] == 0.0
+    np.testing.assert_allclose(tr.total(), 1.0, atol=1e-12)
+
+
+def test_eps_rises_when_the_same_change_is_packed_into_fewer_cells():
+    """eps_j = |dK| / (a K^2) (physics.md s. 6): a steeper grading gives a larger eps."""
+    freq = np.array([50e3])
+    kr = 2 * np.pi * freq / CR
+    eps = []
+    for n in (80, 40, 20, 10):
+        lay = layout_from_cells(np.full(n, 5e-3), 2e-3, 1e-3)
+        k = (kr * np.linspace(1.0, 2.0, n))[:, None] + 0.0j  # same K change over n cells
+        eps.append(march(_modes(k), lay.x, lay.spacing, freq, CR).eps_max[0])
+        # closed form: max_j (kr / (n - 1)) / (a (kr s_j)^2) at s_j = 1 (first cell)
+        np.testing.assert_allclose(eps[-1], 1 / ((n - 1) * 2e-3 * kr[0]), rtol=1e-12)
+    assert all(e1 < e2 for e1, e2 in zip(eps, eps[1:], strict=False))
+
+
+@settings(max_examples=150, deadline=None)
+@given(
+    n=st.integers(2, 40),
+    n_freq=st.integers(1, 12),
+    seed=st.integers(0, 2**32 - 1),
+    gap_rate=st.floats(0, 0.6),
+    kpp_scale=st.sampled_from([0.0, 1e-3, 1.0, 1e3, 1e8]),
+)
+def test_fractions_are_a_partition_for_any_local_modes(n, n_freq, seed, gap_rate, kpp_scale):
+    """Invariant (physics.md s. 6): fractions in [0, 1], summing to 1 within 1e-9, no NaN."""
+    rng = np.random.default_rng(seed)
+    spacing = rng.uniform(1e-4, 1.0, n)
+    lay = layout_from_cells(rng.uniform(1e-3, 1, n), spacing, 1e-3)
+    freq = np.sort(rng.uniform(1.0, 1e6, n_freq))
+    k = rng.uniform(0.1, 10, (2, n, n_freq)) * (2 * np.pi * freq / CR) + 1j * kpp_scale * (
+        rng.uniform(-0.01, 1, (2, n, n_freq))  # small negatives: interpolation noise
+    )
+    k[rng.random((2, n, n_freq)) < gap_rate] = np.nan
+    shares = rng.uniform(0, 1, (2, 5, n, n_freq))
+    shares[rng.random(shares.shape) < 0.3] = 0.0
+    shares[rng.random(shares.shape) < 0.05] = np.nan
+    angle = rng.uniform(-np.pi / 2, np.pi / 2, (2, 4, n, n_freq))
+    angle[rng.random(angle.shape) < 0.2] = np.nan
+    tr = march(SimpleNamespace(k=k, shares=shares, angle=angle), lay.x, lay.spacing, freq, CR)
+    stack = np.array([tr.fractions[c] for c in CHANNELS])
+    assert np.isfinite(stack).all()
+    assert (stack >= 0).all() and (stack <= 1 + 1e-12).all()
+    np.testing.assert_allclose(stack.sum(axis=0), 1.0, rtol=0, atol=1e-9)
+    assert np.isfinite(tr.eps_max).all()
+    for c in CHANNELS:
+        has_power = tr.fractions[c] > 0
+        assert np.isfinite(tr.position[c][has_power]).all()
+        assert np.isnan(tr.position[c][~has_power]).all()
+        pos = tr.position[c][has_power]
+        assert (pos >= 0).all() and (pos <= lay.length * (1 + 1e-12)).all()
+    for c in ("forward_shear", "forward_compressional"):
+        a = tr.angle[c]
+        assert np.all(np.isnan(a) | (np.abs(a) <= 90 + 1e-9))
+
+
+def test_shape_mismatch_is_refused():
+    lay = layout_from_cells(np.full(5, 1e-2), 1e-2, 1e-3)
+    k = np.ones((5, 3), complex)
+    with pytest.raises(ValueError, match="modes.k has shape"):
+        march(_modes(k), lay.x, lay.spacing, np.ones(4), CR)
