@@ -1,0 +1,236 @@
+"""Figures of a traced layout, each drawn into a given matplotlib Axes.
+
+Used by ``optgrade trace`` and reusable by the search's figure sheet:
+
+- :func:`plot_elevation`: the row seen from the side (rods, head masses);
+- :func:`plot_local_dispersion`: local slowness K'/kR of each cell over frequency and position,
+  local gaps shaded, local rod resonance and Rayleigh zone-edge lines;
+- :func:`plot_channel_map`: where (position) each frequency's power leaves, coloured by channel,
+  marker area by fraction;
+- :func:`plot_fractions`: stacked channel fractions against frequency.
+
+Frequency and length units are picked for readability (Hz/kHz/MHz, mm/m); plots that share an
+axis use the same picks.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from matplotlib.axes import Axes
+from matplotlib.colors import ListedColormap
+from matplotlib.patches import Patch, Rectangle
+
+from optgrade.layout import Layout
+from optgrade.propagation import CHANNELS, Trace
+
+__all__ = [
+    "CHANNEL_COLOURS",
+    "CHANNEL_LABELS",
+    "frequency_unit",
+    "length_unit",
+    "plot_channel_map",
+    "plot_elevation",
+    "plot_fractions",
+    "plot_local_dispersion",
+]
+
+#: One colour per channel (colour-blind-friendly palette of eight, common practice).
+CHANNEL_COLOURS: dict[str, str] = {
+    "transmitted_surface": "#999999",
+    "reflected_surface": "#000000",
+    "forward_shear": "#56B4E9",
+    "forward_compressional": "#009E73",
+    "backward_shear": "#D55E00",
+    "backward_compressional": "#E69F00",
+    "absorbed": "#CC79A7",
+}
+
+CHANNEL_LABELS: dict[str, str] = {
+    "transmitted_surface": "transmitted (surface)",
+    "reflected_surface": "reflected (surface)",
+    "forward_shear": "forward shear",
+    "forward_compressional": "forward compressional",
+    "backward_shear": "backward shear",
+    "backward_compressional": "backward compressional",
+    "absorbed": "absorbed",
+}
+
+
+def frequency_unit(freq_max: float) -> tuple[float, str]:
+    """(scale, name) so that ``f / scale`` reads well for frequencies up to ``freq_max`` (Hz)."""
+    for scale, name in ((1e6, "MHz"), (1e3, "kHz")):
+        if freq_max >= 2 * scale:
+            return scale, name
+    return 1.0, "Hz"
+
+
+def length_unit(length_max: float) -> tuple[float, str]:
+    """(scale, name) so that ``x / scale`` reads well for lengths up to ``length_max`` (m)."""
+    return (1.0, "m") if length_max >= 2.0 else (1e-3, "mm")
+
+
+def plot_elevation(ax: Axes, layout: Layout, *, title: str | None = None) -> Axes:
+    """Side view of the row: each rod as a bar of its diameter and height, head masses on top.
+
+    Head masses are drawn as discs whose area is proportional to the mass (largest = 1.6 rod
+    diameters wide). Horizontal and vertical scales differ when the row is long.
+    """
+    s, unit = length_unit(max(layout.length, float(layout.height.max())))
+    x, h, d = layout.x / s, layout.height / s, layout.diameter / s
+    for xi, hi, di in zip(x, h, d, strict=True):
+        ax.add_patch(Rectangle((xi - di / 2, 0.0), di, hi, facecolor="#4d6a8a", edgecolor="none"))
+    if np.any(layout.head_mass > 0):
+        m = layout.head_mass / layout.head_mass.max()
+        ax.scatter(x, h, s=12 + 60 * m, c="#b3452c", zorder=3, label="head mass (area ~ kg)")
+        ax.legend(loc="upper right", fontsize=8, frameon=False)
+    span = layout.length / s
+    ax.axhline(0.0, color="#6b5b45", lw=2)
+    ax.fill_between([-0.05 * span, 1.05 * span], 0, -0.04 * h.max(), color="#d9cbb3", lw=0)
+    ax.set_xlim(-0.05 * span, 1.05 * span)
+    ax.set_ylim(-0.04 * h.max(), 1.18 * h.max())
+    ax.set_xlabel(f"position along the row x ({unit}), wave enters at x = 0")
+    ax.set_ylabel(f"height ({unit})")
+    ax.set_title(title or f"layout: {layout.n_resonators} resonators, length {span:.4g} {unit}")
+    return ax
+
+
+def plot_local_dispersion(
+    ax: Axes,
+    layout: Layout,
+    modes: Any,
+    freq: np.ndarray,
+    *,
+    cr: float,
+    rod_resonance: np.ndarray | None = None,
+    trace: Trace | None = None,
+    vmax: float = 3.0,
+) -> Axes:
+    """Local dispersion along the row: slowness K'/kR per cell and frequency.
+
+    Parameters
+    ----------
+    ax : Axes
+    layout : Layout
+    modes : LocalModes
+        Local modes of the layout's cells at ``freq`` (``k`` of shape (2, n_cells, n_freq)).
+    freq : ndarray
+        Frequencies (Hz).
+    cr : float
+        Rayleigh speed of the bare substrate (m/s).
+    rod_resonance : ndarray, optional
+        First resonance of each cell's rod (Hz), drawn as a line.
+    trace : Trace, optional
+        If given, the turning points are marked.
+    vmax : float
+        Upper end of the colour scale of K'/kR.
+
+    The lower branch is shown where it exists, the upper one elsewhere; cells where neither
+    exists (local gap) are shaded grey. The zone-edge line is the frequency cR / (2 a) at which
+    a wave at the Rayleigh speed reaches K = pi / a in that cell.
+    """
+    fs, funit = frequency_unit(float(np.max(freq)))
+    s, unit = length_unit(layout.length)
+    k = np.asarray(modes.k)
+    kr = 2 * np.pi * np.asarray(freq) / cr
+    k_show = np.where(np.isfinite(k[0]), k[0], k[1])
+    slowness = k_show.real / kr[None, :]
+    edges_x = np.append(layout.x, layout.length) / s
+    f = np.asarray(freq) / fs
+    edges_f = np.concatenate(([f[0] - (f[1] - f[0]) / 2 if f.size > 1 else f[0] * 0.99],
+                              (f[1:] + f[:-1]) / 2,
+                              [f[-1] + (f[-1] - f[-2]) / 2 if f.size > 1 else f[0] * 1.01]))
+    mesh = ax.pcolormesh(edges_x, edges_f, np.ma.masked_invalid(slowness.T), cmap="viridis",
+                         vmin=0.0, vmax=vmax, shading="flat", rasterized=True)
+    is_gap = ~np.isfinite(k[0]) & ~np.isfinite(k[1])
+    ax.pcolormesh(edges_x, edges_f, np.ma.masked_where(~is_gap.T, np.ones(is_gap.T.shape)),
+                  cmap=ListedColormap(["#c8c8c8"]), shading="flat", rasterized=True)
+    cb = ax.figure.colorbar(mesh, ax=ax, pad=0.01)
+    cb.set_label("local slowness K'/kR (1 = Rayleigh speed)")
+    xc = layout.cell_centre / s
+    handles = [Patch(color="#c8c8c8", label="local gap (no root)")]
+    if rod_resonance is not None:
+        (line,) = ax.plot(xc, np.asarray(rod_resonance) / fs, color="#d62828", ls="--",
+                          lw=1.6, label="rod resonance")
+        handles.append(line)
+    f_edge = cr / (2 * layout.spacing) / fs
+    if np.any(f_edge <= edges_f[-1]):
+        (edge,) = ax.plot(xc, f_edge, color="#ff9f1c", lw=1.6, ls="-.",
+                          label="zone edge cR/(2a)")
+        handles.append(edge)
+    else:
+        ax.text(0.01, 0.02, f"zone edge cR/(2a) above the band (>= {f_edge.min():.3g} {funit})",
+                transform=ax.transAxes, fontsize=8, color="w")
+    if trace is not None:
+        tp = trace.turning_position
+        ok = np.isfinite(tp) & (trace.branch >= 0)
+        if ok.any():
+            (pts,) = ax.plot(tp[ok] / s, trace.frequency[ok] / fs, "o", ms=2.5, color="#ffffff",
+                             mec="#222222", mew=0.4,
+                             label="turning point")
+            handles.append(pts)
+    ax.set_xlim(edges_x[0], edges_x[-1])
+    ax.set_ylim(edges_f[0], edges_f[-1])
+    ax.set_xlabel(f"position along the row x ({unit})")
+    ax.set_ylabel(f"frequency ({funit})")
+    ax.set_title("local dispersion along the row")
+    ax.legend(handles=handles, loc="upper right", fontsize=8, framealpha=0.85)
+    return ax
+
+
+def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None) -> Axes:
+    """Frequency against the position where power leaves, coloured by channel, sized by fraction.
+
+    Radiating channels and ``absorbed`` sit at their power-weighted position; the reflected
+    surface wave at its turning point (or at the entry), the transmitted one at the far end.
+    Marker area is proportional to the fraction (area 90 pt^2 = 100 %).
+    """
+    fs, funit = frequency_unit(float(np.max(trace.frequency)))
+    far = layout.length if layout is not None else np.nanmax(
+        [np.nanmax(np.append(p, 0.0)) for p in trace.position.values()])
+    s, unit = length_unit(float(far))
+    f = trace.frequency / fs
+    for c in CHANNELS:
+        frac = trace.fractions[c]
+        pos = trace.position[c]
+        show = (frac > 0.005) & np.isfinite(pos)
+        if not show.any():
+            continue
+        ax.scatter(pos[show] / s, f[show], s=90 * frac[show], color=CHANNEL_COLOURS[c],
+                   alpha=0.75, edgecolors="none", label=CHANNEL_LABELS[c])
+    if layout is not None:
+        ax.axvspan(0, layout.length / s, color="#eef2f6", zorder=0, lw=0)
+        ax.set_xlim(-0.05 * layout.length / s, 1.08 * layout.length / s)
+    ax.set_ylim(f.min(), f.max())
+    ax.set_xlabel(f"position where the power leaves x ({unit}); row shaded")
+    ax.set_ylabel(f"frequency ({funit})")
+    ax.set_title("channel map (marker area ~ fraction)")
+    leg = ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False,
+                    markerscale=1.0)
+    for h in leg.legend_handles:
+        h.set_sizes([40])
+    return ax
+
+
+def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None) -> Axes:
+    """Stacked channel fractions against frequency; frequencies with eps > 0.1 hatched."""
+    fs, funit = frequency_unit(float(np.max(trace.frequency)))
+    f = trace.frequency / fs
+    ys = [trace.fractions[c] for c in CHANNELS]
+    ax.stackplot(f, ys, colors=[CHANNEL_COLOURS[c] for c in CHANNELS],
+                 labels=[CHANNEL_LABELS[c] for c in CHANNELS], alpha=0.9, lw=0)
+    if goal_channel in trace.fractions:
+        ax.plot(f, trace.fractions[goal_channel], color="k", lw=1.2,
+                label=f"goal: {CHANNEL_LABELS[goal_channel]}")
+    bad = ~np.asarray(trace.is_adiabatic)
+    if bad.any():
+        ax.fill_between(f, 1.0, 1.06, where=bad, step="mid", facecolor="none", hatch="////",
+                        edgecolor="#444444", lw=0, label="eps > 0.1 (outside WKB validity)")
+    ax.set_xlim(f.min(), f.max())
+    ax.set_ylim(0, 1.06)
+    ax.set_xlabel(f"frequency ({funit})")
+    ax.set_ylabel("fraction of incident power")
+    ax.set_title("where the power goes")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    return ax

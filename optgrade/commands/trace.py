@@ -1,0 +1,213 @@
+"""``optgrade trace STUDY --layout TABLE.csv --out DIR``: where a layout sends the power.
+
+Reads the study and a resonator table, computes the local modes of every cell over the study's
+goal band with the fast surrogate, marches the Rayleigh wave along the row (WKB, physics.md
+section 6) and writes
+
+- ``DIR/trace.json``: ``frequency_hz``, ``fractions`` / ``position_m`` / ``angle_deg`` (one list
+  per channel, aligned with ``frequency_hz``, null where a channel gets nothing), ``eps_max``,
+  ``is_adiabatic``, and for site-scale studies a ``caution``;
+- ``DIR/elevation.png``, ``DIR/dispersion.png``, ``DIR/channel_map.png``,
+  ``DIR/fractions.png``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from optgrade.commands import add_study_argument, open_study
+from optgrade.errors import StudyError
+
+__all__ = ["SITE_CAUTION", "add_parser", "run", "run_trace"]
+
+#: Printed and written for site-scale studies (physics.md section 8).
+SITE_CAUTION = (
+    "CAUTION: simplified model (thin rods on a homogeneous elastic half-space, adiabatic "
+    "propagation); soil layering and soil-structure coupling are not represented. Any site "
+    "design must be verified by a qualified geotechnical/structural engineer and follow local "
+    "codes."
+)
+
+FIGURES = ("elevation.png", "dispersion.png", "channel_map.png", "fractions.png")
+
+
+def add_parser(subparsers: Any) -> argparse.ArgumentParser:
+    """Register ``optgrade trace``."""
+    parser = subparsers.add_parser(
+        "trace",
+        help="trace a layout: channel fractions, conversion positions and figures",
+        description=(
+            "March a Rayleigh wave along a resonator layout (adiabatic/WKB model with the fast "
+            "dispersion surrogate) over the study's goal band, and report where its power goes: "
+            "transmitted, reflected, converted to forward/backward shear or compressional bulk "
+            "waves, or absorbed. Writes DIR/trace.json and four figures."
+        ),
+    )
+    add_study_argument(parser)
+    parser.add_argument("--layout", required=True, metavar="TABLE.csv",
+                        help="resonator table (columns index, x_mm, height_mm, diameter_mm, "
+                             "head_mass_kg, height_tol_mm; '#' header lines allowed)")
+    parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    parser.add_argument("--model", choices=("lattice", "line"), default=None,
+                        help="lattice sum to use (default: the study's goal.model)")
+    parser.add_argument("--no-figures", action="store_true", help="write trace.json only")
+    parser.set_defaults(handler=run)
+    return parser
+
+
+def _write_json_atomic(path: Path, payload: dict) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(payload, fh, indent=1, allow_nan=False)
+            fh.write("\n")
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _save_atomic(fig: Any, path: Path) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".png", dir=path.parent)
+    os.close(fd)
+    try:
+        fig.savefig(tmp, dpi=130)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _rod_resonances(study: Any, layout: Any) -> np.ndarray | None:
+    """First axial resonance of each rod (Hz), None if the resonator module is unavailable."""
+    try:
+        from optgrade.resonators import rod_resonances
+    except ImportError:  # pragma: no cover
+        return None
+    r = study.resonator
+    return np.array([
+        rod_resonances(float(h), float(d), r.youngs_modulus, r.density, float(m))[0]
+        for h, d, m in zip(layout.height, layout.diameter, layout.head_mass, strict=True)
+    ])
+
+
+def _build_surrogate(study: Any, model: str | None) -> Any:
+    from optgrade.surrogate import surrogate_for_study
+
+    return surrogate_for_study(study) if model is None else surrogate_for_study(study, model=model)
+
+
+def run_trace(study: Any, layout: Any, out: Path, *, model: str | None = None,
+              is_figures: bool = True, console: Any = None) -> dict:
+    """Trace ``layout`` for ``study`` and write trace.json (+ figures) into ``out``.
+
+    Returns the JSON payload. The same function backs the command line.
+    """
+    from optgrade.propagation import march, study_frequencies
+
+    say = console.print if console is not None else (lambda *a, **k: None)
+    freq = study_frequencies(study)
+    status = console.status if console is not None else None
+    if status is not None:
+        with status("building / loading the dispersion tables ..."):
+            surrogate = _build_surrogate(study, model)
+    else:
+        surrogate = _build_surrogate(study, model)
+    modes = surrogate.local_modes(layout.height, layout.spacing, layout.head_mass, freq)
+    cr = float(study.substrate.cr)
+    tr = march(modes, layout.x, layout.spacing, freq, cr)
+
+    payload = tr.to_dict()
+    payload = {
+        "study": study.meta.name,
+        "n_resonators": layout.n_resonators,
+        "length_m": layout.length,
+        "model": model or getattr(study.goal, "model", None),
+        **payload,
+    }
+    is_site = getattr(study.meta, "scale", "bench") == "site"
+    if is_site:
+        payload["caution"] = SITE_CAUTION
+    out.mkdir(parents=True, exist_ok=True)
+    _write_json_atomic(out / "trace.json", payload)
+
+    if is_figures:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        from optgrade import _plot_trace as pt
+
+        goal = getattr(study.goal, "channel", None)
+        note = " (site scale: see caution in trace.json)" if is_site else ""
+        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
+        pt.plot_elevation(ax, layout, title=f"{study.meta.name}: layout elevation{note}")
+        _save_atomic(fig, out / "elevation.png")
+        plt.close(fig)
+
+        fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
+        pt.plot_local_dispersion(ax, layout, modes, freq, cr=cr,
+                                 rod_resonance=_rod_resonances(study, layout), trace=tr)
+        _save_atomic(fig, out / "dispersion.png")
+        plt.close(fig)
+
+        fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
+        pt.plot_channel_map(ax, tr, layout)
+        _save_atomic(fig, out / "channel_map.png")
+        plt.close(fig)
+
+        fig, ax = plt.subplots(figsize=(9, 4.5), layout="constrained")
+        pt.plot_fractions(ax, tr, goal_channel=goal if goal in tr.fractions else None)
+        _save_atomic(fig, out / "fractions.png")
+        plt.close(fig)
+
+    # summary
+    mean = {c: float(np.mean(v)) for c, v in tr.fractions.items()}
+    say(f"[bold]{study.meta.name}[/]: {layout.n_resonators} resonators, "
+        f"{freq.size} frequencies {freq[0]:.4g}-{freq[-1]:.4g} Hz")
+    for c, v in mean.items():
+        say(f"  band-mean {c:<24s} {v:7.3f}")
+    n_bad = int(np.sum(~tr.is_adiabatic))
+    say(f"  eps_max up to {float(np.max(tr.eps_max)):.3g}; {n_bad} of {freq.size} frequencies "
+        "above 0.1 (outside the adiabatic model's validity)")
+    if is_site:
+        say(f"[yellow]{SITE_CAUTION}[/]")
+    say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {len(FIGURES)} figures"))
+    return payload
+
+
+def run(args: argparse.Namespace) -> int:
+    """Entry point of ``optgrade trace``."""
+    from rich.console import Console
+
+    from optgrade.layout import TableError, read_table
+
+    study = open_study(args.study)
+    try:
+        layout = read_table(args.layout)
+    except TableError as exc:
+        raise StudyError([f"--layout: {m}" for m in exc.messages]) from None
+    except ValueError as exc:
+        raise StudyError([f"--layout: {args.layout}: {exc}"]) from None
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise StudyError([f"--out: {out} exists and is not a folder"])
+    d_study = float(study.resonator.diameter)
+    console = Console(stderr=False, highlight=False)
+    if not np.allclose(layout.diameter, d_study, rtol=1e-6):
+        console.print(f"[yellow]warning[/]: table diameters differ from the study's "
+                      f"{d_study * 1e3:.4g} mm; the dispersion tables use the study's diameter")
+    run_trace(study, layout, out, model=args.model, is_figures=not args.no_figures,
+              console=console)
+    return 0
