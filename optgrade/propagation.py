@@ -160,16 +160,6 @@ class Trace:
         }
 
 
-def _weighted_mean(weight: np.ndarray, value: np.ndarray, axis: int) -> np.ndarray:
-    """Sum(w v) / sum(w) over ``axis`` ignoring non-finite values; nan where the weight is 0."""
-    ok = np.isfinite(value) & (weight > 0)
-    w = np.where(ok, weight, 0.0)
-    num = np.sum(w * np.where(ok, value, 0.0), axis=axis)
-    den = np.sum(w, axis=axis)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
-
-
 def march(
     modes: _Modes,
     x: ArrayLike,
@@ -215,16 +205,19 @@ def march(
         )
 
     # 1. branch chosen at the entry cell, then followed
-    exists = np.isfinite(k.real) & np.isfinite(k.imag)
+    exists = np.isfinite(k)  # complex isfinite: both parts finite
     branch = np.where(exists[0, 0], 0, np.where(exists[1, 0], 1, -1))
     is_upper = branch == 1
-    kb = np.where(is_upper, k[1], k[0])  # (n_cells, n_freq)
-    sh = np.where(is_upper, shares[1], shares[0])  # (5, n_cells, n_freq)
-    ang = np.where(is_upper, angle[1], angle[0])  # (4, n_cells, n_freq)
-    is_valid = np.where(is_upper, exists[1], exists[0]) & (branch >= 0)
-    is_all = is_valid.all(axis=0)
-    n_path = np.where(is_all, n_cells, np.argmin(is_valid, axis=0))  # cells the wave crosses
-    in_path = np.arange(n_cells)[:, None] < n_path[None, :]
+    if is_upper.any():
+        kb = np.where(is_upper, k[1], k[0])  # (n_cells, n_freq)
+        sh = np.where(is_upper, shares[1], shares[0])  # (5, n_cells, n_freq)
+        ang = np.where(is_upper, angle[1], angle[0])  # (4, n_cells, n_freq)
+        is_valid = np.where(is_upper, exists[1], exists[0])
+    else:
+        kb, sh, ang, is_valid = k[0], shares[0], angle[0], exists[0]
+    is_valid = is_valid & (branch >= 0)
+    n_path = np.where(is_valid.all(axis=0), n_cells, np.argmin(is_valid, axis=0))
+    in_path = np.arange(n_cells)[:, None] < n_path[None, :]  # cells the wave crosses
     is_turning = n_path < n_cells
 
     # 2. entry step
@@ -233,37 +226,51 @@ def march(
     entry = np.where(branch >= 0, ((k1 - kr) / (k1 + kr)) ** 2, 1.0)
     p_in = 1.0 - entry
 
-    # 3. forward march: losses as fractions of p_in
-    kim = np.where(in_path, np.clip(np.nan_to_num(kb.imag), 0.0, None), 0.0)
-    tau = 2.0 * kim * a[:, None]  # power decay exponent per cell
+    # 3. forward march: power lost in each cell, as a fraction of p_in
+    kim = np.where(in_path, kb.imag, 0.0)
+    np.maximum(kim, 0.0, out=kim)  # tiny negative K'' (interpolation noise) -> no decay
+    tau = kim * (2.0 * a[:, None])  # power decay exponent per cell
     cum = np.cumsum(tau, axis=0)
     total_tau = cum[-1]
     gone = -np.expm1(-tau)  # 1 - exp(-tau), accurate for small tau
-    loss_fwd = np.exp(-(cum - tau)) * gone
+    loss_fwd = np.exp(tau - cum) * gone
     # 4. return path from the turning point (same cells, reverse order)
     p_turn = np.where(is_turning, np.exp(-total_tau), 0.0)
-    loss_ret = p_turn * np.exp(-(total_tau - cum)) * gone
-    loss_ret = np.where(in_path, loss_ret, 0.0)
+    with np.errstate(invalid="ignore"):
+        loss_ret = np.exp(cum - total_tau) * gone
+    loss_ret = np.where(in_path & (p_turn > 0), loss_ret * p_turn, 0.0)
     back_out = p_turn * np.exp(-total_tau)
     through = np.where(is_turning, 0.0, np.exp(-total_tau))
 
-    # split of the lost power among the five leaking channels
-    sh = np.where(np.isfinite(sh), np.clip(sh, 0.0, None), 0.0)
+    # split of the lost power among the five leaking channels: shares renormalised per cell
+    # (the division is applied to the (n_cells, n_freq) losses, not to the shares)
+    sh = np.where(sh > 0.0, sh, 0.0)  # nan and negatives -> 0
+    sh[np.isinf(sh)] = 0.0
     sh_sum = sh.sum(axis=0)
-    unit_absorbed = np.zeros((5, 1, 1))
-    unit_absorbed[4] = 1.0
-    sh = np.where(sh_sum > 0, sh / np.where(sh_sum > 0, sh_sum, 1.0), unit_absorbed)
-    w_fwd = sh * (p_in * loss_fwd)  # (5, n_cells, n_freq)
-    w_ret = sh[_SWAP] * (p_in * loss_ret)
-    weight = w_fwd + w_ret
-    leaked = weight.sum(axis=1)  # (5, n_freq)
-
+    is_unsplit = sh_sum <= 0
+    if is_unsplit.any():  # decay without a split: book it to absorbed
+        sh[4] += is_unsplit
+        sh_sum = sh_sum + is_unsplit
+    scale = p_in / sh_sum
+    w_f = loss_fwd * scale  # (n_cells, n_freq)
+    w_r = loss_ret * scale
     centre = (x + 0.5 * a)[:, None]
-    pos_leak = _weighted_mean(weight, np.broadcast_to(centre, weight.shape), axis=1)
-    ang_ret = -ang[_SWAP[:4]]
-    ang_w = np.concatenate([w_fwd[:4], w_ret[:4]], axis=1)
-    ang_v = np.degrees(np.concatenate([ang, ang_ret], axis=1))
-    ang_leak = _weighted_mean(ang_w, ang_v, axis=1)
+    lf, lr = np.einsum("cjf,jf->cf", sh, w_f), np.einsum("cjf,jf->cf", sh, w_r)
+    leaked = lf + lr[_SWAP]  # (5, n_freq)
+    xf = np.einsum("cjf,jf->cf", sh, w_f * centre)
+    xr = np.einsum("cjf,jf->cf", sh, w_r * centre)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pos_leak = np.where(leaked > 0, (xf + xr[_SWAP]) / leaked, np.nan)
+    # angles: a return-path contribution to channel c has the mirrored angle of channel SWAP[c]
+    is_angle = np.isfinite(ang)
+    sh4 = np.where(is_angle, sh[:4], 0.0)
+    sha = sh4 * np.where(is_angle, ang, 0.0)
+    af, ar = np.einsum("cjf,jf->cf", sha, w_f), np.einsum("cjf,jf->cf", sha, w_r)
+    df, dr = np.einsum("cjf,jf->cf", sh4, w_f), np.einsum("cjf,jf->cf", sh4, w_r)
+    swap4 = _SWAP[:4]
+    den = df + dr[swap4]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ang_leak = np.where(den > 0, np.degrees((af - ar[swap4]) / den), np.nan)
 
     x_end = x[-1] + a[-1]
     x_turn = np.where(is_turning, np.append(x, x_end)[n_path], np.nan)
