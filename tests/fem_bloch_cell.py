@@ -332,7 +332,7 @@ def build_cell(
 
     @LinearForm
     def mean_uy(v, w):
-        return v.value[1] / footprint
+        return v[1] / footprint
 
     coupling = asm(mean_uy, fbasis)
 

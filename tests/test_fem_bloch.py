@@ -1,0 +1,178 @@
+"""Independent finite-element check of the 2-D line dispersion model (issue 3, "Accuracy").
+
+The reference is a plane-strain Bloch cell assembled with the general-purpose finite-element
+library scikit-fem (tests/fem_bloch_cell.py; T. Gustafsson, G. D. McBain, J. Open Source Softw.
+5(52), 2369, 2020): substrate strip of one spacing, clamped bottom, Bloch-periodic sides, the
+resonator row as an axial bar coupled by uniform traction over its footprint. It shares no
+code with optgrade's dispersion engine (only the material numbers).
+
+Bench-scale cell (an invented bench rig): aluminium substrate cL = 6320 m/s, cT = 3130 m/s,
+rho = 2700 kg/m^3 and aluminium rods E = 70 GPa, rho_r = 2700 kg/m^3 (handbook values, from
+memory), rod diameter 1 mm, row pitch 3 mm, height 6 mm, spacing 4 mm; and the same cell with a
+20 mg head mass per rod.
+
+FE resolution used here (convergence and depth study in docs/fem-check.md): P2 triangles, 0.5 mm
+at the surface (29.6 elements per shear wavelength at the 212 kHz rod resonance), 3 mm deep
+down, four local refinements at the strip edges, strip depth 0.10 m = 6.8 shear wavelengths at
+212 kHz (7.0 Bloch wavelengths at the lowest K used).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from fem_bloch_cell import build_cell, rayleigh_speed_ratio, solve_cell
+from scipy.optimize import brentq
+
+# bench-scale cell, SI (handbook aluminium values from memory, see module docstring)
+RHO, CL, CT = 2700.0, 6320.0, 3130.0
+ROD_E, ROD_RHO, ROD_D = 70e9, 2700.0, 1e-3
+SPACING, ROW_PITCH, HEIGHT = 4e-3, 3e-3, 6e-3
+HEAD_MASS = 2e-5
+MESH = dict(h_surface=SPACING / 8, h_deep=3e-3, n_edge_refinements=4)
+DEPTH = 0.10
+
+#: Bloch wavenumbers (fractions of pi/a) on the lower branch, all below the gap
+K_ROD = np.pi / SPACING * np.array([0.4, 0.6, 0.7, 0.8, 0.9, 0.95, 1.0])
+K_HEAD = np.pi / SPACING * np.array([0.25, 0.3, 0.4, 0.6, 0.8, 0.9, 1.0])
+
+TOL_K = 0.02  # the issue's requirement: 2 % in K
+
+
+def _cell(head_mass: float, depth: float = DEPTH, **mesh):
+    opts = dict(MESH, **mesh)
+    return build_cell(density=RHO, cl=CL, ct=CT, spacing=SPACING, depth=depth,
+                      rod_modulus=ROD_E, rod_density=ROD_RHO, rod_diameter=ROD_D,
+                      rod_height=HEIGHT, row_pitch=ROW_PITCH, head_mass=head_mass, **opts)
+
+
+@pytest.fixture(scope="module")
+def fe_rod():
+    """FE lower-branch modes of the rod cell (no head mass)."""
+    return solve_cell(_cell(0.0), K_ROD)
+
+
+@pytest.fixture(scope="module")
+def fe_head():
+    """FE lower-branch modes of the rod cell with a 20 mg head mass."""
+    return solve_cell(_cell(HEAD_MASS), K_HEAD)
+
+
+def test_rayleigh_ratio_closed_form():
+    """The FE helper's Rayleigh root reproduces the exact value at nu = 0.25.
+
+    cR/cT = sqrt(2 - 2/sqrt(3)) = 0.919402 for cL = sqrt(3) cT (Lord Rayleigh 1885;
+    J. D. Achenbach, Wave Propagation in Elastic Solids, 1973).
+    """
+    assert rayleigh_speed_ratio(np.sqrt(3.0), 1.0) == pytest.approx(
+        np.sqrt(2.0 - 2.0 / np.sqrt(3.0)), abs=1e-9)
+    assert rayleigh_speed_ratio(np.sqrt(3.0), 1.0) == pytest.approx(0.919402, abs=1e-6)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("cl_over_ct", [np.sqrt(3.0), CL / CT])
+def test_bare_substrate_mode_on_rayleigh_line(cl_over_ct):
+    """Without resonators the cell's lowest mode is the Rayleigh wave, w = cR K.
+
+    Reference: Rayleigh equation (Lord Rayleigh 1885; Achenbach 1973): closed form
+    cR/cT = sqrt(2 - 2/sqrt(3)) at nu = 0.25, root of the secular equation for aluminium
+    (cL/cT = 6320/3130, handbook speeds from memory, cR/cT = 0.93315).
+    """
+    ct = CT
+    cl = cl_over_ct * ct
+    if np.isclose(cl_over_ct, np.sqrt(3.0)):
+        cr = ct * np.sqrt(2.0 - 2.0 / np.sqrt(3.0))
+    else:
+        cr = ct * rayleigh_speed_ratio(cl, ct)
+    model = build_cell(density=RHO, cl=cl, ct=ct, spacing=SPACING, depth=DEPTH,
+                       h_surface=SPACING / 8, h_deep=3e-3)
+    k = np.pi / SPACING * np.array([0.3, 0.5, 0.7, 1.0])
+    modes = solve_cell(model, k)
+    speed = 2.0 * np.pi * modes.lower / k
+    np.testing.assert_allclose(speed / cr, 1.0, rtol=2e-4, atol=0.0)
+    assert np.all(modes.surface_fraction[:, 0] > 0.95)
+
+
+@pytest.mark.slow
+def test_surface_mode_independent_of_depth(fe_rod):
+    """True surface modes do not move when the clamped strip is made twice as deep.
+
+    A box mode of the clamped strip would shift by roughly (H1/H2)^2; a surface mode decays as
+    exp(-sqrt(K^2 - kT^2) z) and must not shift beyond 1e-5 (physics of bound modes below the
+    shear line, e.g. Achenbach 1973, ch. 5).
+    """
+    deep = solve_cell(_cell(0.0, depth=2 * DEPTH), K_ROD[[0, 3, 6]])
+    np.testing.assert_allclose(deep.lower, fe_rod.lower[[0, 3, 6]], rtol=1e-5)
+    assert np.all(fe_rod.surface_fraction[:, 0] > 0.95)
+    # every lower-branch point lies below the shear line (bound) and below the rod resonance
+    assert np.all(2 * np.pi * fe_rod.lower < CT * K_ROD)
+
+
+@pytest.mark.slow
+def test_fe_mesh_converged(fe_rod):
+    """Halving the surface element size moves the FE lower branch by less than 1e-5 in f.
+
+    Self-convergence of the reference (measured table in docs/fem-check.md); the 2 % check
+    below needs far less, but a reference must be converged well beyond the tolerance.
+    """
+    fine = solve_cell(_cell(0.0, h_surface=SPACING / 16), K_ROD[[1, 4]])
+    np.testing.assert_allclose(fine.lower, fe_rod.lower[[1, 4]], rtol=1e-5)
+
+
+def _line_root_k(f, head_mass):
+    """Bloch wavenumber (1/m) of optgrade's line model at frequency f (Hz), lower branch."""
+    from optgrade.halfspace import Substrate
+    from optgrade.lattice import lattice_sum
+    from optgrade.resonators import Rod, rod_compliance
+
+    sub = Substrate(RHO, CL, CT)
+    rod = Rod(ROD_E, ROD_RHO, ROD_D)
+    w = 2.0 * np.pi * f
+
+    def det(k):
+        return np.real(rod_compliance(w, rod, HEIGHT, head_mass)
+                       - lattice_sum(k, w, sub, SPACING, ROW_PITCH, rod.radius, model="line"))
+
+    return brentq(det, w / sub.cr * (1 + 1e-9), np.pi / SPACING, xtol=1e-10)
+
+
+def _line_root_f(k, head_mass, f_guess):
+    """Frequency (Hz) of optgrade's line model at Bloch wavenumber k (1/m), lower branch."""
+    from optgrade.halfspace import Substrate
+    from optgrade.lattice import lattice_sum
+    from optgrade.resonators import Rod, rod_compliance
+
+    sub = Substrate(RHO, CL, CT)
+    rod = Rod(ROD_E, ROD_RHO, ROD_D)
+
+    def det(w):
+        return np.real(rod_compliance(w, rod, HEIGHT, head_mass)
+                       - lattice_sum(k, w, sub, SPACING, ROW_PITCH, rod.radius, model="line"))
+
+    w0 = 2 * np.pi * f_guess
+    return brentq(det, 0.8 * w0, min(1.2 * w0, sub.cr * k * (1 - 1e-9)), xtol=1e-6) / (2 * np.pi)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", ["rod", "head_mass"])
+def test_line_model_lattice_sum_matches_fe(case, fe_rod, fe_head):
+    """optgrade's line model D = 1/Z - Sigma_line has its lower root at the FE (K, f) points.
+
+    Issue 3 requirement: agreement within 2 % in K at >= 5 frequencies below the gap. The root
+    K_line at each FE frequency (points below the zone edge) and the frequency f_line at each
+    FE wavenumber (all points, the zone edge included) are found from `optgrade.lattice
+    .lattice_sum(model="line")` and `optgrade.resonators.rod_compliance`. The points are
+    chosen where the branch is far from the Rayleigh line, so the check discriminates.
+    """
+    modes, head = (fe_rod, 0.0) if case == "rod" else (fe_head, HEAD_MASS)
+    k_fe, f_fe = modes.bloch_k, modes.lower
+    below_edge = k_fe < np.pi / SPACING * (1 - 1e-9)
+    k_line = np.array([_line_root_k(f, head) for f in f_fe[below_edge]])
+    rel_k = np.abs(k_line / k_fe[below_edge] - 1.0)
+    assert below_edge.sum() >= 5
+    assert np.all(rel_k < TOL_K), rel_k
+    f_line = np.array([_line_root_f(k, head, f) for k, f in zip(k_fe, f_fe, strict=True)])
+    np.testing.assert_allclose(f_line, f_fe, rtol=1e-4)
+    # non-trivial: at least three points sit more than 10 % off the Rayleigh line in K
+    cr = rayleigh_speed_ratio(CL, CT) * CT
+    assert np.sum(k_fe * cr / (2 * np.pi * f_fe) - 1.0 > 0.10) >= 3
