@@ -100,7 +100,8 @@ def parse_quantity(value: Any, dimension: str) -> float:
     try:
         quantity = ureg.Quantity(text)
     except pint.UndefinedUnitError as exc:
-        raise UnitError(f"unknown unit in {value!r} ({exc.unit_names!s})") from None
+        names = exc.unit_names if isinstance(exc.unit_names, (list, tuple)) else [exc.unit_names]
+        raise UnitError(f"unknown unit {', '.join(map(str, names))!r} in {value!r}") from None
     except Exception as exc:  # pint raises many kinds on malformed text
         raise UnitError(f"cannot read {value!r} as a quantity ({type(exc).__name__})") from None
     if not isinstance(quantity, ureg.Quantity):  # pragma: no cover - defensive

@@ -1,0 +1,84 @@
+"""Quantity parsing at the edges (optgrade.units).
+
+Reference conversions are SI definitions (BIPM, *The International System of Units*, 9th ed.,
+2019: prefixes k = 1e3, M = 1e6, m = 1e-3, u = 1e-6; 1 g = 1e-3 kg; 1 deg = pi/180 rad).
+"""
+
+import math
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from optgrade.units import UnitError, format_quantity, parse_quantity
+
+
+@pytest.mark.parametrize(
+    ("text", "dimension", "expected"),
+    [
+        ("2.5 mm", "length", 2.5e-3),
+        ("1 um", "length", 1e-6),
+        ("1.5 m", "length", 1.5),
+        ("150 kHz", "frequency", 150e3),
+        ("2 MHz", "frequency", 2e6),
+        ("40 Hz", "frequency", 40.0),
+        ("7850 kg/m^3", "density", 7850.0),
+        ("7.85 g/cm^3", "density", 7850.0),
+        ("0.2 g", "mass", 2e-4),
+        ("3 t", "mass", 3000.0),
+        ("200 GPa", "modulus", 200e9),
+        ("3100 m/s", "speed", 3100.0),
+        ("3.1 km/s", "speed", 3100.0),
+        ("30 deg", "angle", 30.0),
+        ("0.5 rad", "angle", math.degrees(0.5)),
+        ("10 ms", "time", 0.01),
+    ],
+)
+def test_si_conversions(text, dimension, expected):
+    """SI prefixes and derived units (BIPM SI brochure, 9th ed., 2019)."""
+    assert parse_quantity(text, dimension) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize("value", [2.5, 3, "2.5", "  7 "])
+def test_bare_number_is_refused_with_a_request_for_a_unit(value):
+    with pytest.raises(UnitError, match="unit"):
+        parse_quantity(value, "length")
+
+
+@pytest.mark.parametrize(
+    ("text", "dimension", "fragment"),
+    [
+        ("100 mm", "frequency", "expected a frequency"),
+        ("2700 kg", "density", "expected a density"),
+        ("5 N", "mass", "expected a mass"),
+        ("3 m/s", "length", "expected a length"),
+        ("30 mm", "angle", "not an angle"),
+        ("1 furlongz", "length", "unknown unit 'furlongz'"),
+        ("mm", "length", "does not start with a number"),
+        ("nan mm", "length", "not a finite number"),
+        ("inf Hz", "frequency", "not a finite number"),
+        ("", "length", "empty"),
+        ("2 mm +", "length", "cannot read"),
+    ],
+)
+def test_bad_quantities_name_the_reason(text, dimension, fragment):
+    with pytest.raises(UnitError, match=fragment):
+        parse_quantity(text, dimension)
+
+
+@pytest.mark.parametrize("value", [None, True, [1, "mm"], {"a": 1}])
+def test_non_strings_are_refused(value):
+    with pytest.raises(UnitError):
+        parse_quantity(value, "length")
+
+
+def test_unknown_dimension_name_is_a_programming_error():
+    with pytest.raises(ValueError, match="unknown dimension"):
+        parse_quantity("1 m", "colour")
+
+
+@given(st.floats(min_value=1e-6, max_value=1e6, allow_nan=False))
+def test_millimetre_round_trip(x):
+    """Property: formatting in mm and parsing back returns the SI value (1 mm = 1e-3 m)."""
+    text = format_quantity(x, "length", "mm", digits=17)
+    assert parse_quantity(text, "length") == pytest.approx(x, rel=1e-12)
