@@ -12,9 +12,10 @@ memory), rod diameter 1 mm, row pitch 3 mm, height 6 mm, spacing 4 mm; and the s
 20 mg head mass per rod.
 
 FE resolution used here (convergence and depth study in docs/fem-check.md): P2 triangles, 0.5 mm
-at the surface (29.6 elements per shear wavelength at the 212 kHz rod resonance), 3 mm deep
-down, four local refinements at the strip edges, strip depth 0.10 m = 6.8 shear wavelengths at
-212 kHz (7.0 Bloch wavelengths at the lowest K used).
+at the surface (29.5 elements per shear wavelength at the 212 kHz rod resonance), 3 mm deep
+down, four local refinements at the strip edges; strip depth H = 0.10 m = 6.8 shear wavelengths
+at 212 kHz, 2.6 at the lowest frequency used (82 kHz), and at least 8.5 decay lengths
+1/sqrt(K^2 - kT^2) of the slowest-decaying (shear) part of every surface mode computed.
 """
 
 from __future__ import annotations
