@@ -7,9 +7,12 @@ which sets the band-reach rule.
 """
 
 import math
+import sys
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from optgrade.errors import StudyError
 from optgrade.materials import get_material
@@ -19,8 +22,14 @@ from optgrade.study import (
     Study,
     first_resonance_range,
     load_study,
+    study_from_dict,
     study_from_text,
 )
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
 
 ROOT = Path(__file__).resolve().parents[1]
 BASE = (ROOT / "tests" / "study_corpus" / "VALID_BASE.txt").read_text()
@@ -181,3 +190,37 @@ def test_to_si_dict_is_json_ready():
     data = study_from_text(BASE).to_si_dict()
     text = json.dumps(data, allow_nan=False)
     assert json.loads(text)["goal"]["band"] == [100e3, 200e3]
+
+
+_WEIRD = st.one_of(
+    st.integers(-10**12, 10**12),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.booleans(),
+    st.text(max_size=12),
+    st.sampled_from(["1 mm", "0 Hz", "-3 kHz", "1e40 m", "5 kg/m^3", "2 GPa", "30 deg", "nan Hz",
+                     "mm", "1 mm mm", "3 m/s", "1/0 m", "1e-30 kg"]),
+    st.lists(st.sampled_from(["1 mm", "2 mm", 3, "9 kHz", "x"]), max_size=4),
+    st.dictionaries(st.text(max_size=5), st.integers(), max_size=2),
+)
+
+
+@settings(max_examples=150, deadline=None)
+@given(section=st.sampled_from(["study", "substrate", "resonator", "layout", "goal",
+                                "fabrication", "search"]),
+       key=st.sampled_from(["name", "seed", "material", "density", "cl", "ct", "poisson",
+                            "diameter", "row_pitch", "head_mass", "count", "height",
+                            "height_step", "spacing", "band", "channel", "weights", "min_gap",
+                            "trials", "objectives", "storage", "zzz"]),
+       value=_WEIRD)
+def test_any_single_bad_value_gives_study_error_not_a_crash(section, key, value):
+    """Property: replacing any one value by arbitrary data yields a valid Study or a StudyError
+    whose every message names the source and a field path, never another exception."""
+    data = tomllib.loads(BASE)
+    data[section][key] = value
+    try:
+        study_from_dict(data, source="fuzz.toml")
+    except StudyError as exc:
+        assert exc.messages
+        for message in exc.messages:
+            assert message.startswith("fuzz.toml: ")
+            assert len(message.split(": ")) >= 3
