@@ -177,3 +177,30 @@ def test_line_model_lattice_sum_matches_fe(case, fe_rod, fe_head):
     # non-trivial: at least three points sit more than 10 % off the Rayleigh line in K
     cr = rayleigh_speed_ratio(CL, CT) * CT
     assert np.sum(k_fe * cr / (2 * np.pi * f_fe) - 1.0 > 0.10) >= 3
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", ["rod", "head_mass"])
+def test_solve_bands_line_lower_branch_matches_fe(case, fe_rod, fe_head):
+    """`optgrade.bands.solve_bands(model="line")`: lower bound branch through the FE points.
+
+    Issue 3 requirement, as the user sees it: at each FE frequency below the zone edge (>= 5
+    per case, all below the gap) the band solver's branch 0 is bound (K'' = 0) and its K agrees
+    with the FE wavenumber within 2 %. Reference: the scikit-fem cell (module docstring).
+    """
+    from optgrade.bands import Cell, solve_bands
+    from optgrade.halfspace import Substrate
+    from optgrade.resonators import Rod
+
+    modes, head = (fe_rod, 0.0) if case == "rod" else (fe_head, HEAD_MASS)
+    below_edge = modes.bloch_k < np.pi / SPACING * (1 - 1e-9)
+    k_fe, f_fe = modes.bloch_k[below_edge], modes.lower[below_edge]
+    cell = Cell(Substrate(RHO, CL, CT), Rod(ROD_E, ROD_RHO, ROD_D), HEIGHT, SPACING,
+                ROW_PITCH, head)
+    bands = solve_bands(cell, f_fe, model="line")
+    k_line = bands.branches[0].k
+    assert k_fe.size >= 5
+    assert np.all(np.isfinite(k_line)), k_line
+    np.testing.assert_array_equal(np.imag(k_line), 0.0)
+    rel_k = np.abs(np.real(k_line) / k_fe - 1.0)
+    assert np.all(rel_k < TOL_K), rel_k
