@@ -124,6 +124,30 @@ def accuracy_table() -> None:
                   f" | {modes.surface_fraction[i, 0]:.4f} | {modes.bar_fraction[i, 0]:.3f} |")
 
 
+def upper_table() -> None:
+    """Print FE second bound modes (above the rod resonance) against solve_bands (markdown)."""
+    from optgrade.bands import Cell, solve_bands
+
+    frac = np.array([0.6, 0.65, 0.7, 0.75, 0.8, 0.85, 0.9, 0.95])
+    k = np.pi / SPACING * frac
+    modes = solve_cell(_cell(0.0), k, n_modes=4)
+    f2 = modes.frequency[:, 1]
+    sub, rod = _engine()
+    order = np.argsort(f2)
+    bands = solve_bands(Cell(sub, rod, HEIGHT, SPACING, ROW_PITCH, 0.0), f2[order], model="line")
+    roots = np.stack([br.k for br in bands.branches])[:, np.argsort(order)]
+    print("\n#### upper branch, rod without head mass\n")
+    print("| K a/pi | f_FE (kHz) | f_FE / (cT K / 2 pi) | branch | K_bands/K - 1 | surface share "
+          "| bar share |")
+    print("|---|---|---|---|---|---|---|")
+    for i in range(frac.size):
+        rel = np.abs(roots[:, i].real / k[i] - 1)
+        j = int(np.nanargmin(rel))
+        print(f"| {frac[i]:.2f} | {f2[i] / 1e3:.3f} | {2 * np.pi * f2[i] / (CT * k[i]):.4f} "
+              f"| {j} | {roots[j, i].real / k[i] - 1:+.2e} | {modes.surface_fraction[i, 1]:.3f} "
+              f"| {modes.bar_fraction[i, 1]:.3f} |")
+
+
 def convergence_table() -> None:
     """Print the FE mesh and depth study (markdown): lower-branch f at three K."""
     frac = np.array([0.4, 0.8, 1.0])
@@ -204,6 +228,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.accuracy:
         accuracy_table()
+        upper_table()
     if args.convergence:
         convergence_table()
     if not (args.accuracy or args.convergence):
