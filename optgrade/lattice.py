@@ -50,7 +50,7 @@ MODELS = ("lattice", "line", "homogenised")
 
 #: target |xi| r of the static box and of the dynamic box (dimensionless); chosen by the
 #: truncation-convergence test (relative change < 1e-4 when the harmonic count doubles)
-_STATIC_XR = 24.0
+_STATIC_XR = 12.0
 _DYNAMIC_XR = 6.0
 _DYNAMIC_KT = 12.0
 
@@ -70,18 +70,21 @@ def form_factor_sq(xi2: ArrayLike, radius: float, model: Model) -> np.ndarray:
     xi2 = np.asarray(xi2)
     if model == "homogenised":
         return np.ones(xi2.shape)
-    x2 = (xi2 if np.iscomplexobj(xi2) else xi2.astype(float)) * radius**2
+    x2 = xi2 * radius**2
     if model == "lattice":
-        s = _disc_series(x2)
-        big = np.abs(x2) > 16.0
-        if np.any(big):
-            xb = np.sqrt(x2[big] + 0j) if np.iscomplexobj(x2) else np.sqrt(x2[big])
-            s = np.asarray(s, dtype=complex if np.iscomplexobj(x2) else float).copy()
-            jb = jv(1, xb) if np.iscomplexobj(xb) else j1(xb)
-            s[big] = 2.0 * jb / xb
+        if not np.iscomplexobj(x2):
+            x = np.sqrt(np.maximum(x2, 1e-300))
+            s = np.where(x2 < 1e-6, 1.0 - x2 / 8.0, 2.0 * j1(x) / x)
+        else:
+            big = np.abs(x2) > 16.0
+            if np.any(big):
+                xb = np.sqrt(x2 + 0j)
+                s = np.where(big, 2.0 * jv(1, xb) / np.where(big, xb, 1.0), _disc_series(x2))
+            else:
+                s = _disc_series(x2)
     else:
-        x = np.sqrt(x2 + 0j) if np.iscomplexobj(x2) else np.sqrt(x2)
-        small = np.abs(x) < 1e-6
+        x = np.sqrt(x2 + 0j) if np.iscomplexobj(x2) else np.sqrt(np.maximum(x2, 0.0))
+        small = np.abs(x2) < 1e-6
         xs = np.where(small, 1.0, x)
         s = np.where(small, 1.0 - x2 / 6.0, np.sin(xs) / xs)
     return s * s
@@ -110,7 +113,7 @@ def _disc_series(x2: np.ndarray) -> np.ndarray:
 
 
 def default_harmonics(spacing: float, radius: float, model: Model) -> int:
-    """Default half-width M of the static harmonic box (m = -M..M), from |xi| r <= 24."""
+    """Default half-width M of the static harmonic box (m = -M..M), from |xi| r <= 12."""
     if model == "homogenised":
         return 0
     return int(np.ceil(_STATIC_XR / radius * spacing / (2.0 * np.pi)))
@@ -203,7 +206,7 @@ def lattice_sum(
     model : {"lattice", "line", "homogenised"}
         See the module docstring (physics.md section 5).
     n_harmonics : int, optional
-        Half-width M of the static box in m (n scaled to the same |xi|); default |xi| r <= 24.
+        Half-width M of the static box in m (n scaled to the same |xi|); default |xi| r <= 12.
     exclude_main : bool
         Drop the (m, n) = (0, 0) and (-1, 0) terms (the surrogate adds them exactly).
 

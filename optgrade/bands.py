@@ -1,0 +1,557 @@
+"""Bloch band solver for one resonator cell: bound and leaky branches (physics.md section 5).
+
+The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.lattice`). We split
+
+    Sigma = T_0(K) + T_-1(K) + Rest(K, w)
+
+where T_0 and T_-1 are the (m, n) = (0, 0) and (-1, 0) harmonics: they carry the Rayleigh pole
+(K = kR and, folded, K = 2 pi/a - kR) and the branch points of the forward (m = 0) and backward
+(m = -1) radiating harmonics. They are evaluated in closed form, at complex K as well. The rest
+(all other harmonics) is smooth and analytic over 0 < K < 2 pi/a as long as those harmonics stay
+evanescent (kR < 2 pi/a and kR < 2 pi/b; `validity_warnings` says when not). The direct solver
+sums Rest exactly; the surrogate (`optgrade.surrogate`) interpolates it from tables. Both share
+the root engine `solve_points` below.
+
+Branches (K in the extended zone 0 < K < 2 pi/a, so that a wave running in +x has K' > 0):
+
+* branch 0, the lower (surface) branch: the root of Re D nearest above the Rayleigh pole kR,
+  searched in (kR, 2 pi/a - kR) while kR < pi/a (the mirror half beyond the zone edge holds the
+  same roots, so the branch ends at K = pi/a: the Bragg gap) and in (kR, 2 pi/a) once kR > pi/a
+  (the second band, where the folded harmonic K - 2 pi/a radiates backward when
+  2 pi/a - K' < kT). It leaves the Rayleigh line at low frequency and slows towards the rod
+  resonance.
+* branch 1, the upper branch: the root of Re D nearest below kR (above the folded pole when
+  kR > pi/a); above the rod resonance it emerges from the shear line and is leaky forward while
+  K' < kT.
+
+Continuation across frequency: each branch is the root of a fixed bracketing rule attached to
+the Rayleigh pole, so it follows itself from frequency to frequency; it is nan where it has no
+root (a gap). Roots with K'' > K' (overdamped, no travelling wave) are dropped.
+
+Leaky roots: K' from the real-axis root of Re D, then complex Newton steps with T_0, T_-1 on the
+analytic continuation of their branches (`optgrade.halfspace.vertical_wavenumber`) and Rest by a
+first-order Taylor step from the real axis. Near a branch point (Newton leaves the side of the
+cone it started on, or does not converge) the first-order value K'' = -Im D / (d Re D/dK) is kept
+and flagged. Loss factors of rod and substrate enter D, so K'' includes material loss.
+
+Channel shares: K'' is split in proportion to the Im parts at K' (first order): the radiating
+harmonics' Im T (lossless substrate) split into shear and compressional power
+(`optgrade.lattice.radiation_parts`), forward for m = 0 and backward for m = -1; the remainder
+of Im(Sigma - 1/Z) is absorbed (material loss).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from optgrade.halfspace import Substrate
+from optgrade.lattice import MODELS, _split_shares, harmonic_term, lattice_sum
+from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
+
+__all__ = [
+    "Cell",
+    "Branch",
+    "Bands",
+    "solve_bands",
+    "direct_local_modes",
+    "solve_points",
+    "validity_warnings",
+    "CHANNELS",
+]
+
+#: order of the share axis (the last one is material absorption)
+CHANNELS = (
+    "forward_shear",
+    "forward_compressional",
+    "backward_shear",
+    "backward_compressional",
+    "absorbed",
+)
+
+_N_SCAN = 40
+_MAX_ILLINOIS = 60
+_N_NEWTON = 4
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One unit cell of a resonator row (SI units).
+
+    Attributes
+    ----------
+    substrate : Substrate
+    rod : Rod
+    height : float
+        Rod height L (m).
+    spacing : float
+        Cell length a along the row (m).
+    row_pitch : float
+        Pitch b between rods across the row (m).
+    head_mass : float
+        Head mass M (kg).
+    """
+
+    substrate: Substrate
+    rod: Rod
+    height: float
+    spacing: float
+    row_pitch: float
+    head_mass: float = 0.0
+
+
+@dataclass(frozen=True)
+class Branch:
+    """One dispersion branch over the frequency grid.
+
+    k : complex (n_freq,) Bloch wavenumber K' + i K'' (1/m), nan where absent.
+    shares : (5, n_freq) split of K'' over `CHANNELS` (zeros where K'' = 0 or absent).
+    angle : (4, n_freq) radiation angle from the surface normal (rad), nan where closed.
+    is_leaky : (n_freq,) bool, a harmonic radiates at K'.
+    is_first_order : (n_freq,) bool, K'' kept at its first-order value (near a branch point).
+    """
+
+    name: str
+    k: np.ndarray
+    shares: np.ndarray
+    angle: np.ndarray
+    is_leaky: np.ndarray
+    is_first_order: np.ndarray
+
+
+@dataclass(frozen=True)
+class Bands:
+    """Band structure of one cell: branches, gaps, rod resonances and warnings."""
+
+    cell: Cell
+    freq: np.ndarray
+    model: str
+    branches: tuple[Branch, ...]
+    resonances: np.ndarray
+    gaps: tuple[tuple[float, float], ...]
+    warnings: tuple[str, ...] = field(default_factory=tuple)
+
+
+def main_terms(K, w, a, substrate: Substrate, b: float, r: float, model: str) -> np.ndarray:
+    """T_0 + T_-1 (homogenised: T_0 only) at complex or real K (m/N), broadcasting."""
+    t = harmonic_term(K, w, substrate, a, b, r, 0, model)
+    if model != "homogenised":
+        t = t + harmonic_term(K, w, substrate, a, b, r, -1, model)
+    return t
+
+
+def _main_derivative(K, w, a, substrate, b, r, model):
+    h = 1e-6 * np.pi / a
+    return (
+        main_terms(K + h, w, a, substrate, b, r, model)
+        - main_terms(K - h, w, a, substrate, b, r, model)
+    ) / (2.0 * h)
+
+
+RestFn = Callable[..., tuple[np.ndarray, np.ndarray]]
+
+
+def solve_points(
+    w: np.ndarray,
+    inv_z: np.ndarray,
+    a: np.ndarray,
+    substrate: Substrate,
+    b: float,
+    r: float,
+    model: str,
+    rest: RestFn,
+) -> dict[str, np.ndarray]:
+    """Root engine shared by the direct solver and the surrogate.
+
+    Parameters
+    ----------
+    w, inv_z, a : ndarray (n,)
+        Angular frequency (rad/s), rod compliance 1/Z (m/N, complex) and spacing (m) per point.
+    substrate, b, r, model
+        Half-space, row pitch (m), contact radius (m), lattice model.
+    rest : callable
+        ``rest(K, idx, deriv) -> (value, dvalue/dK)`` of Rest (m/N) at real K for points
+        ``idx``; K has shape (len(idx),) or (len(idx), m); the derivative may be None when
+        ``deriv`` is False.
+
+    Returns
+    -------
+    dict with ``k`` (2, n) complex, ``shares`` (2, 5, n), ``angle`` (2, 4, n),
+    ``is_leaky`` (2, n), ``is_first_order`` (2, n).
+    """
+    w = np.asarray(w, dtype=float)
+    a = np.broadcast_to(np.asarray(a, dtype=float), w.shape)
+    inv_z = np.broadcast_to(np.asarray(inv_z, dtype=complex), w.shape)
+    n = w.size
+    lossless = Substrate(substrate.density, substrate.cl, substrate.ct)
+    kr = w / substrate.cr
+    g = 2.0 * np.pi / a
+    kfold = g - kr
+    is_homog = model == "homogenised"
+    below_edge = kr < 0.5 * g
+    out_k = np.full((2, n), np.nan + 0j)
+    out_sh = np.zeros((2, 5, n))
+    out_an = np.full((2, 4, n), np.nan)
+    out_leaky = np.zeros((2, n), dtype=bool)
+    out_fo = np.zeros((2, n), dtype=bool)
+
+    def re_f(K, idx):
+        """Re D with the sign of Sigma - 1/Z, lossless main terms (real-axis function)."""
+        Kc = np.asarray(K)
+        sh = (slice(None),) + (None,) * (Kc.ndim - 1)
+        val = main_terms(Kc, w[idx][sh], a[idx][sh], lossless, b, r, model)
+        rv, _ = rest(Kc, idx, False)
+        return (val + rv).real - inv_z[idx][sh].real
+
+    for branch in (0, 1):
+        if branch == 0:
+            lo = kr.copy()
+            hi = np.where(below_edge | is_homog, np.where(is_homog, 0.5 * g, kfold), g)
+            valid = hi > lo * (1.0 + 1e-9)
+        else:
+            hi = kr.copy()
+            lo = np.where(below_edge | is_homog, 1e-3 * kr, kfold)
+            valid = (hi > lo * (1.0 + 1e-9)) & (is_homog | (kr < g))
+        idx = np.flatnonzero(valid)
+        if idx.size == 0:
+            continue
+        lo_i, hi_i, kr_i = lo[idx], hi[idx], kr[idx]
+        has_fold = (~below_edge[idx]) if branch == 1 else (below_edge[idx] & (not is_homog))
+        # scan from the Rayleigh pole outwards, points clustered near the pole
+        u = (np.arange(1, _N_SCAN + 1) / _N_SCAN) ** 2
+        u[-1] = 1.0 - 1e-9
+        u = np.concatenate([[1e-9], u])
+        if branch == 0:
+            Ks = lo_i[:, None] + (hi_i - lo_i)[:, None] * u[None, :]
+        else:
+            Ks = hi_i[:, None] - (hi_i - lo_i)[:, None] * u[None, :]
+
+        def h_of(K, sel, lo_s, hi_s, kr_s, fold_s, _branch=branch):
+            f = re_f(K, sel)
+            sh = (slice(None),) + (None,) * (np.ndim(K) - 1)
+            pole = (K - kr_s[sh]) if _branch == 0 else (kr_s[sh] - K)
+            other = np.where(
+                fold_s[sh],
+                (hi_s[sh] - K) if _branch == 0 else (K - lo_s[sh]),
+                1.0,
+            )
+            return f * pole * other
+
+        H = h_of(Ks, idx, lo_i, hi_i, kr_i, has_fold)
+        # h keeps the sign of the pole's residue next to it; the first sign change outwards
+        # brackets the root
+        neg = np.sign(H) != np.sign(H[:, :1])
+        first = np.argmax(neg, axis=1)
+        found = neg[np.arange(idx.size), first] & (first > 0)
+        if not np.any(found):
+            continue
+        sel = idx[found]
+        j = first[found]
+        rows = np.flatnonzero(found)
+        ka, kb = Ks[rows, j - 1], Ks[rows, j]
+        ha, hb = H[rows, j - 1], H[rows, j]
+        lo_s, hi_s, kr_s, fold_s = lo_i[rows], hi_i[rows], kr_i[rows], has_fold[rows]
+        active = np.ones(sel.size, dtype=bool)
+        for _ in range(_MAX_ILLINOIS):
+            act = np.flatnonzero(active)
+            if act.size == 0:
+                break
+            den = hb[act] - ha[act]
+            kc = np.where(
+                den != 0,
+                (ka[act] * hb[act] - kb[act] * ha[act]) / np.where(den != 0, den, 1.0),
+                0.5 * (ka[act] + kb[act]),
+            )
+            hc = h_of(kc, sel[act], lo_s[act], hi_s[act], kr_s[act], fold_s[act])
+            flip = np.sign(hc) != np.sign(hb[act])
+            ka_new = np.where(flip, kb[act], ka[act])
+            ha_new = np.where(flip, hb[act], 0.5 * ha[act])
+            ka[act], ha[act] = ka_new, ha_new
+            kb[act], hb[act] = kc, hc
+            done = (np.abs(kb[act] - ka[act]) <= 1e-13 * np.abs(kc)) | (hc == 0)
+            active[act[done]] = False
+        k_re = kb
+        # complex root: Newton with exact main terms and Taylor-continued rest
+        w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
+        r0, dr0 = rest(k_re, sel)
+        m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model)
+        dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model)
+        d0 = iz_s - m0 - r0
+        dd0 = -(dm0 + dr0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            k_first = k_re + 1j * (-d0.imag / dd0.real)
+        kk = k_re.astype(complex)
+        ok = np.ones(sel.size, dtype=bool)
+        for _ in range(_N_NEWTON):
+            m = main_terms(kk, w_s, a_s, substrate, b, r, model)
+            dm = _main_derivative(kk, w_s, a_s, substrate, b, r, model)
+            rr = r0 + (kk - k_re) * dr0
+            d = iz_s - m - rr
+            dd = -(dm + dr0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                step = d / dd
+            kk = kk - step
+        ok &= np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
+        # Newton must not cross a branch point of the radiating harmonics
+        kt_s, kl_s = w_s / substrate.ct, w_s / substrate.cl
+        for edge in (kt_s, kl_s, g[sel] - kt_s, g[sel] - kl_s):
+            ok &= np.sign(kk.real - edge) == np.sign(k_re - edge)
+        ok &= kk.imag > -1e-9 * np.abs(kk)
+        kk = np.where(ok, kk, k_first)
+        fo = ~ok
+        # drop overdamped roots
+        keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real)
+        kk = np.where(keep, kk, np.nan)
+        out_k[branch, sel] = kk
+        out_fo[branch, sel] = fo & keep
+        # channels at K' (first order)
+        kp = kk.real
+        kl2, kt2 = (w_s / substrate.cl) ** 2, (w_s / substrate.ct) ** 2
+        parts = np.zeros((4, sel.size))
+        for mi, off in ((0, 0), (-1, 2)):
+            if is_homog and mi == -1:
+                continue
+            kx = kp + 2.0 * np.pi * mi / a_s
+            xi2 = kx * kx
+            im = np.where(
+                xi2 < kt2,
+                harmonic_term(kp, w_s, lossless, a_s, b, r, mi, model).imag,
+                0.0,
+            )
+            shear = _split_shares(xi2, kl2, kt2)
+            parts[off] = im * shear
+            parts[off + 1] = im * (1.0 - shear)
+        total = (m0 + r0 - iz_s).imag
+        total = np.where(np.isfinite(total), total, 0.0)
+        absorbed = np.maximum(total - parts.sum(axis=0), 0.0)
+        allp = np.concatenate([np.maximum(parts, 0.0), absorbed[None]], axis=0)
+        ssum = allp.sum(axis=0)
+        has_decay = keep & (kk.imag > 0) & (ssum > 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out_sh[branch][:, sel] = np.where(has_decay, allp / np.where(ssum > 0, ssum, 1.0), 0.0)
+        # angles from the surface normal (negative = pointing back to the source)
+        kb_back = kp - g[sel]
+        kts, kls = np.sqrt(kt2), np.sqrt(kl2)
+        with np.errstate(invalid="ignore"):
+            ang = np.full((4, sel.size), np.nan)
+            ang[0] = np.where(kp < kts, np.arcsin(np.clip(kp / kts, -1, 1)), np.nan)
+            ang[1] = np.where(kp < kls, np.arcsin(np.clip(kp / kls, -1, 1)), np.nan)
+            if not is_homog:
+                ang[2] = np.where(
+                    np.abs(kb_back) < kts, np.arcsin(np.clip(kb_back / kts, -1, 1)), np.nan
+                )
+                ang[3] = np.where(
+                    np.abs(kb_back) < kls, np.arcsin(np.clip(kb_back / kls, -1, 1)), np.nan
+                )
+        ang[:, ~keep] = np.nan
+        out_an[branch][:, sel] = ang
+        out_leaky[branch, sel] = keep & np.any(np.isfinite(ang), axis=0)
+    return {
+        "k": out_k,
+        "shares": out_sh,
+        "angle": out_an,
+        "is_leaky": out_leaky,
+        "is_first_order": out_fo,
+    }
+
+
+def _direct_rest(w, a, substrate, b, r, model):
+    """Rest callback summing the lattice exactly (one lattice_sum per distinct spacing)."""
+    a = np.asarray(a, dtype=float)
+
+    def rest(K, idx, deriv=True):
+        K = np.asarray(K, dtype=float)
+        sh = (slice(None),) + (None,) * (K.ndim - 1)
+        ws = w[idx][sh]
+        a_s = a[idx]
+        val = np.zeros(K.shape, dtype=complex)
+        der = np.zeros(K.shape, dtype=complex)
+        for av in np.unique(a_s):
+            rows = a_s == av
+            h = 1e-6 * np.pi / av
+            kk = K[rows]
+            ww = np.broadcast_to(ws[rows], kk.shape) if K.ndim > 1 else ws[rows]
+            val[rows] = lattice_sum(kk, ww, substrate, av, b, r, model, exclude_main=True)
+            if not deriv:
+                continue
+            der[rows] = (
+                lattice_sum(kk + h, ww, substrate, av, b, r, model, exclude_main=True)
+                - lattice_sum(kk - h, ww, substrate, av, b, r, model, exclude_main=True)
+            ) / (2.0 * h)
+        return val, der
+
+    return rest
+
+
+def validity_warnings(
+    substrate: Substrate,
+    rod: Rod,
+    spacing_max: float,
+    row_pitch: float,
+    freq_max: float,
+    model: str = "lattice",
+) -> list[str]:
+    """Model-validity warnings for a frequency band (plain sentences).
+
+    * sideways radiation: 2 pi / b < kT (physics.md section 5);
+    * the surrogate split needs the other harmonics evanescent: kR < 2 pi / a and kR < 2 pi / b;
+    * thin-rod theory: d > lambda_r / 5 (physics.md section 4);
+    * bending modes of the rods are not represented.
+    """
+    out = []
+    kt = 2 * np.pi * freq_max / substrate.ct
+    kr = 2 * np.pi * freq_max / substrate.cr
+    if model == "lattice" and 2 * np.pi / row_pitch < kt:
+        out.append(
+            f"row pitch {row_pitch:.4g} m exceeds the shear wavelength at {freq_max:.4g} Hz: "
+            "harmonics radiate sideways (not booked to any channel)"
+        )
+    if model != "homogenised" and kr >= 2 * np.pi / spacing_max:
+        out.append(
+            f"spacing {spacing_max:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
+            "higher harmonics reach the Rayleigh pole; results outside the model"
+        )
+    if not bool(np.all(is_thin_rod(freq_max, rod))):
+        out.append(
+            f"rod diameter {rod.diameter:.4g} m exceeds a fifth of the bar wavelength at "
+            f"{freq_max:.4g} Hz: thin-rod theory is stretched"
+        )
+    out.append("axial rod motion only: bending modes of the rods are not represented")
+    return out
+
+
+def direct_local_modes(
+    substrate: Substrate,
+    rod: Rod,
+    row_pitch: float,
+    height: ArrayLike,
+    spacing: ArrayLike,
+    head_mass: ArrayLike,
+    freq: ArrayLike,
+    model: str = "lattice",
+):
+    """LocalModes of cells by direct root solves (lattice summed exactly, no tables).
+
+    The reference the surrogate is tested against. Cells are given by arrays (broadcast
+    together) of height (m), spacing (m) and head mass (kg); freq in Hz.
+
+    Returns
+    -------
+    optgrade.surrogate.LocalModes
+    """
+    from optgrade.surrogate import LocalModes
+
+    if model not in MODELS:
+        raise ValueError(f"model must be one of {MODELS}, got {model!r}")
+    h, a, m = np.broadcast_arrays(
+        np.atleast_1d(np.asarray(height, float)),
+        np.atleast_1d(np.asarray(spacing, float)),
+        np.atleast_1d(np.asarray(head_mass, float)),
+    )
+    freq = np.atleast_1d(np.asarray(freq, dtype=float))
+    n_cells, n_freq = h.size, freq.size
+    w = np.broadcast_to(2 * np.pi * freq[None, :], (n_cells, n_freq)).ravel()
+    ap = np.broadcast_to(a.ravel()[:, None], (n_cells, n_freq)).ravel()
+    iz = rod_compliance(
+        2 * np.pi * freq[None, :], rod, h.ravel()[:, None], m.ravel()[:, None]
+    ).ravel()
+    res = solve_points(
+        w,
+        iz,
+        ap,
+        substrate,
+        row_pitch,
+        rod.radius,
+        model,
+        _direct_rest(w, ap, substrate, row_pitch, rod.radius, model),
+    )
+    return LocalModes(
+        k=res["k"].reshape(2, n_cells, n_freq),
+        shares=res["shares"].reshape(2, 5, n_cells, n_freq),
+        angle=res["angle"].reshape(2, 4, n_cells, n_freq),
+    )
+
+
+def _gaps(freq, branches):
+    """Frequency intervals with no bound-or-leaky branch (complete local gaps)."""
+    present = np.zeros(freq.size, dtype=bool)
+    for br in branches:
+        present |= np.isfinite(br.k)
+    gaps = []
+    i = 0
+    while i < freq.size:
+        if not present[i]:
+            j = i
+            while j + 1 < freq.size and not present[j + 1]:
+                j += 1
+            gaps.append((float(freq[i]), float(freq[j])))
+            i = j + 1
+        else:
+            i += 1
+    return tuple(gaps)
+
+
+def solve_bands(cell: Cell, freq: ArrayLike, model: str = "lattice") -> Bands:
+    """All branches of one cell over a frequency grid, by direct root solves.
+
+    Parameters
+    ----------
+    cell : Cell
+    freq : array_like
+        Frequencies (Hz), increasing.
+    model : {"lattice", "line", "homogenised"}
+
+    Returns
+    -------
+    Bands
+        Branch 0 (lower, surface) and branch 1 (upper), gaps, rod resonances in the band and
+        model-validity warnings.
+    """
+    if model not in MODELS:
+        raise ValueError(f"model must be one of {MODELS}, got {model!r}")
+    freq = np.atleast_1d(np.asarray(freq, dtype=float))
+    w = 2 * np.pi * freq
+    a = np.full(freq.shape, float(cell.spacing))
+    iz = rod_compliance(w, cell.rod, cell.height, cell.head_mass)
+    res = solve_points(
+        w,
+        iz,
+        a,
+        cell.substrate,
+        cell.row_pitch,
+        cell.rod.radius,
+        model,
+        _direct_rest(w, a, cell.substrate, cell.row_pitch, cell.rod.radius, model),
+    )
+    names = ("lower", "upper")
+    branches = tuple(
+        Branch(
+            name=names[i],
+            k=res["k"][i],
+            shares=res["shares"][i],
+            angle=res["angle"][i],
+            is_leaky=res["is_leaky"][i],
+            is_first_order=res["is_first_order"][i],
+        )
+        for i in range(2)
+    )
+    rod = cell.rod
+    fr = rod_resonances(
+        cell.height, rod.diameter, rod.youngs_modulus, rod.density, cell.head_mass, n_modes=3
+    )
+    return Bands(
+        cell=cell,
+        freq=freq,
+        model=model,
+        branches=branches,
+        resonances=fr,
+        gaps=_gaps(freq, branches),
+        warnings=tuple(
+            validity_warnings(
+                cell.substrate, rod, cell.spacing, cell.row_pitch, float(freq.max()), model
+            )
+        ),
+    )
