@@ -230,6 +230,7 @@ class Grid:
     nz: int
     n_pml: int
     n_steps: int
+    min_steps: int
     sample_every: int
     i_source: int
     i_left: int
@@ -243,8 +244,8 @@ class Grid:
         return self.nx * self.nz
 
 
-QUALITY = {"normal": {"ppw": 20.0, "n_pml": 20, "fp_cells": 2, "dur": 3.0},
-           "fast": {"ppw": 10.0, "n_pml": 14, "fp_cells": 1, "dur": 2.5}}
+QUALITY = {"normal": {"ppw": 20.0, "n_pml": 20, "fp_cells": 2, "dur": 12.0},
+           "fast": {"ppw": 10.0, "n_pml": 14, "fp_cells": 1, "dur": 10.0}}
 
 
 def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diameter: float,
@@ -256,8 +257,10 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     ``fp_cells`` cells across the narrowest footprint. Box depth D = 1.5 Rayleigh wavelengths at
     the bottom of the band (the Rayleigh mode has decayed to ~1e-4 there). Source 1.2 D before
     the left line so that little of its own bulk radiation enters the box. Time step
-    ``courant * h / cL`` (stable below 1/sqrt(2)). Duration: pulse plus ``duration_factor``
-    Rayleigh transit times from source to the right line.
+    ``courant * h / cL`` (stable below 1/sqrt(2)). Duration: at least the pulse plus 1.5
+    Rayleigh transit times from source to the right line, at most the pulse plus
+    ``duration_factor`` transit times; in between the run stops once the energy left in the
+    model (substrate outside the layers, and rods) is below ``energy_tol`` of its peak.
     """
     q = QUALITY[quality]
     ppw = q["ppw"] if ppw is None else ppw
@@ -279,9 +282,11 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     dt = courant * h / medium.cl
     t_end = pulse_length(f_lo, f_hi) + dur * (i_right - i_source) * h / cr
     n_steps = int(math.ceil(t_end / dt))
+    t_min = pulse_length(f_lo, f_hi) + 1.5 * (i_right - i_source) * h / cr
+    min_steps = min(n_steps, int(math.ceil(t_min / dt)))
     sample_every = max(1, int(1.0 / (dt * 6.0 * f_hi)))
     j_shallow = max(2, int(round(0.05 * lam_lo / h)))
-    return Grid(h=h, dt=dt, nx=nx, nz=nz, n_pml=n_pml, n_steps=n_steps,
+    return Grid(h=h, dt=dt, nx=nx, nz=nz, n_pml=n_pml, n_steps=n_steps, min_steps=min_steps,
                 sample_every=sample_every, i_source=i_source, i_left=i_left, i_right=i_right,
                 j_bottom=j_bottom, j_shallow=j_shallow, x_array=x_array)
 
@@ -312,6 +317,7 @@ class RunRecord:
     energy_left: float
     seconds: float
     cell_updates: float
+    n_steps: int
 
 
 def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, float]) -> dict:
@@ -319,7 +325,10 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
     h, dt = grid.h, grid.dt
     c_bar = rods.bar_speed
     n_rods = rods.x.size
-    ds_min = c_bar * dt / 0.9
+    w_c = math.pi * (band[0] + band[1])
+    visc = np.full(n_rods, rods.loss_factor / w_c)
+    # explicit leapfrog with Kelvin-Voigt damping tau: (c dt/ds)^2 (1 + 2 tau/dt) <= 1
+    ds_min = c_bar * dt * np.sqrt(1.0 + 2.0 * visc / dt) / 0.9
     n_seg = np.maximum(4, np.minimum(400, np.floor(rods.height / ds_min))).astype(np.int64)
     ds = rods.height / n_seg
     area = math.pi * rods.diameter**2 / 4
@@ -327,8 +336,6 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
     ea = rods.youngs_modulus * area / b
     m_node = rods.density * area / b * ds
     m_tip = rods.head_mass / b
-    w_c = math.pi * (band[0] + band[1])
-    visc = np.full(n_rods, rods.loss_factor / w_c)
     n_fp = np.maximum(1, np.round(rods.diameter / h)).astype(np.int64)
     centre = (grid.x_array + rods.x) / h
     fp_start = np.round(centre - (n_fp - 1) / 2).astype(np.int64)
@@ -344,7 +351,7 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
 
 def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.ndarray,
              rods: RodRow | None = None, *, n_snapshots: int = 0,
-             block: tuple[int, int, int] | None = None,
+             block: tuple[int, int, int] | None = None, energy_tol: float = 1e-6,
              progress: Callable[[int, int], None] | None = None) -> RunRecord:
     """Run the time-domain simulation and Fourier-transform the recorded fields.
 
@@ -363,6 +370,8 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     block : (i0, i1, j1), optional
         Recorded block columns i0..i1-1, rows 0..j1-1; default: the receiver box plus one
         column/row around it.
+    energy_tol : float
+        Stop after ``grid.min_steps`` once the energy left is below this fraction of its peak.
     progress : callable(step, n_steps), optional
         Called now and then.
     """
@@ -433,13 +442,14 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         acc_rv[:] += e_v @ buf_rv[:n_buf]
         n_buf = 0
 
-    snap_every = max(1, grid.n_steps // n_snapshots) if n_snapshots else 0
+    snap_every = max(1, int(1.3 * grid.min_steps) // n_snapshots) if n_snapshots else 0
     snaps = []
     snap_t = []
     amp_src = 1.0 / h  # line force 1 N/m peak spread over one surface cell
     e_peak = 0.0
     t_start = time.perf_counter()
-    energy_every = max(1, grid.n_steps // 50)
+    energy_every = max(1, grid.min_steps // 40)
+    n_done = grid.n_steps
     for n in range(grid.n_steps):
         t_new = (n + 1) * dt
         _k.step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h, ax_h, bx_h, ax_i, bx_i,
@@ -472,13 +482,18 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
             if n_buf == chunk:
                 flush()
         if (n + 1) % energy_every == 0 or n + 1 == grid.n_steps:
-            e_now = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid)
+            e_now = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
             e_peak = max(e_peak, e_now)
             if progress is not None:
                 progress(n + 1, grid.n_steps)
+            if n + 1 >= grid.min_steps and e_now < energy_tol * e_peak:
+                n_done = n + 1
+                if progress is not None:
+                    progress(grid.n_steps, grid.n_steps)
+                break
     flush()
     seconds = time.perf_counter() - t_start
-    e_end = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid)
+    e_end = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
     blk = {
         "vx": acc_v[:, :n_val].reshape(-1, nxb, nzb),
         "vz": acc_v[:, n_val:].reshape(-1, nxb, nzb),
@@ -490,8 +505,18 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         freq=freq, i0=i0, block=blk, rod_c=acc_rc[:, :n_rods], rod_v=acc_rv[:, :n_rods],
         snapshots=np.array(snaps, dtype=np.float32).reshape(-1, nx, nz),
         snapshot_times=np.array(snap_t), energy_left=e_end / e_peak if e_peak > 0 else 0.0,
-        seconds=seconds, cell_updates=float(grid.n_steps) * nx * nz,
+        seconds=seconds, cell_updates=float(n_done) * nx * nz, n_steps=n_done,
     )
+
+
+def _rod_energy(ra: dict | None) -> float:
+    """Kinetic + strain energy (J/m) of the rods (per unit length of the row)."""
+    if ra is None:
+        return 0.0
+    kin = 0.5 * np.sum(ra["m_node"][:, None] * ra["rod_v"][:, 1:] ** 2)
+    kin += 0.5 * np.sum(ra["m_tip"] * ra["rod_v"][np.arange(ra["n_seg"].size), ra["n_seg"]] ** 2)
+    strain = 0.5 * np.sum(ra["rod_c"] ** 2 / ra["ea"][:, None] * ra["ds"][:, None])
+    return float(kin + strain)
 
 
 def _grid_energy(vx, vz, sxx, szz, sxz, medium: Medium, grid: Grid) -> float:
@@ -971,7 +996,7 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
         "grid_spacing_m": grid.h,
         "time_step_s": grid.dt,
         "n_cells": grid.n_cells,
-        "n_steps": grid.n_steps,
+        "n_steps": run.n_steps + ref.n_steps,
         "seconds": time.perf_counter() - t0,
         "cell_updates_per_second": (run.cell_updates + ref.cell_updates)
         / max(run.seconds + ref.seconds, 1e-9),

@@ -1,0 +1,209 @@
+"""Checks of the 2-D full-wave solver (optgrade.fullwave) against outside references.
+
+Small, coarse configurations so that the whole file runs in about a minute on two cores. The
+invented test substrate is aluminium (cL 6320 m/s, cT 3130 m/s, 2700 kg/m^3: handbook
+ultrasonic-testing values, from memory) unless a published root needs nu = 0.25.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+import pytest
+
+from optgrade import _fullwave_kernel as kernel
+from optgrade import fullwave as fw
+
+ALU = fw.Medium(rho=2700.0, cl=6320.0, ct=3130.0)
+BAND = (125e3, 250e3)
+FREQ = np.linspace(*BAND, 9)
+
+
+def _rods(n: int, hi: float = 10e-3, lo: float = 6e-3, eta: float = 0.0,
+          head_mass: float = 0.0) -> fw.RodRow:
+    """Invented row: aluminium pins 1 mm across, 4 mm apart, rows 3 mm apart."""
+    return fw.RodRow(x=np.arange(n) * 4e-3, height=np.linspace(hi, lo, n),
+                     diameter=np.full(n, 1e-3), head_mass=np.full(n, head_mass),
+                     row_pitch=3e-3, youngs_modulus=70e9, density=2700.0, loss_factor=eta)
+
+
+def _incident_phase_speed(medium: fw.Medium, quality: str) -> tuple[np.ndarray, float]:
+    grid = fw.plan_grid(medium, BAND, 0.04, 1e-3, quality=quality)
+    ref = fw.simulate(medium, grid, BAND, FREQ)
+    f = fw.node_fields(ref, medium, grid.h)
+    cr = fw.rayleigh_speed(medium.cl, medium.ct)
+    z = np.arange(grid.j_bottom + 1) * grid.h
+    plus = fw._mode_line(medium, FREQ, z, cr, +1)
+    minus = fw._mode_line(medium, FREQ, z, cr, -1)
+    cl_, cr_ = grid.i_left - ref.i0 - 1, grid.i_right - ref.i0 - 1
+    a_l, _ = fw.mode_amplitudes(fw._line(f, cl_, grid.j_bottom), plus, minus, FREQ, grid.h)
+    a_r, _ = fw.mode_amplitudes(fw._line(f, cr_, grid.j_bottom), plus, minus, FREQ, grid.h)
+    dx = (grid.i_right - grid.i_left) * grid.h
+    k0 = 2 * np.pi * FREQ / cr
+    dphi = np.angle(a_r / a_l)
+    n = np.round((k0 * dx - dphi) / (2 * np.pi))
+    k = (dphi + 2 * np.pi * n) / dx
+    return 2 * np.pi * FREQ / k, cr
+
+
+def test_rayleigh_speed_nu_quarter_matches_exact_root():
+    """Measured Rayleigh speed on the bare substrate, nu = 0.25: cR/cT = 0.919402 within 1 %.
+
+    Exact root sqrt(2 - 2/sqrt(3)) of the Rayleigh equation for nu = 0.25 (Lord Rayleigh 1885;
+    J. D. Achenbach, Wave Propagation in Elastic Solids, 1973). Measured from the phase advance
+    of the forward Rayleigh-mode amplitude between the two receiver lines, 10 points per
+    wavelength at the top of the band (the coarse "fast" grid).
+    """
+    medium = fw.Medium(rho=2700.0, cl=3000.0 * math.sqrt(3.0), ct=3000.0)
+    c, _ = _incident_phase_speed(medium, "fast")
+    ratio = c / medium.ct
+    assert np.all(np.abs(ratio / 0.919402 - 1.0) < 0.01), ratio
+
+
+def test_rayleigh_speed_aluminium_matches_halfspace_root():
+    """Aluminium: measured speed within 1 % of optgrade.halfspace.rayleigh_speed (the Rayleigh
+    equation root, Achenbach 1973); handbook cR ~ 2900 m/s (physics.md, from memory)."""
+    c, cr = _incident_phase_speed(ALU, "fast")
+    assert np.all(np.abs(c / cr - 1.0) < 0.01), c
+    assert abs(cr - 2900.0) < 50.0
+
+
+def test_absorbing_boundaries_reflect_less_than_one_percent():
+    """CPML reflection < 1 %: box fields of the working domain against a much larger domain
+    whose boundaries are too far for any reflection to come back within the run (the usual
+    way to measure an absorbing boundary; common practice). Also the Rayleigh wave sent back
+    by the right layer: the difference of the backward Rayleigh amplitudes at the right receiver
+    line between the two domains is < 1 % of the forward amplitude."""
+    grid = fw.plan_grid(ALU, BAND, 0.02, 1e-3, quality="fast", duration_factor=1.3)
+    small = fw.simulate(ALU, grid, BAND, FREQ, energy_tol=0.0)
+    t_end = grid.n_steps * grid.dt
+    pad = int(math.ceil(0.55 * ALU.cl * t_end / grid.h))
+    big_grid = dataclasses.replace(grid, nx=grid.nx + 2 * pad, nz=grid.nz + pad,
+                                   i_source=grid.i_source + pad, i_left=grid.i_left + pad,
+                                   i_right=grid.i_right + pad, x_array=grid.x_array + pad * grid.h)
+    big = fw.simulate(ALU, big_grid, BAND, FREQ, energy_tol=0.0)
+    worst = 0.0
+    for name in ("vx", "vz"):
+        a = small.block[name]
+        b = big.block[name]
+        err = np.sqrt(np.sum(np.abs(a - b) ** 2, axis=(1, 2)) / np.sum(np.abs(b) ** 2, axis=(1, 2)))
+        worst = max(worst, float(err.max()))
+    print("box field difference", worst)
+    assert worst < 0.01, worst
+    cr = fw.rayleigh_speed(ALU.cl, ALU.ct)
+    z = np.arange(grid.j_bottom + 1) * grid.h
+    plus = fw._mode_line(ALU, FREQ, z, cr, +1)
+    minus = fw._mode_line(ALU, FREQ, z, cr, -1)
+    amps = []
+    for rec in (small, big):
+        f = fw.node_fields(rec, ALU, grid.h)
+        line = fw._line(f, grid.i_right - grid.i_left, grid.j_bottom)
+        amps.append(fw.mode_amplitudes(line, plus, minus, FREQ, grid.h))
+    reflection = np.abs(amps[0][1] - amps[1][1]) / np.abs(amps[1][0])
+    print("rayleigh reflection", reflection)
+    assert np.all(reflection < 0.01), reflection
+
+
+def test_rayleigh_mode_is_traction_free_and_projects_onto_itself():
+    """The analytic Rayleigh mode has zero surface traction (free-surface conditions of
+    Achenbach 1973, sec. 5.11); the reciprocity projection returns amplitude 1 for the forward
+    mode and 0 for the backward one, and separates a mix of both."""
+    cr = fw.rayleigh_speed(ALU.cl, ALU.ct)
+    z = np.linspace(0.0, 0.05, 501)
+    m = fw.rayleigh_mode(z, 2 * np.pi * FREQ, ALU.cl, ALU.ct, ALU.rho, cr)
+    scale = np.abs(m["sxx"][:, 0])
+    assert np.all(np.abs(m["szz"][:, 0]) < 1e-9 * scale)
+    assert np.all(np.abs(m["sxz"][:, 0]) < 1e-9 * scale)
+    h = z[1]
+    plus = fw._mode_line(ALU, FREQ, z, cr, +1)
+    minus = fw._mode_line(ALU, FREQ, z, cr, -1)
+    mix = {k: (0.3 - 0.2j) * plus[k] + (0.05 + 0.1j) * minus[k] for k in plus}
+    ap, am = fw.mode_amplitudes(mix, plus, minus, FREQ, h)
+    assert np.allclose(ap, 0.3 - 0.2j, atol=1e-6)
+    assert np.allclose(am, 0.05 + 0.1j, atol=1e-6)
+
+
+@pytest.mark.parametrize("head_mass", [0.0, 5e-5])
+def test_rod_kernel_resonance_matches_bar_theory(head_mass):
+    """Axial bar on a base driven with a velocity impulse: the base force spectrum peaks at the
+    first resonance f1 = c/(4 L) without head mass, and at (k L) tan(k L) = m_rod / M with a
+    tip mass M (R. D. Blevins, Formulas for Natural Frequency and Mode Shape, 1979); within
+    1 % on a 200-segment bar."""
+    e, rho, d, length, b = 70e9, 2700.0, 1e-3, 10e-3, 3e-3
+    c = math.sqrt(e / rho)
+    area = math.pi * d**2 / 4
+    n = 200
+    ds = length / n
+    dt = 0.5 * ds / c
+    nx = 4
+    vz = np.zeros((nx, 3))
+    rod_v = np.zeros((1, n + 1))
+    rod_c = np.zeros((1, n))
+    rod_e = np.zeros((1, n))
+    m_node = np.array([rho * area / b * ds])
+    steps = 40000
+    force = np.zeros(steps)
+    base = np.zeros(steps)
+    t = np.arange(steps) * dt
+    pulse = np.exp(-(((t - 2e-6) / 0.4e-6) ** 2))
+    for i in range(steps):
+        vz[1, 0] = pulse[i]
+        tz = np.zeros(nx)
+        kernel.step_rods(vz, rod_v, rod_c, rod_e, np.array([n]), np.array([ds]), m_node,
+                         np.array([head_mass / b]), np.array([e * area / b]), np.array([0.0]),
+                         np.array([1]), np.array([1]), dt, 1.0, tz)
+        force[i] = rod_c[0, 0]
+        base[i] = pulse[i]
+    f = np.fft.rfftfreq(8 * steps, dt)
+    zr = np.abs(np.fft.rfft(force, 8 * steps) / np.fft.rfft(base, 8 * steps))
+    sel = (f > 0.3 * c / (4 * length)) & (f < 1.6 * c / (4 * length))
+    f_peak = f[sel][np.argmax(zr[sel])]
+    if head_mass == 0.0:
+        f_theory = c / (4 * length)
+    else:
+        from scipy.optimize import brentq
+
+        ratio = rho * area * length / head_mass
+        kl = brentq(lambda x: x * math.tan(x) - ratio, 1e-6, math.pi / 2 - 1e-9)
+        f_theory = kl * c / (2 * math.pi * length)
+    assert abs(f_peak / f_theory - 1.0) < 0.01, (f_peak, f_theory)
+
+
+def test_energy_balance_within_two_percent():
+    """Closed receiver box around eight lossless rods: the net power of the total field
+    leaving the box is zero within 2 % of the incident power at every frequency (energy
+    conservation, Poynting's theorem for elastic waves; Auld 1973). The power the lossless
+    rods take is zero within 1 %."""
+    rods = _rods(8)
+    grid, run, ref, split = fw.run_pair(ALU, rods, BAND, FREQ, 8 * 4e-3, quality="fast")
+    assert np.all(np.abs(split.balance_error) < 0.02), split.balance_error
+    assert np.all(np.abs(split.reference_balance_error) < 0.02)
+    assert np.all(np.abs(split.raw["absorbed"]) < 0.01), split.raw["absorbed"]
+    total = np.sum([split.fractions[c] for c in fw.CHANNELS], axis=0)
+    assert np.allclose(total, 1.0)
+
+
+def test_loss_factor_absorbs_energy_and_balance_holds():
+    """With a loss factor the rods absorb power (positive, not created: physics.md section 4)
+    and the box balance still closes within 2 %."""
+    rods = _rods(8, eta=0.05)
+    grid, run, ref, split = fw.run_pair(ALU, rods, BAND, FREQ, 8 * 4e-3, quality="fast")
+    assert np.all(split.raw["absorbed"] > 0.0)
+    assert split.raw["absorbed"].max() > 0.01
+    assert np.all(np.abs(split.balance_error) < 0.02), split.balance_error
+
+
+@pytest.mark.slow
+def test_grid_convergence_of_channel_fractions():
+    """Channel fractions of the same invented row on two grids (h = 1 mm and 0.5 mm; both
+    represent the 1 mm footprint exactly): mean absolute difference per channel below 0.05
+    and the coarse grid already conserves energy (second-order scheme, common practice for
+    a convergence check)."""
+    rods = _rods(8)
+    coarse = fw.run_pair(ALU, rods, BAND, FREQ, 8 * 4e-3, quality="fast")[3]
+    fine = fw.run_pair(ALU, rods, BAND, FREQ, 8 * 4e-3, quality="normal")[3]
+    diffs = {c: float(np.mean(np.abs(coarse.fractions[c] - fine.fractions[c])))
+             for c in fw.CHANNELS}
+    assert max(diffs.values()) < 0.05, diffs
