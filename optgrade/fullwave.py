@@ -300,16 +300,18 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
 class RunRecord:
     """Fourier transforms (phasors, exp(-i w t)) of the recorded fields of one run.
 
-    ``block[name]``: complex (n_f, nxb, nzb) for vx, vz, sxx, szz, sxz on grid columns
-    ``i0 .. i0 + nxb - 1`` and rows ``0 .. nzb - 1``; ``rod_c``, ``rod_v``: complex (n_f,
-    n_rods) base force (N/m, compressive) and base velocity (m/s). ``snapshots``: uz (m) on the
-    full grid at ``snapshot_times`` (s). ``energy_left``: elastic + kinetic energy left in the
+    ``blocks[part][name]``: complex (n_f, nxb, nzb) for vx, vz, sxx, szz, sxz on the grid
+    columns ``i0 .. i0 + nxb - 1`` and rows ``j0 .. j0 + nzb - 1`` with ``(i0, j0) =
+    offsets[part]``; parts are the receiver strips ``left``, ``right`` (vertical lines),
+    ``top`` (surface and shallow rows) and ``bottom`` (see :func:`receiver_blocks`);
+    ``rod_c``, ``rod_v``: complex (n_f, n_rods) base force (N/m, compressive) and base
+    velocity (m/s). ``snapshots``: uz (m) on the full grid at ``snapshot_times`` (s). ``energy_left``: elastic + kinetic energy left in the
     grid at the end over the peak energy seen.
     """
 
     freq: np.ndarray
-    i0: int
-    block: dict[str, np.ndarray]
+    offsets: dict[str, tuple[int, int]]
+    blocks: dict[str, dict[str, np.ndarray]]
     rod_c: np.ndarray
     rod_v: np.ndarray
     snapshots: np.ndarray
@@ -351,7 +353,7 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
 
 def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.ndarray,
              rods: RodRow | None = None, *, n_snapshots: int = 0,
-             block: tuple[int, int, int] | None = None, energy_tol: float = 1e-6,
+             blocks: dict[str, tuple[int, int, int, int]] | None = None, energy_tol: float = 1e-6,
              progress: Callable[[int, int], None] | None = None) -> RunRecord:
     """Run the time-domain simulation and Fourier-transform the recorded fields.
 
@@ -367,9 +369,8 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         Resonators; ``None`` for the reference run on the bare substrate.
     n_snapshots : int
         Number of full-grid uz snapshots to keep (for figures and the animation).
-    block : (i0, i1, j1), optional
-        Recorded block columns i0..i1-1, rows 0..j1-1; default: the receiver box plus one
-        column/row around it.
+    blocks : dict of (i0, i1, j0, j1), optional
+        Recorded strips (columns i0..i1-1, rows j0..j1-1); default :func:`receiver_blocks`.
     energy_tol : float
         Stop after ``grid.min_steps`` once the energy left is below this fraction of its peak.
     progress : callable(step, n_steps), optional
@@ -397,7 +398,6 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
 
     vx, vz, sxx, szz, sxz = (np.zeros((nx, nz)) for _ in range(5))
     psi = [np.zeros((nx, nz)) for _ in range(8)]
-    ux = np.zeros((nx, nz))
     uz = np.zeros((nx, nz))
     tz_new = np.zeros(nx)
 
@@ -408,11 +408,16 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         ra = None
         n_rods = 0
 
-    if block is None:
-        block = (grid.i_left - 1, grid.i_right + 2, grid.j_bottom + 2)
-    i0, i1, j1 = block
-    nxb, nzb = i1 - i0, j1
-    n_val = nxb * nzb
+    if blocks is None:
+        blocks = receiver_blocks(grid)
+    flat = []
+    shapes = {}
+    for name, (b_i0, b_i1, b_j0, b_j1) in blocks.items():
+        ii, jj = np.meshgrid(np.arange(b_i0, b_i1), np.arange(b_j0, b_j1), indexing="ij")
+        flat.append((ii * nz + jj).ravel())
+        shapes[name] = (b_i1 - b_i0, b_j1 - b_j0)
+    idx = np.concatenate(flat)
+    n_val = idx.size
     freq = np.asarray(freq, float)
     omega = 2 * math.pi * freq
     acc_v = np.zeros((freq.size, 2 * n_val), complex)
@@ -436,8 +441,11 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         # step earlier than stresses and rod forces.
         e_s = np.exp(1j * omega[:, None] * t_s[None, :]) * (grid.sample_every * dt)
         e_v = np.exp(1j * omega[:, None] * (t_s[None, :] - 0.5 * dt)) * (grid.sample_every * dt)
-        acc_v[:] += e_v @ buf_v[:n_buf]
-        acc_s[:] += e_s @ buf_s[:n_buf]
+        # two real products each (cheaper than complex @ real)
+        acc_v.real += e_v.real @ buf_v[:n_buf]
+        acc_v.imag += e_v.imag @ buf_v[:n_buf]
+        acc_s.real += e_s.real @ buf_s[:n_buf]
+        acc_s.imag += e_s.imag @ buf_s[:n_buf]
         acc_rc[:] += e_s @ buf_rc[:n_buf]
         acc_rv[:] += e_v @ buf_rv[:n_buf]
         n_buf = 0
@@ -463,17 +471,16 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         _k.step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i,
                        az_i, bz_i, az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz_new)
         if snap_every:
-            ux += dt * vx
             uz += dt * vz
             if (n + 1) % snap_every == 0 and len(snaps) < n_snapshots:
                 snaps.append(uz.astype(np.float32))
                 snap_t.append(t_new)
         if (n + 1) % grid.sample_every == 0:
-            buf_v[n_buf, :n_val] = vx[i0:i1, :j1].ravel()
-            buf_v[n_buf, n_val:] = vz[i0:i1, :j1].ravel()
-            buf_s[n_buf, :n_val] = sxx[i0:i1, :j1].ravel()
-            buf_s[n_buf, n_val:2 * n_val] = szz[i0:i1, :j1].ravel()
-            buf_s[n_buf, 2 * n_val:] = sxz[i0:i1, :j1].ravel()
+            np.take(vx, idx, out=buf_v[n_buf, :n_val])
+            np.take(vz, idx, out=buf_v[n_buf, n_val:])
+            np.take(sxx, idx, out=buf_s[n_buf, :n_val])
+            np.take(szz, idx, out=buf_s[n_buf, n_val:2 * n_val])
+            np.take(sxz, idx, out=buf_s[n_buf, 2 * n_val:])
             if ra is not None:
                 buf_rc[n_buf] = ra["rod_c"][:, 0]
                 buf_rv[n_buf] = ra["rod_v"][:, 0]
@@ -494,19 +501,38 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     flush()
     seconds = time.perf_counter() - t_start
     e_end = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
-    blk = {
-        "vx": acc_v[:, :n_val].reshape(-1, nxb, nzb),
-        "vz": acc_v[:, n_val:].reshape(-1, nxb, nzb),
-        "sxx": acc_s[:, :n_val].reshape(-1, nxb, nzb),
-        "szz": acc_s[:, n_val:2 * n_val].reshape(-1, nxb, nzb),
-        "sxz": acc_s[:, 2 * n_val:].reshape(-1, nxb, nzb),
-    }
+    parts = {"vx": acc_v[:, :n_val], "vz": acc_v[:, n_val:], "sxx": acc_s[:, :n_val],
+             "szz": acc_s[:, n_val:2 * n_val], "sxz": acc_s[:, 2 * n_val:]}
+    out_blocks: dict[str, dict[str, np.ndarray]] = {}
+    start = 0
+    for name, (nxb, nzb) in shapes.items():
+        stop = start + nxb * nzb
+        out_blocks[name] = {k: v[:, start:stop].reshape(-1, nxb, nzb) for k, v in parts.items()}
+        start = stop
     return RunRecord(
-        freq=freq, i0=i0, block=blk, rod_c=acc_rc[:, :n_rods], rod_v=acc_rv[:, :n_rods],
+        freq=freq, offsets={k: (v[0], v[2]) for k, v in blocks.items()}, blocks=out_blocks,
+        rod_c=acc_rc[:, :n_rods], rod_v=acc_rv[:, :n_rods],
         snapshots=np.array(snaps, dtype=np.float32).reshape(-1, nx, nz),
         snapshot_times=np.array(snap_t), energy_left=e_end / e_peak if e_peak > 0 else 0.0,
         seconds=seconds, cell_updates=float(n_done) * nx * nz, n_steps=n_done,
     )
+
+
+def receiver_blocks(grid: Grid) -> dict[str, tuple[int, int, int, int]]:
+    """Strips of the grid recorded for the analysis, as (i0, i1, j0, j1) (end exclusive).
+
+    ``left``/``right``: three columns around each vertical receiver line, surface to one row
+    below the box; ``top``: the box width, surface to one row below the shallow line;
+    ``bottom``: the box width, three rows around the bottom line. One extra column/row on each
+    side is what the interpolation to common nodes needs.
+    """
+    il, ir, jb, js = grid.i_left, grid.i_right, grid.j_bottom, grid.j_shallow
+    return {
+        "left": (il - 1, il + 2, 0, jb + 2),
+        "right": (ir - 1, ir + 2, 0, jb + 2),
+        "top": (il - 1, ir + 2, 0, js + 2),
+        "bottom": (il - 1, ir + 2, jb - 1, jb + 2),
+    }
 
 
 def _rod_energy(ra: dict | None) -> float:
@@ -537,14 +563,16 @@ def _grid_energy(vx, vz, sxx, szz, sxz, medium: Medium, grid: Grid) -> float:
 # --------------------------------------------------------------------------------------------
 
 
-def node_fields(rec: RunRecord, medium: Medium, h: float) -> dict[str, np.ndarray]:
-    """Block fields interpolated to the integer nodes (sxx positions), as phasors.
+def node_fields(rec: RunRecord, part: str, medium: Medium, h: float) -> dict[str, np.ndarray]:
+    """Fields of a recorded strip interpolated to the integer nodes (sxx positions), phasors.
 
     Returns velocities ``vx, vz`` (m/s), stresses ``sxx, szz, sxz`` (Pa), displacement
-    divergence ``div`` and rotation ``curl`` (d ux/dz - d uz/dx), on columns ``1 .. nxb-2`` of
-    the block (grid i = i0 + 1 ...) and rows ``0 .. nzb - 2``; shape (n_f, nxb - 2, nzb - 1).
+    divergence ``div`` and rotation ``curl`` (d ux/dz - d uz/dx), shape (n_f, nxb - 2, n_rows),
+    on the strip's columns ``1 .. nxb-2`` (grid i = i0 + 1 ...) and rows ``0 .. nzb - 2`` for a
+    strip starting at the surface (j0 = 0), ``1 .. nzb - 2`` otherwise (grid j = j0 + row).
     """
-    b = rec.block
+    b = rec.blocks[part]
+    is_surface = rec.offsets[part][1] == 0
     w = 2 * math.pi * rec.freq[:, None, None]
     vx = 0.5 * (b["vx"][:, :-2, :-1] + b["vx"][:, 1:-1, :-1])
     vz_raw = b["vz"][:, 1:-1, :]
@@ -567,7 +595,10 @@ def node_fields(rec: RunRecord, medium: Medium, h: float) -> dict[str, np.ndarra
     curl = np.empty_like(vx)
     curl[:, :, 1:] = rq[:, :, :-1] + rq[:, :, 1:]
     curl[:, :, 0] = 2 * rq[:, :, 0]
-    return {"vx": vx, "vz": vz, "sxx": sxx, "szz": szz, "sxz": sxz, "div": div, "curl": curl}
+    out = {"vx": vx, "vz": vz, "sxx": sxx, "szz": szz, "sxz": sxz, "div": div, "curl": curl}
+    if not is_surface:
+        out = {k: v[:, :, 1:] for k, v in out.items()}
+    return out
 
 
 def _diff(a: dict, b: dict) -> dict:
@@ -702,20 +733,24 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     h = grid.h
     freq = run.freq
     cr = rayleigh_speed(medium.cl, medium.ct)
-    tot = node_fields(run, medium, h)
-    ref_f = node_fields(ref, medium, h)
-    sca = _diff(tot, ref_f)
+    fields = {}
+    for part in ("left", "right", "top", "bottom"):
+        t_ = node_fields(run, part, medium, h)
+        r_ = node_fields(ref, part, medium, h)
+        fields[part] = (t_, r_, _diff(t_, r_))
     jb = grid.j_bottom
     z = np.arange(jb + 1) * h
-    cl_, cr_ = grid.i_left - run.i0 - 1, grid.i_right - run.i0 - 1
     plus = _mode_line(medium, freq, z, cr, +1)
     minus = _mode_line(medium, freq, z, cr, -1)
 
-    ap_ref_l, _ = mode_amplitudes(_line(ref_f, cl_, jb), plus, minus, freq, h)
-    ap_ref_r, _ = mode_amplitudes(_line(ref_f, cr_, jb), plus, minus, freq, h)
-    ap_tot_r, _ = mode_amplitudes(_line(tot, cr_, jb), plus, minus, freq, h)
-    sl_l = _line(sca, cl_, jb)
-    sl_r = _line(sca, cr_, jb)
+    def vline(part: str, which: int) -> dict:
+        return _line(fields[part][which], 0, jb)
+
+    ap_ref_l, _ = mode_amplitudes(vline("left", 1), plus, minus, freq, h)
+    ap_ref_r, _ = mode_amplitudes(vline("right", 1), plus, minus, freq, h)
+    ap_tot_r, _ = mode_amplitudes(vline("right", 0), plus, minus, freq, h)
+    sl_l = vline("left", 2)
+    sl_r = vline("right", 2)
     ap_sl, am_sl = mode_amplitudes(sl_l, plus, minus, freq, h)
     ap_sr, am_sr = mode_amplitudes(sl_r, plus, minus, freq, h)
     p_mode = _flux_x(plus, h)
@@ -730,8 +765,7 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     s_l, p_l = _ps_side(bulk_l, medium)
     s_r, p_r = _ps_side(bulk_r, medium)
 
-    cols = slice(cl_, cr_ + 1)
-    bot = {k: v[:, cols, jb] for k, v in sca.items()}
+    bot = {k: v[:, :, 0] for k, v in fields["bottom"][2].items()}
     pz = -np.real(bot["sxz"] * np.conj(bot["vx"]) + bot["szz"] * np.conj(bot["vz"]))
     bottom = np.sum(pz * _trap(pz.shape[-1]), -1) * h / p_inc
     shares, angles = _fk_split(bot["div"], bot["curl"], freq, medium, h)
@@ -769,18 +803,19 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
         fractions[c] = fractions[c] / s
 
     # energy balance of the closed box (total field), with and without the rods
-    def box_out(f: dict) -> np.ndarray:
-        right = _flux_x(_line(f, cr_, jb), h)
-        left = -_flux_x(_line(f, cl_, jb), h)
-        b_ = {k: v[:, cols, jb] for k, v in f.items()}
+    def box_out(which: int) -> np.ndarray:
+        right = _flux_x(vline("right", which), h)
+        left = -_flux_x(vline("left", which), h)
+        b_ = {k: v[:, :, 0] for k, v in fields["bottom"][which].items()}
         pzz = -np.real(b_["sxz"] * np.conj(b_["vx"]) + b_["szz"] * np.conj(b_["vz"]))
         return right + left + np.sum(pzz * _trap(pzz.shape[-1]), -1) * h
 
-    balance = (box_out(tot) + absorbed * p_inc) / p_inc
-    ref_balance = box_out(ref_f) / p_inc
+    balance = (box_out(0) + absorbed * p_inc) / p_inc
+    ref_balance = box_out(1) / p_inc
 
     # positions along the row (m from the first resonator)
-    x_nodes = (run.i0 + 1 + np.arange(tot["vz"].shape[1])) * h - grid.x_array
+    tot, ref_f, _ = fields["top"]
+    x_nodes = (run.offsets["top"][0] + 1 + np.arange(tot["vz"].shape[1])) * h - grid.x_array
     in_row = (x_nodes >= -0.5 * h) & (x_nodes <= layout_length)
     js = grid.j_shallow
     pz_t = -np.real(tot["sxz"][:, :, js] * np.conj(tot["vx"][:, :, js])
