@@ -305,8 +305,8 @@ class RunRecord:
     offsets[part]``; parts are the receiver strips ``left``, ``right`` (vertical lines),
     ``top`` (surface and shallow rows) and ``bottom`` (see :func:`receiver_blocks`);
     ``rod_c``, ``rod_v``: complex (n_f, n_rods) base force (N/m, compressive) and base
-    velocity (m/s). ``snapshots``: uz (m) on the full grid at ``snapshot_times`` (s). ``energy_left``: elastic + kinetic energy left in the
-    grid at the end over the peak energy seen.
+    velocity (m/s). ``snapshots``: uz (m) on the full grid at ``snapshot_times`` (s).
+    ``energy_left``: elastic + kinetic energy left in the model at the end over its peak.
     """
 
     freq: np.ndarray
