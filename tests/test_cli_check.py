@@ -217,3 +217,28 @@ def test_console_script_exit_codes(name):
                           text=True)
     assert good.returncode == 0
     assert json.loads(good.stdout)["substrate"]["cr"] > 0
+
+
+def test_quantity_type_in_argparse_gives_exit_2(monkeypatch, capsys):
+    """A subcommand option declared with quantity_type refuses a unitless value with exit 2."""
+    import optgrade.cli as cli
+    from optgrade.commands import quantity_type
+
+    class _Fake:
+        @staticmethod
+        def add_parser(subparsers):
+            parser = subparsers.add_parser("fake", help="test only")
+            parser.add_argument("--height", type=quantity_type("length", "--height"))
+            return parser
+
+        @staticmethod
+        def run(args):
+            print(f"height={args.height!r}")
+            return 0
+
+    monkeypatch.setattr(cli, "_discover", lambda: ({"fake": _Fake}, {}))
+    assert cli.main(["fake", "--height", "8 mm"]) == 0
+    assert "height=0.008" in capsys.readouterr().out
+    assert cli.main(["fake", "--height", "8"]) == 2
+    err = capsys.readouterr().err
+    assert "--height: '8' has no unit" in err and "Traceback" not in err
