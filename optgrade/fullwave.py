@@ -998,7 +998,8 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
     n_snapshots : int
         Displacement snapshots kept for figures and the animation.
     surrogate : object, optional
-        Surrogate to trace with (built from the study when omitted). When tracing fails the
+        Surrogate to trace with (default: the study's surrogate with the 2-D line model, the
+        like-for-like comparison). When tracing fails the
         verification is returned with ``agreement = None`` and the reason in ``info``.
     """
     if quality not in QUALITY:
@@ -1046,6 +1047,10 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
     try:
         from optgrade.propagation import trace_study
 
+        if surrogate is None:
+            from optgrade.surrogate import surrogate_for_study
+
+            surrogate = surrogate_for_study(study, model="line")
         trace = trace_study(study, layout, surrogate)
         agreement = compare(split.fractions, split.position, trace,
                             float(np.mean(layout.spacing)))

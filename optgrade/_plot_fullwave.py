@@ -1,0 +1,132 @@
+"""Figures of a full-wave verification (private): comparison, snapshots, animation.
+
+Every function draws into matplotlib objects it is given (or writes one file) and returns
+nothing; the caller chooses the backend and saves.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from optgrade.fullwave import CHANNELS
+
+LABELS = {
+    "transmitted_surface": "transmitted (surface)",
+    "reflected_surface": "reflected (surface)",
+    "forward_shear": "forward shear",
+    "forward_compressional": "forward compressional",
+    "backward_shear": "backward shear",
+    "backward_compressional": "backward compressional",
+    "absorbed": "absorbed",
+}
+
+
+def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
+    """Channel fractions against frequency: full-wave (solid) and the surrogate's 2-D line
+    model (dashed), and the 3-D lattice prediction (dotted) when given; last panel: energy
+    balance and direct-flux closure of the full-wave run."""
+    axes = fig.subplots(2, 4, sharex=True)
+    f_khz = ver.frequency / 1e3
+    sur = ver.surrogate
+    for ax, c in zip(axes.flat, CHANNELS, strict=False):
+        ax.plot(f_khz, ver.fractions[c], "-", color="C0", lw=1.6, label="full-wave 2-D")
+        if sur is not None:
+            ax.plot(sur.frequency / 1e3, sur.fractions[c], "--", color="C1", lw=1.3,
+                    label="surrogate, line model")
+        if lattice is not None:
+            ax.plot(lattice.frequency / 1e3, lattice.fractions[c], ":", color="C2", lw=1.3,
+                    label="surrogate, 3-D lattice")
+        title = LABELS[c]
+        if ver.agreement is not None:
+            title += f"\nmean |diff| {ver.agreement[c]['mean_abs_difference']:.3f}"
+        ax.set_title(title, fontsize=9)
+        ax.set_ylim(-0.02, 1.02)
+        ax.grid(alpha=0.3)
+    ax = axes.flat[-1]
+    ax.plot(f_khz, 100 * ver.balance_error, "-", color="k", label="box energy balance")
+    ax.plot(f_khz, 100 * (ver.closure - 1.0), "-", color="0.6", label="direct-flux closure - 1")
+    ax.axhline(2, color="r", lw=0.8, ls=":")
+    ax.axhline(-2, color="r", lw=0.8, ls=":")
+    ax.set_title("energy check (% of incident)", fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, loc="best")
+    axes.flat[0].legend(fontsize=7, loc="best")
+    for ax in axes[1]:
+        ax.set_xlabel("frequency (kHz)")
+    for ax in axes[:, 0]:
+        ax.set_ylabel("fraction of incident power")
+
+
+def _extent(grid: Any) -> list[float]:
+    """Image extent in mm, x measured from the first resonator, depth down."""
+    x0 = -grid.x_array
+    return [1e3 * x0, 1e3 * (x0 + (grid.nx - 1) * grid.h), 1e3 * (grid.nz - 1) * grid.h, 0.0]
+
+
+def _draw_frame(ax: Any, field: np.ndarray, grid: Any, rods: Any, vmax: float) -> Any:
+    im = ax.imshow(field.T, extent=_extent(grid), cmap="RdBu_r", vmin=-vmax, vmax=vmax,
+                   aspect="equal", interpolation="nearest")
+    if rods is not None:
+        xs = 1e3 * rods.x
+        ax.vlines(xs, -1e3 * rods.height, 0.0, color="k", lw=0.8)
+    p = grid.n_pml * grid.h * 1e3
+    ext = _extent(grid)
+    ax.axvspan(ext[0], ext[0] + p, color="0.85", alpha=0.6, lw=0)
+    ax.axvspan(ext[1] - p, ext[1], color="0.85", alpha=0.6, lw=0)
+    ax.axhspan(ext[2] - p, ext[2], color="0.85", alpha=0.6, lw=0)
+    xl = 1e3 * (grid.i_left * grid.h - grid.x_array)
+    xr = 1e3 * (grid.i_right * grid.h - grid.x_array)
+    zb = 1e3 * grid.j_bottom * grid.h
+    ax.plot([xl, xl, xr, xr], [0, zb, zb, 0], color="0.3", lw=0.7, ls="--")
+    xs = 1e3 * (grid.i_source * grid.h - grid.x_array)
+    ax.plot([xs], [0], marker="v", color="g", ms=6)
+    top = -1e3 * float(np.max(rods.height)) * 1.15 if rods is not None else -1.0
+    ax.set_ylim(ext[2], top)
+    return im
+
+
+def plot_snapshots(fig: Any, snapshots: np.ndarray, times: np.ndarray, grid: Any,
+                   rods: Any = None, n_panels: int = 4) -> None:
+    """A few time snapshots of the vertical displacement uz (colour, common scale) with the
+    rods drawn to scale above the surface, the receiver box (dashed), the source (green
+    triangle) and the absorbing layers (grey)."""
+    if len(snapshots) == 0:
+        return
+    picks = np.linspace(len(snapshots) * 0.12, len(snapshots) * 0.6, n_panels).astype(int)
+    vmax = float(np.percentile(np.abs(snapshots[picks]), 99.7)) or 1.0
+    axes = fig.subplots(n_panels, 1, sharex=True)
+    for ax, k in zip(np.atleast_1d(axes), picks, strict=True):
+        im = _draw_frame(ax, snapshots[k], grid, rods, vmax)
+        ax.set_title(f"vertical displacement u_z, t = {1e6 * times[k]:.1f} us", fontsize=9)
+        ax.set_ylabel("depth (mm)")
+    np.atleast_1d(axes)[-1].set_xlabel("x from the first resonator (mm)")
+    fig.colorbar(im, ax=axes, shrink=0.6, label="u_z (arbitrary units)")
+
+
+def write_animation(path: Any, snapshots: np.ndarray, times: np.ndarray, grid: Any,
+                    rods: Any = None, fps: int = 8) -> bool:
+    """Write an animated GIF of the uz snapshots (matplotlib's Pillow writer). Returns False
+    when no Pillow is available."""
+    import matplotlib.pyplot as plt
+    from matplotlib import animation
+
+    if not animation.writers.is_available("pillow") or len(snapshots) == 0:
+        return False
+    vmax = float(np.percentile(np.abs(snapshots), 99.7)) or 1.0
+    fig, ax = plt.subplots(figsize=(9, 3.4), layout="constrained")
+    im = _draw_frame(ax, snapshots[0], grid, rods, vmax)
+    title = ax.set_title("")
+    ax.set_xlabel("x from the first resonator (mm)")
+    ax.set_ylabel("depth (mm)")
+
+    def update(k: int):
+        im.set_data(snapshots[k].T)
+        title.set_text(f"u_z, t = {1e6 * times[k]:.1f} us")
+        return im, title
+
+    anim = animation.FuncAnimation(fig, update, frames=len(snapshots), blit=False)
+    anim.save(str(path), writer=animation.PillowWriter(fps=fps), dpi=80)
+    plt.close(fig)
+    return True

@@ -1,0 +1,189 @@
+"""``optgrade verify STUDY --layout TABLE.csv --out DIR [--fast]``: full-wave check of a layout.
+
+Runs the 2-D plane-strain full-wave solver (optgrade.fullwave) on the layout, once with the
+resonators and once on the bare substrate, splits the outgoing power into the trace.json
+channels and compares them with the surrogate's 2-D line model. Writes
+
+- ``DIR/verify.json``: the trace.json keys (``frequency_hz``, ``fractions``, ``position_m``,
+  ``angle_deg``) plus ``agreement`` (per channel: mean absolute difference over the band and
+  conversion-position difference in cells), ``energy`` (box balance and direct-flux closure)
+  and ``fullwave`` (grid, timing, diagnostics); a ``caution`` for site-scale studies;
+- ``DIR/comparison.png`` (surrogate against full-wave, per channel), ``DIR/snapshots.png``
+  (displacement field at four moments) and ``DIR/animation.gif`` (when Pillow is available).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from optgrade.commands import add_study_argument, open_study
+from optgrade.errors import StudyError
+
+__all__ = ["add_parser", "run", "run_verify"]
+
+
+def add_parser(subparsers: Any) -> argparse.ArgumentParser:
+    """Register ``optgrade verify``."""
+    parser = subparsers.add_parser(
+        "verify",
+        help="full-wave 2-D check of a layout against the surrogate",
+        description=(
+            "Simulate the layout in the time domain (2-D plane strain, rows of rods smeared "
+            "along the row, absorbing layers, broadband Rayleigh-wave source), split the "
+            "outgoing power into the same channels as 'optgrade trace' and compare them with "
+            "the surrogate's 2-D line model. Writes DIR/verify.json, DIR/comparison.png, "
+            "DIR/snapshots.png and DIR/animation.gif."
+        ),
+    )
+    add_study_argument(parser)
+    parser.add_argument("--layout", required=True, metavar="TABLE.csv",
+                        help="resonator table (columns index, x_mm, height_mm, diameter_mm, "
+                             "head_mass_kg, height_tol_mm; '#' header lines allowed)")
+    parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    parser.add_argument("--fast", action="store_true",
+                        help="coarse grid (10 points per shortest Rayleigh wavelength instead "
+                             "of 20): about 8x quicker, a few per cent less accurate")
+    parser.add_argument("--no-animation", action="store_true", help="skip animation.gif")
+    parser.add_argument("--no-lattice", action="store_true",
+                        help="do not draw the 3-D lattice prediction beside the line model")
+    parser.set_defaults(handler=run)
+    return parser
+
+
+def _write_json_atomic(path: Path, payload: dict) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(payload, fh, indent=1, allow_nan=False)
+            fh.write("\n")
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _save_atomic(fig: Any, path: Path, dpi: int = 130) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent)
+    os.close(fd)
+    try:
+        fig.savefig(tmp, dpi=dpi)
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
+               is_animation: bool = True, is_lattice: bool = True, console: Any = None) -> dict:
+    """Verify ``layout`` for ``study`` and write verify.json and the figures into ``out``.
+
+    Returns the JSON payload. The same function backs the command line.
+    """
+    from optgrade import _plot_fullwave as pf
+    from optgrade.fullwave import CHANNELS, SITE_CAUTION, rods_of, verify
+
+    say = console.print if console is not None else (lambda *a, **k: None)
+    ver = verify(study, layout, quality="fast" if is_fast else "normal",
+                 progress=console is not None)
+    lattice = None
+    if is_lattice:
+        try:
+            from optgrade.propagation import trace_study
+            from optgrade.surrogate import surrogate_for_study
+
+            lattice = trace_study(study, layout, surrogate_for_study(study, model="lattice"))
+        except Exception as exc:  # the figure is still useful without it
+            say(f"[yellow]note[/]: no 3-D lattice prediction ({type(exc).__name__}: {exc})")
+    payload = {
+        "study": study.meta.name,
+        "n_resonators": int(layout.x.size),
+        "length_m": float(layout.length),
+        "model": "line (full-wave 2-D)",
+        **ver.to_dict(),
+    }
+    is_site = getattr(study.meta, "scale", "bench") == "site"
+    if is_site:
+        payload["caution"] = SITE_CAUTION
+    out.mkdir(parents=True, exist_ok=True)
+    _write_json_atomic(out / "verify.json", payload)
+
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    rods = rods_of(study, layout)
+    fig = plt.figure(figsize=(13, 6.2), layout="constrained")
+    pf.plot_comparison(fig, ver, lattice)
+    note = " (site scale: see caution in verify.json)" if is_site else ""
+    fig.suptitle(f"{study.meta.name}: full-wave 2-D check against the surrogate{note}")
+    _save_atomic(fig, out / "comparison.png")
+    plt.close(fig)
+
+    run_rec, grid = ver.run, ver.grid
+    fig = plt.figure(figsize=(10, 9), layout="constrained")
+    pf.plot_snapshots(fig, run_rec.snapshots, run_rec.snapshot_times, grid, rods)
+    _save_atomic(fig, out / "snapshots.png")
+    plt.close(fig)
+    n_files = 3
+    if is_animation:
+        tmp = out / ".animation.tmp.gif"
+        if pf.write_animation(tmp, run_rec.snapshots, run_rec.snapshot_times, grid, rods):
+            os.replace(tmp, out / "animation.gif")
+            n_files += 1
+        else:
+            say("[yellow]note[/]: no GIF writer (Pillow) available; animation skipped")
+
+    say(f"[bold]{study.meta.name}[/]: {layout.x.size} resonators, {ver.frequency.size} "
+        f"frequencies, grid {grid.nx} x {grid.nz} (h = {grid.h * 1e3:.3g} mm), "
+        f"{ver.info['n_steps']} steps in {ver.info['seconds']:.1f} s")
+    say(f"  energy balance within {100 * ver.info['max_balance_error']:.2f} % of the incident "
+        "power")
+    for c in CHANNELS:
+        line = f"  band-mean {c:<24s} {float(np.mean(ver.fractions[c])):7.3f}"
+        if ver.agreement is not None:
+            a = ver.agreement[c]
+            line += f"   surrogate {float(np.mean(ver.surrogate.fractions[c])):7.3f}"
+            line += f"   mean |diff| {a['mean_abs_difference']:.3f}"
+            if a["position_difference_cells"] is not None:
+                line += f"   position diff {a['position_difference_cells']:.1f} cells"
+        say(line)
+    if ver.agreement is None:
+        say(f"[yellow]no surrogate comparison[/]: {ver.info.get('surrogate_error')}")
+    if is_site:
+        say(f"[yellow]CAUTION: {SITE_CAUTION}[/]")
+    say(f"wrote {out / 'verify.json'} and {n_files - 1} figure files")
+    return payload
+
+
+def run(args: argparse.Namespace) -> int:
+    """Entry point of ``optgrade verify``."""
+    from rich.console import Console
+
+    from optgrade.layout import TableError, read_table
+
+    study = open_study(args.study)
+    try:
+        layout = read_table(args.layout)
+    except TableError as exc:
+        raise StudyError([f"--layout: {m}" for m in exc.messages]) from None
+    except (OSError, ValueError) as exc:
+        raise StudyError([f"--layout: {args.layout}: {exc}"]) from None
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise StudyError([f"--out: {out} exists and is not a folder"])
+    console = Console(highlight=False)
+    run_verify(study, layout, out, is_fast=args.fast, is_animation=not args.no_animation,
+               is_lattice=not args.no_lattice, console=console)
+    return 0
