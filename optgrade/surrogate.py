@@ -1,12 +1,62 @@
-"""Fast local dispersion from tabulated lattice sums (surrogate) -> LocalModes."""
+"""Fast local dispersion from tabulated lattice sums: the surrogate behind every search trial.
+
+The rod enters the Bloch relation 1/Z(w) = Sigma(K, w) only through 1/Z, and Sigma splits into
+two closed-form harmonics and a smooth rest (see `optgrade.bands`):
+
+    Sigma = T_0(K) + T_-1(K) + Rest(K, w; a)
+
+So the surrogate tabulates Rest once per substrate, contact radius, row pitch and model, on
+
+* spacing levels a_l across the spacing range (one level if the range is a single value),
+  geometrically spaced with a ratio of at most 1 + `LEVEL_STEP`; Rest at another spacing is the
+  4-point Lagrange (cubic) interpolation between neighbouring levels;
+* kappa = K a / pi on [-3 dk, 1 + 3 dk] (Rest is symmetric about kappa = 1, the zone edge, so
+  the extended zone 1 < kappa < 2 reads the mirror), cubic (Catmull-Rom) interpolation;
+* angular frequency w uniform over the (padded) frequency range, linear interpolation;
+
+and then solves any rod height, head mass and spacing with the compiled root kernel below (same
+algorithm as `optgrade.bands.solve_points`, exact closed-form T_0 and T_-1 at complex K, so the
+tables only have to carry the smooth part). Accuracy against the direct solver is measured in
+tests/test_surrogate.py (|dK'|/K' < 1e-3 on bound branches, K'' within 5 %).
+
+Disk cache: one memory-mappable ``<key>.npy`` (complex table) plus ``<key>.json`` (key, format
+version, grids, SHA-256 of the table bytes) under ``cache_dir`` (default: environment variable
+OPTGRADE_CACHE or ~/.cache/optgrade). The key hashes every input and `FORMAT_VERSION`. A file
+whose stored key or checksum does not match, or that cannot be read, is rebuilt, never trusted.
+Writes are atomic (temporary file then os.replace).
+"""
 
 from __future__ import annotations
 
+import cmath
+import hashlib
+import json
+import math
+import os
+import tempfile
 from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numba import njit
+from numpy.typing import ArrayLike
 
-__all__ = ["LocalModes"]
+from optgrade.halfspace import Substrate
+from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum
+from optgrade.resonators import Rod, rod_compliance
+
+__all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
+
+#: bump when the table layout or the lattice-sum numerics change
+FORMAT_VERSION = 1
+#: largest ratio between neighbouring spacing levels, minus one
+LEVEL_STEP = 0.04
+#: table resolution: points along kappa in [0, 1] and along w
+N_KAPPA = 49
+N_FREQ = 97
+#: relative padding of the frequency range in `Surrogate.from_study`
+FREQ_PAD = 0.05
 
 
 @dataclass(frozen=True)
@@ -25,3 +75,656 @@ class LocalModes:
     k: np.ndarray
     shares: np.ndarray
     angle: np.ndarray
+
+
+def default_cache_dir() -> Path:
+    """Cache directory: $OPTGRADE_CACHE or ~/.cache/optgrade."""
+    env = os.environ.get("OPTGRADE_CACHE")
+    return Path(env) if env else Path.home() / ".cache" / "optgrade"
+
+
+def _spacing_levels(lo: float, hi: float) -> np.ndarray:
+    if hi < lo:
+        raise ValueError(f"spacing_range must be increasing, got ({lo}, {hi})")
+    if hi <= lo * (1.0 + 1e-12):
+        return np.array([lo])
+    n = int(np.ceil(np.log(hi / lo) / np.log1p(LEVEL_STEP))) + 1
+    n = max(n, 4)
+    return np.geomspace(lo, hi, n)
+
+
+def _lagrange_weights(levels: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Indices (n, k) and weights (n, k) of cubic (4-point) Lagrange interpolation in log a."""
+    n_lev = levels.size
+    if n_lev == 1:
+        return np.zeros((a.size, 1), dtype=int), np.ones((a.size, 1))
+    x = np.log(levels)
+    xa = np.log(a)
+    k = min(4, n_lev)
+    j = np.clip(np.searchsorted(x, xa) - k // 2, 0, n_lev - k)
+    idx = j[:, None] + np.arange(k)[None, :]
+    xs = x[idx]
+    wts = np.ones((a.size, k))
+    for i in range(k):
+        for m in range(k):
+            if m != i:
+                wts[:, i] *= (xa - xs[:, m]) / (xs[:, i] - xs[:, m])
+    return idx, wts
+
+
+class Surrogate:
+    """Tabulated dispersion of one substrate / rod material / row pitch / model.
+
+    Parameters
+    ----------
+    substrate : Substrate
+    rod : Rod
+        Rod material and diameter (height and head mass are free per call).
+    row_pitch : float
+        Row pitch b (m).
+    spacing_range : tuple of float
+        Smallest and largest spacing a (m) the tables must cover.
+    freq_range : tuple of float
+        Frequency range (Hz) the tables must cover.
+    model : {"lattice", "line", "homogenised"}
+    cache_dir : path, optional
+        Table cache directory (default `default_cache_dir()`); ``False`` disables the cache.
+    """
+
+    def __init__(
+        self,
+        substrate: Substrate,
+        rod: Rod,
+        row_pitch: float,
+        spacing_range: tuple[float, float],
+        freq_range: tuple[float, float],
+        model: str = "lattice",
+        cache_dir: str | os.PathLike | None | bool = None,
+    ) -> None:
+        if model not in MODELS:
+            raise ValueError(f"model must be one of {MODELS}, got {model!r}")
+        f_lo, f_hi = (float(v) for v in freq_range)
+        if not (0 < f_lo < f_hi):
+            raise ValueError(f"freq_range must be increasing and positive, got {freq_range}")
+        self.substrate = substrate
+        self.rod = rod
+        self.row_pitch = float(row_pitch)
+        self.model = model
+        self.spacing_range = (float(spacing_range[0]), float(spacing_range[1]))
+        self.freq_range = (f_lo, f_hi)
+        self.levels = _spacing_levels(*self.spacing_range)
+        self.dk = 1.0 / (N_KAPPA - 1)
+        self.kappa = -3 * self.dk + self.dk * np.arange(N_KAPPA + 6)
+        self.omega = np.linspace(2 * np.pi * f_lo, 2 * np.pi * f_hi, N_FREQ)
+        self.was_loaded = False
+        self.cache_path: Path | None = None
+        self.table = self._load_or_build(cache_dir)
+
+    # -- construction -------------------------------------------------------------------
+    @classmethod
+    def from_study(cls, study: Any, model: str | None = None, cache_dir=None) -> Surrogate:
+        """Surrogate for a validated study: its substrate, resonator, spacing range and goal
+        band (padded by `FREQ_PAD`); model defaults to ``study.goal.model``."""
+        sub = study.substrate
+        res = study.resonator
+        substrate = Substrate(
+            float(sub.density), float(sub.cl), float(sub.ct), float(sub.loss_factor or 0.0)
+        )
+        rod = Rod(
+            float(res.youngs_modulus),
+            float(res.density),
+            float(res.diameter),
+            float(res.loss_factor or 0.0),
+        )
+        f_lo, f_hi = (float(v) for v in study.goal.band)
+        span = f_hi - f_lo
+        band = (max(f_lo - FREQ_PAD * span, 0.5 * f_lo), f_hi + FREQ_PAD * span)
+        return cls(
+            substrate,
+            rod,
+            float(res.row_pitch),
+            tuple(float(v) for v in study.layout.spacing),
+            band,
+            model=model or getattr(study.goal, "model", "lattice"),
+            cache_dir=cache_dir,
+        )
+
+    def key(self) -> str:
+        """Hash of every input of the tables and the format version (hex)."""
+        s = self.substrate
+        payload = {
+            "format": FORMAT_VERSION,
+            "substrate": [s.density, s.cl, s.ct, s.loss_factor],
+            "radius": self.rod.radius,
+            "row_pitch": self.row_pitch,
+            "model": self.model,
+            "levels": [float(v) for v in self.levels],
+            "kappa": [N_KAPPA, float(self.kappa[0]), float(self.dk)],
+            "omega": [float(self.omega[0]), float(self.omega[-1]), N_FREQ],
+            "sums": [_STATIC_XR, _DYNAMIC_XR, _DYNAMIC_KT],
+        }
+        text = json.dumps(payload, sort_keys=True)
+        return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+    def build_table(self) -> np.ndarray:
+        """Compute Rest on (levels, kappa, omega) by direct lattice sums (complex, m/N)."""
+        out = np.empty((self.levels.size, self.kappa.size, self.omega.size), dtype=complex)
+        for i, a in enumerate(self.levels):
+            K = self.kappa[:, None] * np.pi / a
+            out[i] = lattice_sum(
+                K,
+                self.omega[None, :],
+                self.substrate,
+                float(a),
+                self.row_pitch,
+                self.rod.radius,
+                self.model,
+                exclude_main=True,
+            )
+        return out
+
+    def _load_or_build(self, cache_dir) -> np.ndarray:
+        if cache_dir is False:
+            return self.build_table()
+        root = Path(cache_dir) if cache_dir is not None else default_cache_dir()
+        key = self.key()
+        path = root / f"tables-{key}.npy"
+        meta_path = root / f"tables-{key}.json"
+        self.cache_path = path
+        table = _read_cached(path, meta_path, key, self._shape())
+        if table is not None:
+            self.was_loaded = True
+            return table
+        table = self.build_table()
+        try:
+            root.mkdir(parents=True, exist_ok=True)
+            _write_cached(path, meta_path, key, table)
+            loaded = _read_cached(path, meta_path, key, self._shape())
+            if loaded is not None:
+                return loaded
+        except OSError:
+            pass
+        return table
+
+    def _shape(self) -> tuple[int, int, int]:
+        return (self.levels.size, self.kappa.size, self.omega.size)
+
+    # -- queries ------------------------------------------------------------------------
+    @property
+    def cr(self) -> float:
+        """Rayleigh speed of the substrate (m/s)."""
+        return self.substrate.cr
+
+    def local_modes(
+        self,
+        height: ArrayLike,
+        spacing: ArrayLike,
+        head_mass: ArrayLike,
+        freq: ArrayLike,
+    ) -> LocalModes:
+        """Local Bloch modes of cells (arrays broadcast together) at frequencies freq (Hz).
+
+        Spacing must lie in ``spacing_range`` (2 % tolerance) and freq in ``freq_range``
+        (frequencies outside are clipped to the table edge for Rest only).
+        """
+        h, a, m = np.broadcast_arrays(
+            np.atleast_1d(np.asarray(height, float)),
+            np.atleast_1d(np.asarray(spacing, float)),
+            np.atleast_1d(np.asarray(head_mass, float)),
+        )
+        h, a, m = h.ravel(), a.ravel(), m.ravel()
+        freq = np.atleast_1d(np.asarray(freq, dtype=float))
+        lo, hi = self.spacing_range
+        if np.any(a < lo * 0.98) or np.any(a > hi * 1.02):
+            raise ValueError(
+                f"spacing outside the surrogate's range [{lo:.6g}, {hi:.6g}] m: "
+                f"got [{a.min():.6g}, {a.max():.6g}]"
+            )
+        w = 2 * np.pi * freq
+        iz = rod_compliance(w[None, :], self.rod, h[:, None], m[:, None])
+        idx, wts = _lagrange_weights(self.levels, a)
+        slices = _blend_levels(np.asarray(self.table), idx, wts)
+        n_c, n_f = a.size, freq.size
+        out_k = np.full((2, n_c, n_f), np.nan + 0j)
+        out_sh = np.zeros((2, 5, n_c, n_f))
+        out_an = np.full((2, 4, n_c, n_f), np.nan)
+        out_fo = np.zeros((2, n_c, n_f), dtype=np.bool_)
+        s = self.substrate
+        clc, ctc = s.complex_speeds
+        solve_grid(
+            w,
+            np.ascontiguousarray(iz, dtype=complex),
+            a,
+            np.ascontiguousarray(slices),
+            float(self.kappa[0]),
+            float(self.dk),
+            float(self.omega[0]),
+            float(self.omega[1] - self.omega[0]),
+            float(s.cl),
+            float(s.ct),
+            float(s.cr),
+            complex(clc),
+            complex(ctc),
+            complex(s.mu),
+            complex(s.complex_mu),
+            self.row_pitch,
+            self.rod.radius,
+            {"lattice": 0, "line": 1, "homogenised": 2}[self.model],
+            _COEF,
+            out_k,
+            out_sh,
+            out_an,
+            out_fo,
+        )
+        self.last_first_order = out_fo
+        return LocalModes(k=out_k, shares=out_sh, angle=out_an)
+
+
+def surrogate_for_study(study: Any, model: str | None = None, cache_dir=None) -> Surrogate:
+    """Shorthand for `Surrogate.from_study` (used by the propagation stage)."""
+    return Surrogate.from_study(study, model=model, cache_dir=cache_dir)
+
+
+def _sha256(arr: np.ndarray) -> str:
+    return hashlib.sha256(np.ascontiguousarray(arr).view(np.uint8)).hexdigest()
+
+
+def _read_cached(path: Path, meta_path: Path, key: str, shape) -> np.ndarray | None:
+    try:
+        meta = json.loads(meta_path.read_text())
+        if meta.get("key") != key or meta.get("format") != FORMAT_VERSION:
+            return None
+        table = np.load(path, mmap_mode="r", allow_pickle=False)
+        if table.shape != tuple(shape) or table.dtype != np.complex128:
+            return None
+        if _sha256(table) != meta.get("sha256"):
+            return None
+        return table
+    except (OSError, ValueError, json.JSONDecodeError, TypeError, AttributeError):
+        return None
+
+
+def _atomic_write(path: Path, write) -> None:
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            write(fh)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> None:
+    _atomic_write(path, lambda fh: np.save(fh, table, allow_pickle=False))
+    meta = {"key": key, "format": FORMAT_VERSION, "sha256": _sha256(table), "shape": table.shape}
+    _atomic_write(meta_path, lambda fh: fh.write(json.dumps(meta).encode()))
+
+
+# ---------------------------------------------------------------------------------------
+# Compiled root kernel: the algorithm of optgrade.bands.solve_points, one point at a time.
+# ---------------------------------------------------------------------------------------
+N_SCAN = 16
+MAX_ILLINOIS = 60
+N_NEWTON = 4
+
+# Taylor coefficients of 2 J1(x)/x in x^2 (|x| <= 4 is all the two main terms need)
+_COEF = np.array(
+    [(-1.0) ** k / (4.0**k * math.factorial(k) * math.factorial(k + 1)) for k in range(15)]
+)
+
+
+@njit(cache=True)
+def _blend_levels(table, idx, wts):
+    """Per-cell table slices: sum_k wts[c, k] table[idx[c, k]] (spacing interpolation)."""
+    nc = idx.shape[0]
+    out = np.zeros((nc, table.shape[1], table.shape[2]), dtype=np.complex128)
+    for c in range(nc):
+        for k in range(idx.shape[1]):
+            wk = wts[c, k]
+            src = table[idx[c, k]]
+            for i in range(table.shape[1]):
+                for j in range(table.shape[2]):
+                    out[c, i, j] += wk * src[i, j]
+    return out
+
+
+@njit(cache=True)
+def _vert(q, k2):
+    d = q - k2
+    if d.real < 0.0:
+        return -1j * cmath.sqrt(-d)
+    return cmath.sqrt(d)
+
+
+@njit(cache=True)
+def _compliance(q, kl2, kt2, mu):
+    alpha = _vert(q, kl2)
+    beta = _vert(q, kt2)
+    a = (2.0 * q - kt2) ** 2
+    b = 4.0 * q * alpha * beta
+    den = a + b
+    if abs(den) >= abs(a):
+        num = (
+            16.0 * q**3 * (kl2 - kt2)
+            + 8.0 * q**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
+            - 8.0 * q * kt2**3
+            + kt2**4
+        )
+        r = num / den
+    else:
+        r = a - b
+    return -alpha * kt2 / (mu * r)
+
+
+@njit(cache=True)
+def _ff2(q, radius, model, coef):
+    # model: 0 lattice (disc), 1 line (strip), 2 homogenised
+    if model == 2:
+        return 1.0 + 0j
+    x2 = q * radius * radius
+    if model == 0:
+        s = coef[coef.size - 1] * x2 + coef[coef.size - 2]
+        for i in range(coef.size - 3, -1, -1):
+            s = s * x2 + coef[i]
+    else:
+        if abs(x2) < 1e-12:
+            s = 1.0 - x2 / 6.0
+        else:
+            x = cmath.sqrt(x2 + 0j)
+            s = cmath.sin(x) / x
+    return s * s + 0j
+
+
+@njit(cache=True)
+def _main(K, a, b, radius, model, kl2, kt2, mu, coef):
+    q0 = K * K
+    t = _compliance(q0, kl2, kt2, mu) * _ff2(q0, radius, model, coef)
+    if model != 2:
+        x = K - 2.0 * math.pi / a
+        q1 = x * x
+        t += _compliance(q1, kl2, kt2, mu) * _ff2(q1, radius, model, coef)
+    return t / (a * b)
+
+
+@njit(cache=True)
+def _rest(K, a, table, k0, dk, wi, wt):
+    """Rest and dRest/dK at real K from one cell's table slice (n_kappa, n_w)."""
+    kap = K * a / math.pi
+    sgn = 1.0
+    if kap > 1.0:
+        kap = 2.0 - kap
+        sgn = -1.0
+    t = (kap - k0) / dk
+    j = int(math.floor(t))
+    n = table.shape[0]
+    if j < 1:
+        j = 1
+    if j > n - 3:
+        j = n - 3
+    u = t - j
+    # Catmull-Rom weights and derivatives
+    u2 = u * u
+    u3 = u2 * u
+    c0 = -0.5 * u3 + u2 - 0.5 * u
+    c1 = 1.5 * u3 - 2.5 * u2 + 1.0
+    c2 = -1.5 * u3 + 2.0 * u2 + 0.5 * u
+    c3 = 0.5 * u3 - 0.5 * u2
+    d0 = -1.5 * u2 + 2.0 * u - 0.5
+    d1 = 4.5 * u2 - 5.0 * u
+    d2 = -4.5 * u2 + 4.0 * u + 0.5
+    d3 = 1.5 * u2 - u
+    val = 0j
+    der = 0j
+    for m in range(4):
+        cm = (c0, c1, c2, c3)[m]
+        dm = (d0, d1, d2, d3)[m]
+        v = (1.0 - wt) * table[j - 1 + m, wi] + wt * table[j - 1 + m, wi + 1]
+        val += cm * v
+        der += dm * v
+    return val, sgn * der / dk * a / math.pi
+
+
+@njit(cache=True)
+def _split_shear(xi2, kl2, kt2):
+    p = math.sqrt(max(kl2 - xi2, 0.0))
+    q = math.sqrt(max(kt2 - xi2, 0.0))
+    if q <= 0.0:
+        return 0.0
+    if p <= 0.0:
+        return 1.0
+    ratio = 4.0 * xi2 * p * q / (2.0 * xi2 - kt2) ** 2
+    return ratio / (1.0 + ratio)
+
+
+@njit(cache=True)
+def solve_grid(
+    w_arr,
+    inv_z,
+    a_arr,
+    slices,
+    k0,
+    dk,
+    w0,
+    dw,
+    cl,
+    ct,
+    cr,
+    clc,
+    ctc,
+    mu,
+    muc,
+    b,
+    radius,
+    model,
+    coef,
+    out_k,
+    out_sh,
+    out_an,
+    out_fo,
+):
+    """Fill out_k (2, nc, nf), out_sh (2, 5, nc, nf), out_an (2, 4, nc, nf), out_fo (2, nc, nf)."""
+    nc = a_arr.size
+    nf = w_arr.size
+    nw = slices.shape[2]
+    pi = math.pi
+    for ic in range(nc):
+        a = a_arr[ic]
+        g = 2.0 * pi / a
+        table = slices[ic]
+        for jf in range(nf):
+            w = w_arr[jf]
+            iz = inv_z[ic, jf]
+            t = (w - w0) / dw
+            wi = int(math.floor(t))
+            if wi < 0:
+                wi = 0
+            if wi > nw - 2:
+                wi = nw - 2
+            wt = min(max(t - wi, 0.0), 1.0)
+            kl2_0 = (w / cl) ** 2 + 0j
+            kt2_0 = (w / ct) ** 2 + 0j
+            kl2 = (w / clc) ** 2
+            kt2 = (w / ctc) ** 2
+            kr = w / cr
+            kfold = g - kr
+            below = kr < 0.5 * g
+            for br in range(2):
+                if br == 0:
+                    lo = kr
+                    if model == 2:
+                        hi = 0.5 * g
+                    elif below:
+                        hi = kfold
+                    else:
+                        hi = g
+                    valid = hi > lo * (1.0 + 1e-9)
+                    has_fold = below and model != 2
+                else:
+                    hi = kr
+                    if below or model == 2:
+                        lo = 1e-3 * kr
+                    else:
+                        lo = kfold
+                    valid = hi > lo * (1.0 + 1e-9) and (model == 2 or kr < g)
+                    has_fold = (not below) and model != 2
+                if not valid:
+                    continue
+                # scan outwards from the pole
+                kprev = 0.0
+                hprev = 0.0
+                h_first = 0.0
+                found = False
+                ka = 0.0
+                kb = 0.0
+                ha = 0.0
+                hb = 0.0
+                for js in range(N_SCAN + 1):
+                    if js == 0:
+                        u = 1e-9
+                    elif js == N_SCAN:
+                        u = 1.0 - 1e-9
+                    else:
+                        u = (js / N_SCAN) ** 2
+                    if br == 0:
+                        K = lo + (hi - lo) * u
+                    else:
+                        K = hi - (hi - lo) * u
+                    rv, _ = _rest(K, a, table, k0, dk, wi, wt)
+                    f = (
+                        _main(K + 0j, a, b, radius, model, kl2_0, kt2_0, mu, coef) + rv
+                    ).real - iz.real
+                    pole = (K - kr) if br == 0 else (kr - K)
+                    other = 1.0
+                    if has_fold:
+                        other = (hi - K) if br == 0 else (K - lo)
+                    h = f * pole * other
+                    if js == 0:
+                        h_first = h
+                    elif (h > 0.0) != (h_first > 0.0):
+                        ka, ha, kb, hb = kprev, hprev, K, h
+                        found = True
+                        break
+                    kprev, hprev = K, h
+                if not found:
+                    continue
+                for _ in range(MAX_ILLINOIS):
+                    den = hb - ha
+                    if den != 0.0:
+                        kc = (ka * hb - kb * ha) / den
+                    else:
+                        kc = 0.5 * (ka + kb)
+                    rv, _ = _rest(kc, a, table, k0, dk, wi, wt)
+                    f = (
+                        _main(kc + 0j, a, b, radius, model, kl2_0, kt2_0, mu, coef) + rv
+                    ).real - iz.real
+                    pole = (kc - kr) if br == 0 else (kr - kc)
+                    other = 1.0
+                    if has_fold:
+                        other = (hi - kc) if br == 0 else (kc - lo)
+                    hc = f * pole * other
+                    if (hc > 0.0) != (hb > 0.0):
+                        ka, ha = kb, hb
+                    else:
+                        ha = 0.5 * ha
+                    moved = abs(kc - kb)
+                    kb, hb = kc, hc
+                    if abs(kb - ka) <= 1e-13 * abs(kc) or hc == 0.0 or moved <= 1e-13 * abs(kc):
+                        break
+                k_re = kb
+                hstep = 1e-6 * pi / a
+                r0, dr0 = _rest(k_re, a, table, k0, dk, wi, wt)
+                m0 = _main(k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef)
+                dm0 = (
+                    _main(k_re + hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef)
+                    - _main(k_re - hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef)
+                ) / (2.0 * hstep)
+                d0 = iz - m0 - r0
+                dd0 = -(dm0 + dr0)
+                k_first = k_re + 1j * (-d0.imag / dd0.real)
+                kk = k_re + 0j
+                step = 0j
+                n_newton = N_NEWTON
+                if abs(d0.imag) <= 1e-14 * abs(iz) + 1e-300:
+                    n_newton = 0  # lossless bound root: already exact on the real axis
+                for _ in range(n_newton):
+                    m = _main(kk, a, b, radius, model, kl2, kt2, muc, coef)
+                    dm = (_main(kk + hstep, a, b, radius, model, kl2, kt2, muc, coef) - m) / hstep
+                    d = iz - m - (r0 + (kk - k_re) * dr0)
+                    dd = -(dm + dr0)
+                    step = d / dd
+                    kk = kk - step
+                    if abs(step) <= 1e-10 * abs(kk):
+                        break
+                ok = (
+                    math.isfinite(kk.real)
+                    and math.isfinite(kk.imag)
+                    and abs(step) <= 1e-7 * abs(kk)
+                )
+                kt_s = w / ct
+                kl_s = w / cl
+                edges = (kt_s, kl_s, g - kt_s, g - kl_s)
+                for e in edges:
+                    if (kk.real > e) != (k_re > e):
+                        ok = False
+                if kk.imag < -1e-9 * abs(kk):
+                    ok = False
+                fo = False
+                if not ok:
+                    kk = k_first
+                    fo = True
+                if not (math.isfinite(kk.real) and math.isfinite(kk.imag)):
+                    continue
+                if abs(kk.imag) > kk.real:
+                    continue
+                out_k[br, ic, jf] = kk
+                out_fo[br, ic, jf] = fo
+                # shares at K'
+                kp = kk.real
+                kl2r = (w / cl) ** 2
+                kt2r = (w / ct) ** 2
+                p0 = 0.0
+                p1 = 0.0
+                p2 = 0.0
+                p3 = 0.0
+                for mi in range(2):
+                    if model == 2 and mi == 1:
+                        continue
+                    kx = kp - mi * g
+                    xi2 = kx * kx
+                    if xi2 < kt2r:
+                        qq = xi2 + 0j
+                        im = (
+                            _compliance(qq, kl2_0, kt2_0, mu) * _ff2(qq, radius, model, coef)
+                        ).imag / (a * b)
+                        sh = _split_shear(xi2, kl2r, kt2r)
+                        if mi == 0:
+                            p0 = max(im * sh, 0.0)
+                            p1 = max(im * (1.0 - sh), 0.0)
+                        else:
+                            p2 = max(im * sh, 0.0)
+                            p3 = max(im * (1.0 - sh), 0.0)
+                total = (m0 + r0 - iz).imag
+                if not math.isfinite(total):
+                    total = 0.0
+                absorbed = max(total - (p0 + p1 + p2 + p3), 0.0)
+                ssum = p0 + p1 + p2 + p3 + absorbed
+                if kk.imag > 0.0 and ssum > 0.0:
+                    out_sh[br, 0, ic, jf] = p0 / ssum
+                    out_sh[br, 1, ic, jf] = p1 / ssum
+                    out_sh[br, 2, ic, jf] = p2 / ssum
+                    out_sh[br, 3, ic, jf] = p3 / ssum
+                    out_sh[br, 4, ic, jf] = absorbed / ssum
+                kts = w / ct
+                kls = w / cl
+                if kp < kts:
+                    out_an[br, 0, ic, jf] = math.asin(max(min(kp / kts, 1.0), -1.0))
+                if kp < kls:
+                    out_an[br, 1, ic, jf] = math.asin(max(min(kp / kls, 1.0), -1.0))
+                if model != 2:
+                    kbk = kp - g
+                    if abs(kbk) < kts:
+                        out_an[br, 2, ic, jf] = math.asin(kbk / kts)
+                    if abs(kbk) < kls:
+                        out_an[br, 3, ic, jf] = math.asin(kbk / kls)
