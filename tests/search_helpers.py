@@ -77,3 +77,19 @@ def fake_trace(study, layout, surrogate=None):
     eps = np.full_like(f, 0.05)
     return SimpleNamespace(frequency=f, fractions=fr_dict, position=pos, angle=ang,
                            eps_max=eps, is_adiabatic=eps < 0.1)
+
+
+def fake_pipeline(study):
+    """Stand-in for the (surrogate, trace_fn) pair of optgrade.search.make_context."""
+    return None, lambda layout: fake_trace(study, layout)
+
+
+def slow_pipeline(study):
+    """Like fake_pipeline but each trace takes 50 ms (to kill workers mid-run)."""
+    import time
+
+    def trace_fn(layout):
+        time.sleep(0.05)
+        return fake_trace(study, layout)
+
+    return None, trace_fn

@@ -1,0 +1,401 @@
+"""Exports of one search trial: machining table, drawing, figure sheet, result, report.
+
+Files written into DIR, each atomically (temporary file in DIR, then ``os.replace``):
+
+``table.csv``    machining table via :func:`optgrade.layout.write_table` (header: study name,
+                 units, datum, material, date; plus trial, study hash and, at site scale, the
+                 caution);
+``layout.dxf``   plan (rod footprints of a few rows at the row pitch) and elevation (rods and
+                 head masses), with dimensions, labels and layers (millimetres);
+``sheet.png``    figure sheet: elevation, plan, channel map, fractions against frequency,
+                 optimisation history, Pareto front (multi-objective) or a summary panel;
+``result.json``  predicted performance by frequency and channel, objective values, study hash,
+                 trial number, fabrication check;
+``report.txt``   short plain-text report, with the site-scale caution where it applies.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+import os
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+import objectives
+from optgrade import __version__, fabrication, profiles
+
+__all__ = ["SITE_CAUTION", "export_layout", "export_trial"]
+
+SITE_CAUTION = (
+    "CAUTION: simplified model (adiabatic surrogate on a homogeneous elastic half-space); soil "
+    "layering and soil-structure coupling are not represented. This layout is a starting point "
+    "for design only: it must be verified by a qualified engineer and follow local codes."
+)
+BENDING_NOTE = ("Rods are modelled in axial motion only; their bending modes (coupling to "
+                "horizontal motion) are not represented.")
+CHANNEL_ORDER = ("transmitted_surface", "reflected_surface", "forward_shear",
+                 "forward_compressional", "backward_shear", "backward_compressional", "absorbed")
+
+
+def _atomic_write(path: Path, write: Callable[[Path], None]) -> Path:
+    """Call ``write(tmp)`` on a temporary file next to ``path`` and move it into place."""
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix, dir=path.parent)
+    os.close(fd)
+    try:
+        write(Path(tmp))
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual mode
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def _write_text(path: Path, text: str) -> Path:
+    return _atomic_write(path, lambda p: p.write_text(text, encoding="utf-8"))
+
+
+def _clean(a: Any) -> list:
+    return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, dtype=float)]
+
+
+def _trace_dict(trace: Any) -> dict[str, Any]:
+    if hasattr(trace, "to_dict"):
+        return trace.to_dict()
+    return {
+        "frequency_hz": _clean(trace.frequency),
+        "fractions": {c: _clean(trace.fractions[c]) for c in CHANNEL_ORDER},
+        "position_m": {c: _clean(trace.position[c]) for c in CHANNEL_ORDER},
+        "angle_deg": {c: _clean(trace.angle[c]) for c in CHANNEL_ORDER},
+        "eps_max": _clean(trace.eps_max),
+        "is_adiabatic": [bool(v) for v in trace.is_adiabatic],
+    }
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.floating, float)):
+        return float(obj) if math.isfinite(float(obj)) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    return obj
+
+
+# ---------------------------------------------------------------------------------------------
+# DXF
+
+
+def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: int = 3) -> Path:
+    """Plan and elevation drawing of a layout (mm) via ezdxf, written atomically.
+
+    Layers: ``PLAN`` (footprint circles), ``ELEVATION`` (rods, surface line), ``HEAD_MASS``
+    (schematic head-mass blocks, 2 d wide, d high: the drawing does not know their shape),
+    ``DIMENSIONS``, ``TEXT``.
+    """
+    import ezdxf
+
+    mm = 1e3
+    x = np.asarray(layout.x) * mm
+    h = np.asarray(layout.height) * mm
+    d = np.asarray(layout.diameter) * mm
+    m = np.asarray(layout.head_mass)
+    pitch = row_pitch * mm
+    doc = ezdxf.new("R2010", setup=True)
+    doc.units = ezdxf.units.MM
+    for name, colour in (("PLAN", 5), ("ELEVATION", 7), ("HEAD_MASS", 1), ("DIMENSIONS", 3),
+                         ("TEXT", 2)):
+        doc.layers.add(name, color=colour)
+    msp = doc.modelspace()
+    text_h = max(float(d.max()), float(x[-1] - x[0]) / 150.0)
+
+    # plan: rows at y = 0, pitch, 2 pitch, ... (wave runs along +x)
+    for r in range(n_rows):
+        for xi, di in zip(x, d, strict=True):
+            msp.add_circle((xi, r * pitch), di / 2, dxfattribs={"layer": "PLAN"})
+    plan_top = (n_rows - 1) * pitch + d.max()
+    msp.add_text(f"PLAN ({n_rows} of the rows shown), wave enters at x = 0",
+                 height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(
+        (x[0], plan_top + 2 * text_h))
+    if n_rows > 1:
+        dim = msp.add_linear_dim(base=(x[0] - 3 * d.max(), pitch / 2), p1=(x[0], 0),
+                                 p2=(x[0], pitch), angle=90, dimstyle="EZDXF",
+                                 dxfattribs={"layer": "DIMENSIONS"})
+        dim.render()
+    dim = msp.add_linear_dim(base=(0, -2 * d.max()), p1=(x[0], 0), p2=(x[1], 0),
+                             dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+    dim.render()
+
+    # elevation below the plan: surface line at y0, rods upwards
+    y0 = -(h.max() + 6 * text_h + 4 * d.max())
+    length = float(layout.x[-1] + (layout.x[-1] - layout.x[-2])) * mm
+    msp.add_line((x[0] - d.max(), y0), (x[0] + length, y0), dxfattribs={"layer": "ELEVATION"})
+    for j, (xi, hi, di, mj) in enumerate(zip(x, h, d, m, strict=True)):
+        msp.add_lwpolyline([(xi - di / 2, y0), (xi + di / 2, y0), (xi + di / 2, y0 + hi),
+                            (xi - di / 2, y0 + hi)], close=True,
+                           dxfattribs={"layer": "ELEVATION"})
+        if mj > 0:
+            msp.add_lwpolyline([(xi - di, y0 + hi), (xi + di, y0 + hi), (xi + di, y0 + hi + di),
+                                (xi - di, y0 + hi + di)], close=True,
+                               dxfattribs={"layer": "HEAD_MASS"})
+        if j % max(1, len(x) // 10) == 0 or j == len(x) - 1:
+            msp.add_text(f"{j}", height=text_h * 0.7, dxfattribs={"layer": "TEXT"}).set_placement(
+                (xi, y0 - 1.5 * text_h))
+    for j in (0, len(x) - 1):
+        dim = msp.add_linear_dim(base=(x[j] + (-3 if j == 0 else 3) * d.max(), y0),
+                                 p1=(x[j], y0), p2=(x[j], y0 + h[j]), angle=90,
+                                 dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+        dim.render()
+    dim = msp.add_linear_dim(base=(0, y0 - 4 * text_h), p1=(x[0], y0), p2=(x[-1], y0),
+                             dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+    dim.render()
+    msp.add_text(f"ELEVATION  {title}  (mm; resonator index below each labelled rod)",
+                 height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(
+        (x[0], y0 - 7 * text_h))
+    return _atomic_write(Path(path), lambda p: doc.saveas(p))
+
+
+# ---------------------------------------------------------------------------------------------
+# figure sheet
+
+
+def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tuple | None,
+                pareto: tuple | None, summary: list[str], trial_number: int | None) -> Path:
+    """Figure sheet PNG: layout, channel map, fractions, history, Pareto front or summary."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from optgrade import _plot_search, _plot_trace
+
+    fig, axes = plt.subplots(3, 2, figsize=_plot_search.figure_size(6))
+    ax = axes.ravel()
+    _plot_trace.plot_elevation(ax[0], layout, title="elevation")
+    scale, unit = _plot_trace.length_unit(float(layout.length))
+    _plot_search.plot_plan(ax[1], layout.x, layout.diameter, study.resonator.row_pitch,
+                           scale=1.0 / scale, unit=unit)
+    _plot_trace.plot_channel_map(ax[2], trace, layout)
+    _plot_trace.plot_fractions(ax[3], trace, goal_channel=study.goal.channel)
+    if history is not None and len(history[0]):
+        _plot_search.plot_history(ax[4], history[0], history[1], chosen=trial_number)
+    else:
+        _plot_search.describe(ax[4], ["no optimisation history (single layout)"])
+    if pareto is not None:
+        _plot_search.plot_pareto(ax[5], *pareto)
+    else:
+        _plot_search.describe(ax[5], summary)
+    fig.suptitle(f"{study.meta.name}: trial {trial_number}", fontsize=11)
+    fig.tight_layout()
+
+    def save(p: Path) -> None:
+        fig.savefig(p, dpi=110, format="png")
+
+    try:
+        return _atomic_write(Path(path), save)
+    finally:
+        plt.close(fig)
+
+
+# ---------------------------------------------------------------------------------------------
+# the export
+
+
+def _summary_lines(study: Any, trace: Any, values: dict, violations: list, score: float) -> list:
+    f = np.asarray(trace.frequency, dtype=float)
+    band = f"{study.goal.band[0]:.6g}-{study.goal.band[1]:.6g} Hz"
+    lines = [f"goal: {study.goal.channel} over {band} ({len(f)} frequencies), "
+             f"required fraction {study.goal.required_fraction:g}",
+             f"weighted score: {score:.4f}"]
+    for name, v in values.items():
+        lines.append(f"  {name}: {v.score:.4f}")
+    bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
+    lines.append(f"non-adiabatic frequencies (eps > 0.1): {int(bad.sum())} of {len(f)}")
+    fab = "all limits met" if not violations else f"{len(violations)} violation(s)"
+    lines.append(f"fabrication check: {fab}")
+    return lines
+
+
+def export_layout(
+    study: Any,
+    layout: Any,
+    out_dir: str | os.PathLike,
+    *,
+    context: objectives.EvalContext | None = None,
+    trial_number: int | None = None,
+    history: tuple | None = None,
+    pareto: tuple | None = None,
+    extra: dict[str, Any] | None = None,
+) -> dict[str, Path]:
+    """Trace ``layout`` and write all export files into ``out_dir``; returns their paths."""
+    from optgrade import search
+    from optgrade.layout import write_table
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    context = context or search.make_context(study)
+    trace = context.trace_fn(layout)
+    names = search.goal_names(study)
+    values = objectives.evaluate_many(names, trace, layout, study, context)
+    weights = {n: w for n, w in study.goal.weights.items() if w}
+    score = objectives.weighted_score(values, weights)
+    violations = fabrication.check_layout(study, layout)
+    is_site = getattr(study.meta, "scale", "bench") == "site"
+    key = search.study_hash(study)
+    today = _dt.datetime.now(_dt.timezone.utc).date()
+
+    header = [f"trial: {trial_number}", f"study hash (sha256): {key}",
+              f"package: optgrade {__version__}"]
+    if is_site:
+        header.append(SITE_CAUTION)
+    paths: dict[str, Path] = {}
+    paths["table"] = Path(write_table(layout, out / "table.csv", study_name=study.meta.name,
+                                      material=study.resonator.material or "custom",
+                                      date=today, extra_header=header))
+    paths["dxf"] = write_dxf(layout, out / "layout.dxf", row_pitch=study.resonator.row_pitch,
+                             title=f"{study.meta.name} trial {trial_number}")
+    summary = _summary_lines(study, trace, values, violations, score)
+    paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
+                                 pareto=pareto, summary=summary, trial_number=trial_number)
+    result = {
+        "study": study.meta.name,
+        "study_hash": key,
+        "study_file_sha256": search.file_hash(study),
+        "trial": trial_number,
+        "package_version": __version__,
+        "date": today.isoformat(),
+        "scale": getattr(study.meta, "scale", "bench"),
+        "weighted_score": score,
+        "objectives": {n: {"score": v.score, "direction": objectives.get(n).direction,
+                           "details": v.details} for n, v in values.items()},
+        "fabrication": {"is_ok": not violations,
+                        "violations": [v.to_dict() for v in violations]},
+        "layout": {"n_resonators": int(layout.n_resonators), "length_m": float(layout.length),
+                   "x_m": _clean(layout.x), "height_m": _clean(layout.height),
+                   "head_mass_kg": _clean(layout.head_mass)},
+        "performance": _trace_dict(trace),
+        "notes": [BENDING_NOTE] + ([SITE_CAUTION] if is_site else []),
+    }
+    if extra:
+        result.update(extra)
+    paths["result"] = _write_text(out / "result.json",
+                                  json.dumps(_jsonable(result), indent=1) + "\n")
+    paths["report"] = _write_text(out / "report.txt",
+                                  _report(study, layout, trace, summary, violations, is_site,
+                                          trial_number))
+    return paths
+
+
+def _report(study, layout, trace, summary, violations, is_site, trial_number) -> str:
+    f = np.asarray(trace.frequency, dtype=float)
+    wanted = (1.0 - np.asarray(trace.fractions["transmitted_surface"], float)
+              if study.goal.channel == "blocking"
+              else np.asarray(trace.fractions[study.goal.channel], float))
+    wanted = np.nan_to_num(wanted, nan=0.0)
+    meets = wanted >= study.goal.required_fraction
+    h = np.asarray(layout.height) * 1e3
+    lines = [
+        f"optgrade {__version__} report: {study.meta.name}, trial {trial_number}",
+        "",
+        "ASKED",
+        f"  send the incoming Rayleigh wave to: {study.goal.channel}",
+        f"  band {study.goal.band[0]:.6g} to {study.goal.band[1]:.6g} Hz, at least "
+        f"{study.goal.required_fraction:.0%} of the power at each frequency",
+        "",
+        "LAYOUT",
+        f"  {layout.n_resonators} resonators over {layout.length * 1e3:.4g} mm, heights "
+        f"{h.max():.4g} to {h.min():.4g} mm, diameter {np.max(layout.diameter) * 1e3:.4g} mm, "
+        f"row pitch {study.resonator.row_pitch * 1e3:.4g} mm",
+        "",
+        "PREDICTED (fast surrogate, adiabatic propagation)",
+        f"  wanted fraction: mean {wanted.mean():.3f}, worst {wanted.min():.3f} at "
+        f"{f[int(np.argmin(wanted))]:.6g} Hz",
+        f"  frequencies meeting the requirement: {int(meets.sum())} of {len(f)}",
+    ]
+    lines += ["  " + s for s in summary[1:]]
+    warn = []
+    bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
+    if bad.any():
+        warn.append(f"{int(bad.sum())} frequencies are outside the adiabatic model's validity "
+                    f"(eps > 0.1), e.g. {f[bad][0]:.6g} Hz: check them with `optgrade verify`.")
+    for v in violations:
+        warn.append(f"fabrication: {v.field}: {v.reason} (resonator {v.index})")
+    warn.append(BENDING_NOTE)
+    lines += ["", "WARNINGS"] + ["  - " + w for w in warn]
+    if is_site:
+        lines += ["", SITE_CAUTION]
+    return "\n".join(lines) + "\n"
+
+
+def _history(ostudy: Any) -> tuple[np.ndarray, np.ndarray]:
+    from optuna.trial import TrialState
+
+    done = ostudy.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+    return (np.array([t.number for t in done]),
+            np.array([t.user_attrs.get("score", np.nan) for t in done], dtype=float))
+
+
+def _pareto(ostudy: Any, study: Any, number: int) -> tuple | None:
+    from optuna.trial import TrialState
+
+    if len(ostudy.directions) < 2:
+        return None
+    done = ostudy.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+    front = {t.number for t in ostudy.best_trials}
+    vals = np.array([t.values[:2] for t in done], dtype=float)
+    is_front = np.array([t.number in front for t in done])
+    chosen = next((t.values[:2] for t in done if t.number == number), None)
+    return vals, is_front, list(study.search.objectives[:2]), chosen
+
+
+def export_trial(
+    study: Any,
+    source: Any,
+    trial_number: int,
+    out_dir: str | os.PathLike,
+    *,
+    context: objectives.EvalContext | None = None,
+) -> dict[str, Path]:
+    """Export a stored trial: rebuild its layout from its parameters and write every file.
+
+    ``source`` is an ``optuna.Study`` or a storage URL (the optuna study name is
+    ``study.meta.name``).
+
+    Raises
+    ------
+    optgrade.search.SearchError
+        Unknown trial, or a trial without parameters.
+    """
+    import optuna
+
+    from optgrade import search
+
+    if isinstance(source, str):
+        source = optuna.load_study(study_name=study.meta.name,
+                                   storage=search.open_storage(source))
+    trials = [t for t in source.get_trials(deepcopy=False) if t.number == trial_number]
+    if not trials:
+        raise search.SearchError("--trial", f"no trial {trial_number} in the stored study")
+    trial = trials[0]
+    if set(trial.params) != set(profiles.search_space(study)):
+        raise search.SearchError("--trial", f"trial {trial_number} has no complete parameter "
+                                 f"set (state {trial.state.name})")
+    layout = profiles.layout_from_params(study, trial.params)
+    extra = {"params": trial.params, "trial_state": trial.state.name,
+             "stored_values": trial.values}
+    return export_layout(study, layout, out_dir, context=context, trial_number=trial_number,
+                         history=_history(source), pareto=_pareto(source, study, trial_number),
+                         extra=extra)

@@ -1,0 +1,636 @@
+"""Inverse-design search: one owner process, optuna ask-and-tell, a pool of scoring workers.
+
+Design (see docs/search.md for the measurements behind it):
+
+- **One owner** talks to the optuna storage (a SQLite file ``DIR/study.db`` by default, any
+  optuna database URL, or ``journal:PATH`` for optuna's journal file storage). Workers never
+  open the storage, so several workers cannot lock each other out of a SQLite file.
+- **Workers only score.** A joblib (loky) process pool; each worker builds the study's
+  evaluation context (surrogate tables from the disk cache) once and keeps it in a module-level
+  cache keyed by the study hash. The owner asks candidates in chunks of ``chunk_size`` and keeps
+  one chunk per worker in flight; chunks are told back in the order they were asked (FIFO), so
+  the sequence of asks and tells, and with it the whole search, is reproducible for a given
+  seed, worker count and chunk size.
+- **Crash safety.** A told trial is in storage. A worker killed by a signal breaks the pool
+  (``TerminatedWorkerError``): the owner survives, starts a fresh pool and re-scores the chunks
+  that were in flight, so no finished trial is lost and none is told twice. A chunk that kills
+  its worker twice is scored one candidate at a time; a candidate that kills a worker twice is
+  told FAIL. If the owner itself dies, its asked-but-untold trials stay RUNNING in storage;
+  ``resume`` marks those of this host whose owner process is gone FAIL (user attr
+  ``lost=True``) and re-enqueues their parameters, so the sampler's candidates are scored after
+  all. Trials of owners on other hosts or still alive are left alone (shared-storage runs).
+- **Counting.** ``n_trials`` counts finished trials: COMPLETE ones plus FAIL ones that were
+  scored (an error in scoring); lost trials do not count. ``resume`` continues to ``n_trials``.
+- **Ctrl-C** (SIGINT) stops asking, waits for the chunks in flight, tells them, exports the best
+  trial so far and returns ``interrupted=True`` (the command exits 130).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import signal
+import socket
+import time
+from collections import deque
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import optuna
+from optuna.trial import TrialState
+
+import objectives
+from optgrade import __version__, fabrication, profiles
+
+__all__ = [
+    "DEFAULT_SAMPLER",
+    "SearchError",
+    "SearchOutcome",
+    "best_trial",
+    "default_storage",
+    "evaluate_params",
+    "finished_trials",
+    "make_context",
+    "make_sampler",
+    "open_storage",
+    "run_search",
+    "study_hash",
+]
+
+#: Sampler used for ``sampler = "auto"`` (chosen by measurement, docs/search.md).
+DEFAULT_SAMPLER = "tpe"
+#: Candidates per worker chunk when the study does not say.
+DEFAULT_CHUNK = 4
+#: Penalty subtracted from the weighted score of a layout that breaks a fabrication limit.
+INFEASIBLE_PENALTY = 10.0
+
+optuna.logging.set_verbosity(optuna.logging.WARNING)
+
+
+class SearchError(RuntimeError):
+    """A search that cannot start or continue; ``field`` names the option or study field."""
+
+    def __init__(self, field: str, reason: str) -> None:
+        super().__init__(f"{field}: {reason}")
+        self.field = field
+        self.reason = reason
+
+
+# ---------------------------------------------------------------------------------------------
+# identity of a study
+
+
+def study_hash(study: Any) -> str:
+    """sha256 of the study's resolved SI content (what the scores depend on)."""
+    try:
+        data = study.to_si_dict()
+        data.pop("source_path", None)
+        data.pop("source_sha256", None)
+        text = json.dumps(data, sort_keys=True, default=str)
+    except AttributeError:  # a plain namespace (tests)
+        text = repr(study)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def file_hash(study: Any) -> str | None:
+    """sha256 of the study file, if the study came from one."""
+    sha = getattr(study, "source_sha256", None)
+    if sha:
+        return sha
+    path = getattr(study, "source_path", None)
+    if path and Path(path).is_file():
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    return None
+
+
+# ---------------------------------------------------------------------------------------------
+# evaluation
+
+
+def _real_pipeline(study: Any) -> tuple[Any, Callable[[Any], Any]]:
+    """Surrogate of the study (disk-cached tables) and a trace function over the goal band."""
+    from optgrade import propagation, surrogate
+
+    if hasattr(surrogate, "surrogate_for_study"):
+        sur = surrogate.surrogate_for_study(study)
+    else:
+        sur = surrogate.Surrogate.from_study(study)
+
+    def trace_fn(layout: Any) -> Any:
+        return propagation.trace_study(study, layout, sur)
+
+    return sur, trace_fn
+
+
+def make_context(study: Any, pipeline: Callable | None = None) -> objectives.EvalContext:
+    """Evaluation context: surrogate and trace function built once for ``study``.
+
+    ``pipeline(study) -> (surrogate, trace_fn)`` replaces the real dispersion/propagation stages
+    (tests use a stand-in); it must be a picklable module-level function.
+    """
+    sur, trace_fn = (pipeline or _real_pipeline)(study)
+    return objectives.EvalContext(surrogate=sur, trace_fn=trace_fn, seed=int(study.meta.seed))
+
+
+def goal_names(study: Any) -> list[str]:
+    """Goals to evaluate: those with a weight and those named as search objectives."""
+    out = [n for n, w in study.goal.weights.items() if w]
+    out += [n for n in study.search.objectives if n != "weighted" and n not in out]
+    return out
+
+
+def is_multi_objective(study: Any) -> bool:
+    return len(study.search.objectives) > 1
+
+
+def directions(study: Any) -> list[str]:
+    """Optuna directions: one ``maximize`` for the weighted score, else one per objective."""
+    if not is_multi_objective(study):
+        name = study.search.objectives[0] if study.search.objectives else "weighted"
+        return ["maximize" if name == "weighted" else objectives.get(name).direction]
+    return [
+        "maximize" if n == "weighted" else objectives.get(n).direction
+        for n in study.search.objectives
+    ]
+
+
+def evaluate_params(
+    study: Any, params: dict[str, Any], context: objectives.EvalContext
+) -> dict[str, Any]:
+    """Score one parameter point: layout, fabrication check, trace, goals.
+
+    Returns
+    -------
+    dict with ``values`` (what optuna is told), ``score`` (weighted, larger is better, with the
+    infeasibility penalty), ``objectives`` (name -> {score, details}), ``violations`` (list of
+    dicts), ``constraints`` (optuna constraint vector, feasible when <= 0), ``n_non_adiabatic``.
+    """
+    layout = profiles.layout_from_params(study, params)
+    violations = fabrication.check_layout(study, layout)
+    trace = context.trace_fn(layout)
+    names = goal_names(study)
+    vals = objectives.evaluate_many(names, trace, layout, study, context)
+    weights = {n: w for n, w in study.goal.weights.items() if w}
+    score = objectives.weighted_score(vals, weights)
+    constraints = fabrication.constraint_values(violations)
+    if violations:
+        score -= INFEASIBLE_PENALTY * (1.0 + constraints[0])
+    wanted = study.search.objectives or ["weighted"]
+    told = [score if n == "weighted" else vals[n].score for n in wanted]
+    eps = np.asarray(trace.eps_max, dtype=float)
+    return {
+        "values": [float(v) if math.isfinite(v) else -1e9 for v in told],
+        "score": float(score),
+        "objectives": {n: {"score": v.score, "details": v.details} for n, v in vals.items()},
+        "violations": [v.to_dict() for v in violations],
+        "constraints": constraints,
+        "n_non_adiabatic": int(np.sum(eps > 0.1)),
+    }
+
+
+# ---------------------------------------------------------------------------------------------
+# worker side
+
+_CONTEXTS: dict[str, objectives.EvalContext] = {}
+
+
+def _worker_init() -> None:
+    """Workers ignore Ctrl-C: the owner decides when to stop and waits for their chunk."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _score_chunk(
+    study: Any, key: str, pipeline: Callable | None, chunk: list[tuple[int, dict]], is_dry: bool
+) -> list[dict[str, Any]]:
+    """Score a chunk of (trial number, params) in a worker; context cached per study hash."""
+    out = []
+    if is_dry:  # framework ceiling: no physics at all
+        n = max(len(study.search.objectives), 1)
+        return [{"number": num, "values": [0.0] * n, "score": 0.0, "objectives": {},
+                 "violations": [], "constraints": [0.0], "n_non_adiabatic": 0}
+                for num, _ in chunk]
+    ctx = _CONTEXTS.get(key)
+    if ctx is None:
+        ctx = _CONTEXTS[key] = make_context(study, pipeline)
+    for number, params in chunk:
+        t0 = time.perf_counter()
+        try:
+            res = evaluate_params(study, params, ctx)
+        except Exception as exc:  # a scoring error fails this trial, not the search
+            res = {"error": f"{type(exc).__name__}: {exc}"}
+        res["number"] = number
+        res["seconds"] = time.perf_counter() - t0
+        out.append(res)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# storage and sampler
+
+
+def default_storage(out_dir: str | os.PathLike) -> str:
+    """SQLite file ``DIR/study.db``."""
+    return f"sqlite:///{Path(out_dir).resolve() / 'study.db'}"
+
+
+def open_storage(url: str) -> Any:
+    """An optuna storage from a URL; ``journal:PATH`` opens optuna's journal file storage."""
+    if url.startswith("journal:"):
+        from optuna.storages.journal import JournalFileBackend, JournalStorage
+
+        path = url[len("journal:"):].removeprefix("//")
+        Path(path).parent.mkdir(parents=True, exist_ok=True)
+        return JournalStorage(JournalFileBackend(path))
+    is_sqlite = url.startswith("sqlite:///")
+    if is_sqlite:
+        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
+    try:
+        store = optuna.storages.RDBStorage(url)
+    except Exception as exc:
+        raise SearchError("--storage", f"cannot open {url!r}: {exc}") from None
+    if is_sqlite:
+        _fast_sqlite(store)
+    return store
+
+
+def _fast_sqlite(store: Any) -> None:
+    """Write-ahead log with ``synchronous=NORMAL`` on SQLite connections.
+
+    Every committed transaction survives a crash or kill of the process (the log is in the OS
+    page cache); only a power cut or OS crash can lose the last commits. This makes a commit
+    about five times cheaper on this kind of disk (docs/search.md), and the owner commits some
+    fifteen times per trial.
+    """
+    from sqlalchemy import event
+
+    def on_connect(dbapi_conn: Any, record: Any) -> None:  # noqa: ARG001
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA journal_mode=WAL")
+        cur.execute("PRAGMA synchronous=NORMAL")
+        cur.close()
+
+    event.listen(store.engine, "connect", on_connect)
+    store.engine.dispose()  # reconnect with the pragmas
+
+
+def make_sampler(name: str, seed: int, multi: bool) -> optuna.samplers.BaseSampler:
+    """Seeded sampler by name: ``auto`` (= DEFAULT_SAMPLER, NSGA-II when multi-objective),
+    ``tpe``, ``random``, ``nsga2``, ``qmc``, ``cmaes`` (needs the ``cmaes`` package)."""
+    if name in (None, "", "auto"):
+        name = "nsga2" if multi else DEFAULT_SAMPLER
+    if name == "tpe":
+        return optuna.samplers.TPESampler(seed=seed, multivariate=True, constant_liar=True)
+    if name == "random":
+        return optuna.samplers.RandomSampler(seed=seed)
+    if name == "nsga2":
+        return optuna.samplers.NSGAIISampler(seed=seed)
+    if name == "qmc":
+        return optuna.samplers.QMCSampler(seed=seed, scramble=True)
+    if name == "cmaes":
+        try:
+            import cmaes  # noqa: F401
+        except ImportError:
+            raise SearchError("search.sampler", "'cmaes' needs the cmaes package "
+                              "(pip install cmaes); use 'tpe'") from None
+        if multi:
+            raise SearchError("search.sampler", "'cmaes' is single-objective; use 'nsga2'")
+        return optuna.samplers.CmaEsSampler(seed=seed, warn_independent_sampling=False)
+    raise SearchError("search.sampler", f"unknown sampler {name!r}")
+
+
+def finished_trials(ostudy: optuna.Study) -> list[optuna.trial.FrozenTrial]:
+    """Trials that count towards the requested number (COMPLETE, or FAIL after scoring)."""
+    out = []
+    for t in ostudy.get_trials(deepcopy=False):
+        if t.state == TrialState.COMPLETE:
+            out.append(t)
+        elif t.state == TrialState.FAIL and not t.user_attrs.get("lost", False):
+            out.append(t)
+    return out
+
+
+def best_trial(ostudy: optuna.Study) -> optuna.trial.FrozenTrial | None:
+    """Complete trial with the largest weighted score (on the Pareto front if multi-objective)."""
+    complete = [t for t in ostudy.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))]
+    if not complete:
+        return None
+    if len(ostudy.directions) > 1:
+        complete = ostudy.best_trials or complete
+    return max(complete, key=lambda t: (t.user_attrs.get("score", -math.inf), -t.number))
+
+
+def _owner_id() -> str:
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def _is_alive(owner: str) -> bool:
+    host, _, pid = owner.rpartition(":")
+    if host != socket.gethostname():
+        return True  # cannot tell: leave other hosts' trials alone
+    try:
+        os.kill(int(pid), 0)  # signal 0: existence check only, nothing is sent
+    except (ProcessLookupError, ValueError):
+        return False
+    except PermissionError:
+        return True
+    return int(pid) != os.getpid()  # our own pid: left by an earlier run in this process
+
+
+def recover_lost(ostudy: optuna.Study) -> int:
+    """Mark RUNNING trials of dead owners on this host FAIL (``lost``) and re-enqueue their
+    parameters. Returns the number recovered."""
+    storage = ostudy._storage
+    n = 0
+    for t in ostudy.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
+        owner = t.user_attrs.get("owner", "")
+        if owner and _is_alive(owner):
+            continue
+        storage.set_trial_user_attr(t._trial_id, "lost", True)
+        storage.set_trial_state_values(t._trial_id, TrialState.FAIL)
+        if t.params:
+            ostudy.enqueue_trial(t.params, user_attrs={"requeued_from": t.number})
+        n += 1
+    return n
+
+
+# ---------------------------------------------------------------------------------------------
+# the owner loop
+
+
+@dataclass
+class SearchOutcome:
+    """What a search run did."""
+
+    storage: str
+    study_name: str
+    n_finished: int
+    n_told_now: int
+    n_recovered: int
+    n_pool_restarts: int
+    seconds: float
+    best_number: int | None
+    best_score: float | None
+    is_interrupted: bool = False
+    history: list[tuple[float, float]] = field(default_factory=list)  # (seconds, best score)
+
+    @property
+    def trials_per_second(self) -> float:
+        return self.n_told_now / self.seconds if self.seconds > 0 else 0.0
+
+
+@contextmanager
+def _sigint_flag() -> Iterator[dict[str, bool]]:
+    """Turn the first Ctrl-C into a stop flag; a second one interrupts at once."""
+    flag = {"stop": False}
+    try:
+        previous = signal.getsignal(signal.SIGINT)
+    except ValueError:  # pragma: no cover
+        previous = None
+
+    def handler(signum, frame):  # noqa: ARG001
+        if flag["stop"]:
+            raise KeyboardInterrupt
+        flag["stop"] = True
+
+    try:
+        signal.signal(signal.SIGINT, handler)
+        is_installed = True
+    except ValueError:  # not the main thread
+        is_installed = False
+    try:
+        yield flag
+    finally:
+        if is_installed:
+            signal.signal(signal.SIGINT, previous)
+
+
+def _executor(n_jobs: int):
+    from joblib.externals.loky import get_reusable_executor
+
+    return get_reusable_executor(max_workers=n_jobs, initializer=_worker_init, timeout=60)
+
+
+def _progress(enabled: bool, total: int, done: int):
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+    prog = Progress(
+        TextColumn("[bold]search[/]"), BarColumn(), MofNCompleteColumn(),
+        TextColumn("{task.fields[rate]:.1f} trials/s"), TextColumn("best {task.fields[best]}"),
+        TimeElapsedColumn(), disable=not enabled, transient=False, console=Console(stderr=True),
+    )
+    task = prog.add_task("search", total=total, completed=done, rate=0.0, best="-")
+    return prog, task
+
+
+def run_search(
+    study: Any,
+    out_dir: str | os.PathLike,
+    *,
+    n_trials: int | None = None,
+    n_jobs: int | None = None,
+    storage: str | None = None,
+    is_resume: bool = False,
+    sampler: str | None = None,
+    chunk_size: int | None = None,
+    pipeline: Callable | None = None,
+    is_dry: bool = False,
+    show_progress: bool = True,
+    do_export: bool = True,
+    on_told: Callable[[int], None] | None = None,
+) -> SearchOutcome:
+    """Run (or resume) the search of ``study``; results in ``storage``, exports in ``out_dir``.
+
+    Parameters
+    ----------
+    n_trials : finished trials wanted in total (default ``study.search.trials``).
+    n_jobs : worker processes (default ``study.search.workers``); 0 scores in the owner process.
+    storage : optuna URL (default SQLite ``DIR/study.db``; ``journal:PATH`` for a journal file).
+    is_resume : continue an existing study of the same name (refused otherwise if it exists).
+    sampler : sampler name (default ``study.search.sampler``).
+    chunk_size : candidates per worker task (default from ``study.search.batch_size``).
+    pipeline : stand-in for the physics ``(study) -> (surrogate, trace_fn)`` (tests).
+    is_dry : skip all scoring (framework-ceiling measurement).
+    do_export : export the best trial into ``out_dir`` at the end.
+    on_told : callback with the number of trials told so far in this run (tests).
+    """
+    t_start = time.perf_counter()
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    n_trials = int(n_trials if n_trials is not None else study.search.trials)
+    n_jobs = int(n_jobs if n_jobs is not None else study.search.workers)
+    url = storage or study.search.storage or default_storage(out_dir)
+    store = open_storage(url)
+    name = study.meta.name
+    multi = is_multi_objective(study)
+    sampler_obj = make_sampler(sampler or study.search.sampler, int(study.meta.seed), multi)
+    key = study_hash(study)
+
+    exists = name in optuna.study.get_all_study_names(store)
+    if exists and not is_resume:
+        raise SearchError("--resume", f"study {name!r} already exists in {url}; pass --resume "
+                          "to continue it or choose another --out/--storage")
+    ostudy = optuna.create_study(storage=store, study_name=name, directions=directions(study),
+                                 sampler=sampler_obj, load_if_exists=True)
+    attrs = ostudy.user_attrs
+    if exists and attrs.get("study_hash") not in (None, key):
+        raise SearchError("STUDY", "the study file changed since this search started "
+                          f"(stored hash {attrs.get('study_hash', '')[:12]}, now {key[:12]}); "
+                          "use a new --out")
+
+    context = None
+    if not is_dry:
+        context = make_context(study, pipeline)  # builds/loads the tables once, before workers
+    if not exists:
+        ostudy.set_user_attr("package_version", __version__)
+        ostudy.set_user_attr("study_hash", key)
+        ostudy.set_user_attr("study_file_sha256", file_hash(study))
+        ostudy.set_user_attr("table_hashes", _table_hashes(context))
+        ostudy.set_user_attr("search_space", sorted(profiles.search_space(study)))
+
+    n_recovered = recover_lost(ostudy) if exists else 0
+    n_done = len(finished_trials(ostudy))
+    space = profiles.search_space(study)
+    chunk_size = int(chunk_size or max(1, (study.search.batch_size or DEFAULT_CHUNK * n_jobs)
+                                       // max(n_jobs, 1)))
+    owner = _owner_id()
+
+    told_now = 0
+    pool_restarts = 0
+    best = best_trial(ostudy)
+    best_score = best.user_attrs.get("score") if best else None
+    best_number = best.number if best else None
+    history: list[tuple[float, float]] = []
+    pending: dict[int, optuna.trial.Trial] = {}
+    inflight: deque = deque()  # (chunk list, future or None, n_attempts)
+    n_asked = 0
+
+    def ask_chunk(n: int) -> list[tuple[int, dict]]:
+        nonlocal n_asked
+        chunk = []
+        for _ in range(n):
+            trial = ostudy.ask(fixed_distributions=space)
+            trial.set_user_attr("owner", owner)
+            pending[trial.number] = trial
+            chunk.append((trial.number, dict(trial.params)))
+        n_asked += n
+        return chunk
+
+    def tell(res: dict[str, Any]) -> None:
+        nonlocal told_now, best_score, best_number
+        trial = pending.pop(res["number"])
+        if "error" in res:
+            trial.set_user_attr("error", res["error"])
+            ostudy.tell(trial, state=TrialState.FAIL)
+        elif res["violations"] and multi:  # off the Pareto front: told FAIL, kept for the record
+            trial.set_user_attr("error", "breaks a fabrication limit")
+            ostudy.tell(trial, state=TrialState.FAIL)
+        else:
+            # one write: the numbers behind the score (the sampler needs only the values)
+            trial.set_user_attr("score", res["score"])
+            ostudy.tell(trial, res["values"])
+            if best_score is None or res["score"] > best_score:
+                best_score, best_number = res["score"], res["number"]
+        told_now += 1
+        history.append((time.perf_counter() - t_start, best_score if best_score is not None
+                        else math.nan))
+        if on_told is not None:
+            on_told(told_now)
+
+    def submit(ex, chunk):
+        return ex.submit(_score_chunk, study, key, pipeline, chunk, is_dry)
+
+    is_interrupted = False
+    prog, task = _progress(show_progress, n_trials, n_done)
+    with _sigint_flag() as flag, prog:
+        ex = _executor(n_jobs) if n_jobs > 0 else None
+        while True:
+            room = n_trials - n_done - told_now - sum(len(c[0]) for c in inflight)
+            while (not flag["stop"] and room > 0
+                   and len(inflight) < max(n_jobs, 1)):
+                chunk = ask_chunk(min(chunk_size, room))
+                room -= len(chunk)
+                fut = submit(ex, chunk) if ex is not None else None
+                inflight.append([chunk, fut, 0])
+            if not inflight:
+                break
+            chunk, fut, attempts = inflight[0]
+            try:
+                if fut is None:  # n_jobs == 0: score in the owner with its own context
+                    if context is not None:
+                        _CONTEXTS.setdefault(key, context)
+                    results = _score_chunk(study, key, pipeline, chunk, is_dry)
+                else:
+                    results = fut.result()
+            except KeyboardInterrupt:
+                flag["stop"] = True
+                continue
+            except Exception as exc:  # BrokenProcessPool / TerminatedWorkerError
+                from concurrent.futures.process import BrokenProcessPool
+
+                if not isinstance(exc, BrokenProcessPool):
+                    raise
+                pool_restarts += 1
+                ex = _executor(n_jobs)  # a fresh pool replaces the broken one
+                redo = deque()
+                for item in inflight:
+                    c, f, a = item
+                    if f is not None and f.done() and f.exception() is None:
+                        redo.append(item)  # finished before the crash: keep its result
+                        continue
+                    a += 1
+                    if a >= 2 and len(c) > 1:  # split a chunk that kills workers
+                        for single in c:
+                            redo.append([[single], submit(ex, [single]), a])
+                    elif a >= 3:
+                        for num, _ in c:
+                            tell({"number": num, "error": "worker process died twice"})
+                    else:
+                        redo.append([c, submit(ex, c), a])
+                inflight = redo
+                continue
+            inflight.popleft()
+            for res in results:
+                tell(res)
+            rate = told_now / max(time.perf_counter() - t_start, 1e-9)
+            prog.update(task, completed=n_done + told_now, rate=rate,
+                        best=f"{best_score:.4f}" if best_score is not None else "-")
+        is_interrupted = flag["stop"] and n_done + told_now < n_trials
+
+    seconds = time.perf_counter() - t_start
+    outcome = SearchOutcome(
+        storage=url, study_name=name, n_finished=len(finished_trials(ostudy)),
+        n_told_now=told_now, n_recovered=n_recovered, n_pool_restarts=pool_restarts,
+        seconds=seconds, best_number=best_number, best_score=best_score,
+        is_interrupted=is_interrupted, history=history,
+    )
+    if do_export and not is_dry and best_number is not None:
+        from optgrade import export
+
+        export.export_trial(study, ostudy, best_number, out_dir, context=context)
+    return outcome
+
+
+def _table_hashes(context: objectives.EvalContext | None) -> dict[str, str]:
+    """Hashes of the dispersion tables behind the surrogate, if it exposes them."""
+    if context is None or context.surrogate is None:
+        return {}
+    sur = context.surrogate
+    for attr in ("table_hashes", "table_hash", "cache_key", "key"):
+        value = getattr(sur, attr, None)
+        if callable(value):
+            try:
+                value = value()
+            except TypeError:
+                continue
+        if isinstance(value, dict):
+            return {str(k): str(v) for k, v in value.items()}
+        if isinstance(value, str):
+            return {attr: value}
+    return {}
