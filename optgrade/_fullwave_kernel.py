@@ -157,3 +157,37 @@ def warm_up() -> None:
     step_rods(f[1], np.zeros((1, 3)), np.zeros((1, 2)), np.zeros((1, 2)), np.array([2]),
               np.array([1.0]), np.array([1.0]), np.array([0.0]), np.array([1.0]),
               np.array([0.0]), np.array([1]), np.array([1]), 1e-3, 1.0, np.zeros(nx))
+    for n_rods in (0, 1):
+        advance(0, 1, *f, np.zeros((nx, nz)), True, 1.0, 1.0, 1.0, 1e-3, 1.0, cx[0], cx[1],
+                cx[2], cx[3], cz[0], cz[1], cz[2], cz[3], np.zeros((8, nx, nz)), np.zeros(1),
+                1, np.zeros(nx), np.zeros((n_rods, 3)), np.zeros((n_rods, 2)),
+                np.zeros((n_rods, 2)), np.full(n_rods, 2), np.ones(n_rods), np.ones(n_rods),
+                np.zeros(n_rods), np.ones(n_rods), np.zeros(n_rods), np.ones(n_rods, np.int64),
+                np.ones(n_rods, np.int64))
+
+
+@njit(cache=True)
+def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
+            ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi, src, i_source, tz,
+            rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
+            fp_count):  # pragma: no cover - compiled
+    """Steps n0 .. n1-1 in one call (velocity, rods, surface traction, stress).
+
+    ``src[n]`` is the source traction at time (n + 1) dt on surface node ``i_source``;
+    ``psi`` stacks the eight CPML memory arrays; with ``is_uz`` the vertical displacement
+    ``uz`` is integrated as well (for snapshots).
+    """
+    for n in range(n0, n1):
+        step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
+                      az_h, bz_h, psi[0], psi[1], psi[2], psi[3])
+        tz[:] = 0.0
+        tz[i_source] = src[n]
+        if rod_v.shape[0] > 0:
+            step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
+                      fp_count, dt, h, tz)
+        step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
+                    az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz)
+        if is_uz:
+            for i in range(uz.shape[0]):
+                for j in range(uz.shape[1]):
+                    uz[i, j] += dt * vz[i, j]

@@ -341,7 +341,7 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
     n_fp = np.maximum(1, np.round(rods.diameter / h)).astype(np.int64)
     centre = (grid.x_array + rods.x) / h
     fp_start = np.round(centre - (n_fp - 1) / 2).astype(np.int64)
-    n_max = int(n_seg.max())
+    n_max = int(n_seg.max()) if n_seg.size else 1
     return {
         "rod_v": np.zeros((n_rods, n_max + 1)),
         "rod_c": np.zeros((n_rods, n_max)),
@@ -397,7 +397,6 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     az_h, bz_h = cpml_profile(zh - (z_max - thick), thick, medium.cl, dt, f_c)
 
     vx, vz, sxx, szz, sxz = (np.zeros((nx, nz)) for _ in range(5))
-    psi = [np.zeros((nx, nz)) for _ in range(8)]
     uz = np.zeros((nx, nz))
     tz_new = np.zeros(nx)
 
@@ -420,15 +419,13 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     n_val = idx.size
     freq = np.asarray(freq, float)
     omega = 2 * math.pi * freq
-    acc_v = np.zeros((freq.size, 2 * n_val), complex)
-    acc_s = np.zeros((freq.size, 3 * n_val), complex)
-    acc_rc = np.zeros((freq.size, max(n_rods, 1)), complex)
-    acc_rv = np.zeros((freq.size, max(n_rods, 1)), complex)
-    chunk = 64
-    buf_v = np.zeros((chunk, 2 * n_val))
-    buf_s = np.zeros((chunk, 3 * n_val))
-    buf_rc = np.zeros((chunk, max(n_rods, 1)))
-    buf_rv = np.zeros((chunk, max(n_rods, 1)))
+    # one buffer row per sample: vx, vz, sxx, szz, sxz on the strips, then rod force and
+    # base velocity; one real matrix product per chunk gives the DFT's real and imaginary parts
+    n_r = max(n_rods, 1)
+    n_all = 5 * n_val + 2 * n_r
+    acc = np.zeros((2 * freq.size, n_all))
+    chunk = 128
+    buf = np.zeros((chunk, n_all))
     buf_t = np.zeros(chunk)
     n_buf = 0
 
@@ -436,18 +433,10 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         nonlocal n_buf
         if n_buf == 0:
             return
-        t_s = buf_t[:n_buf]
-        # DFT with exp(+i w t): phasors in the exp(-i w t) convention; velocities live half a
-        # step earlier than stresses and rod forces.
-        e_s = np.exp(1j * omega[:, None] * t_s[None, :]) * (grid.sample_every * dt)
-        e_v = np.exp(1j * omega[:, None] * (t_s[None, :] - 0.5 * dt)) * (grid.sample_every * dt)
-        # two real products each (cheaper than complex @ real)
-        acc_v.real += e_v.real @ buf_v[:n_buf]
-        acc_v.imag += e_v.imag @ buf_v[:n_buf]
-        acc_s.real += e_s.real @ buf_s[:n_buf]
-        acc_s.imag += e_s.imag @ buf_s[:n_buf]
-        acc_rc[:] += e_s @ buf_rc[:n_buf]
-        acc_rv[:] += e_v @ buf_rv[:n_buf]
+        # DFT with exp(+i w t): phasors in the exp(-i w t) convention
+        phase = omega[:, None] * buf_t[None, :n_buf]
+        e = np.concatenate([np.cos(phase), np.sin(phase)]) * (grid.sample_every * dt)
+        acc[:] += e @ buf[:n_buf]
         n_buf = 0
 
     snap_every = max(1, int(1.3 * grid.min_steps) // n_snapshots) if n_snapshots else 0
@@ -457,52 +446,60 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     e_peak = 0.0
     t_start = time.perf_counter()
     energy_every = max(1, grid.min_steps // 40)
-    n_done = grid.n_steps
-    for n in range(grid.n_steps):
-        t_new = (n + 1) * dt
-        _k.step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h, ax_h, bx_h, ax_i, bx_i,
-                         az_i, bz_i, az_h, bz_h, psi[0], psi[1], psi[2], psi[3])
-        tz_new[:] = 0.0
-        tz_new[grid.i_source] = amp_src * source_pulse(np.array(t_new), *band)
+    n_done = (grid.n_steps // grid.sample_every) * grid.sample_every
+    m = grid.sample_every
+    n_total = (grid.n_steps // m) * m
+    src = amp_src * source_pulse((np.arange(n_total) + 1) * dt, *band)
+    if ra is None:
+        ra_k = _rod_arrays(RodRow(np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0), 1.0,
+                                  1.0, 1.0), grid, medium, band)
+    else:
+        ra_k = ra
+    psi_k = np.zeros((8, nx, nz))
+    snap_every = m * max(1, snap_every // m) if snap_every else 0
+    energy_every = m * max(1, energy_every // m)
+    for n0 in range(0, n_total, m):
+        n1 = n0 + m
+        _k.advance(n0, n1, vx, vz, sxx, szz, sxz, uz, bool(snap_every), rho, lam, mu, dt, h,
+                   ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi_k, src, grid.i_source,
+                   tz_new, ra_k["rod_v"], ra_k["rod_c"], ra_k["rod_e"], ra_k["n_seg"],
+                   ra_k["ds"], ra_k["m_node"], ra_k["m_tip"], ra_k["ea"], ra_k["visc"],
+                   ra_k["fp_start"], ra_k["fp_count"])
+        t_new = n1 * dt
+        if snap_every and n1 % snap_every == 0 and len(snaps) < n_snapshots:
+            snaps.append(uz.astype(np.float32))
+            snap_t.append(t_new)
+        row = buf[n_buf]
+        for q, fld in enumerate((vx, vz, sxx, szz, sxz)):
+            np.take(fld, idx, out=row[q * n_val:(q + 1) * n_val])
         if ra is not None:
-            _k.step_rods(vz, ra["rod_v"], ra["rod_c"], ra["rod_e"], ra["n_seg"], ra["ds"],
-                         ra["m_node"], ra["m_tip"], ra["ea"], ra["visc"], ra["fp_start"],
-                         ra["fp_count"], dt, h, tz_new)
-        _k.step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i,
-                       az_i, bz_i, az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz_new)
-        if snap_every:
-            uz += dt * vz
-            if (n + 1) % snap_every == 0 and len(snaps) < n_snapshots:
-                snaps.append(uz.astype(np.float32))
-                snap_t.append(t_new)
-        if (n + 1) % grid.sample_every == 0:
-            np.take(vx, idx, out=buf_v[n_buf, :n_val])
-            np.take(vz, idx, out=buf_v[n_buf, n_val:])
-            np.take(sxx, idx, out=buf_s[n_buf, :n_val])
-            np.take(szz, idx, out=buf_s[n_buf, n_val:2 * n_val])
-            np.take(sxz, idx, out=buf_s[n_buf, 2 * n_val:])
-            if ra is not None:
-                buf_rc[n_buf] = ra["rod_c"][:, 0]
-                buf_rv[n_buf] = ra["rod_v"][:, 0]
-            buf_t[n_buf] = t_new
-            n_buf += 1
-            if n_buf == chunk:
-                flush()
-        if (n + 1) % energy_every == 0 or n + 1 == grid.n_steps:
+            row[5 * n_val:5 * n_val + n_rods] = ra["rod_c"][:, 0]
+            row[5 * n_val + n_r:5 * n_val + n_r + n_rods] = ra["rod_v"][:, 0]
+        buf_t[n_buf] = t_new
+        n_buf += 1
+        if n_buf == chunk:
+            flush()
+        if n1 % energy_every == 0 or n1 == n_total:
             e_now = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
             e_peak = max(e_peak, e_now)
             if progress is not None:
-                progress(n + 1, grid.n_steps)
-            if n + 1 >= grid.min_steps and e_now < energy_tol * e_peak:
-                n_done = n + 1
+                progress(n1, n_total)
+            if n1 >= grid.min_steps and e_now < energy_tol * e_peak:
+                n_done = n1
                 if progress is not None:
-                    progress(grid.n_steps, grid.n_steps)
+                    progress(n_total, n_total)
                 break
     flush()
     seconds = time.perf_counter() - t_start
     e_end = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
-    parts = {"vx": acc_v[:, :n_val], "vz": acc_v[:, n_val:], "sxx": acc_s[:, :n_val],
-             "szz": acc_s[:, n_val:2 * n_val], "sxz": acc_s[:, 2 * n_val:]}
+    spec = acc[:freq.size] + 1j * acc[freq.size:]
+    # velocities (and the rod base velocity) live half a step before the sample time
+    shift = np.exp(-0.5j * omega * dt)[:, None]
+    parts = {"vx": spec[:, :n_val] * shift, "vz": spec[:, n_val:2 * n_val] * shift,
+             "sxx": spec[:, 2 * n_val:3 * n_val], "szz": spec[:, 3 * n_val:4 * n_val],
+             "sxz": spec[:, 4 * n_val:5 * n_val]}
+    rod_c = spec[:, 5 * n_val:5 * n_val + n_rods]
+    rod_v = spec[:, 5 * n_val + n_r:5 * n_val + n_r + n_rods] * shift
     out_blocks: dict[str, dict[str, np.ndarray]] = {}
     start = 0
     for name, (nxb, nzb) in shapes.items():
@@ -511,7 +508,7 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         start = stop
     return RunRecord(
         freq=freq, offsets={k: (v[0], v[2]) for k, v in blocks.items()}, blocks=out_blocks,
-        rod_c=acc_rc[:, :n_rods], rod_v=acc_rv[:, :n_rods],
+        rod_c=rod_c, rod_v=rod_v,
         snapshots=np.array(snaps, dtype=np.float32).reshape(-1, nx, nz),
         snapshot_times=np.array(snap_t), energy_left=e_end / e_peak if e_peak > 0 else 0.0,
         seconds=seconds, cell_updates=float(n_done) * nx * nz, n_steps=n_done,
