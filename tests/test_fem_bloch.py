@@ -234,3 +234,30 @@ def test_solve_bands_line_upper_branch_matches_fe(fe_rod):
     rel = np.abs(np.real(roots) / k_fe - 1.0)
     best = np.nanmin(np.where(np.imag(roots) == 0, rel, np.nan), axis=0)
     assert np.all(best < TOL_K), best
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", ["rod", "head_mass"])
+def test_surrogate_line_lower_branch_matches_fe(case, fe_rod, fe_head, tmp_path):
+    """`optgrade.surrogate.Surrogate(model="line").local_modes`: branch 0 through the FE points.
+
+    The fast path the search and propagation stages use, checked against the same FE
+    reference: bound and within 2 % in K at every FE frequency below the zone edge (>= 5).
+    Tables are built in a temporary cache directory. Reference: the scikit-fem cell.
+    """
+    from optgrade.halfspace import Substrate
+    from optgrade.resonators import Rod
+    from optgrade.surrogate import Surrogate
+
+    modes, head = (fe_rod, 0.0) if case == "rod" else (fe_head, HEAD_MASS)
+    below_edge = modes.bloch_k < np.pi / SPACING * (1 - 1e-9)
+    k_fe, f_fe = modes.bloch_k[below_edge], modes.lower[below_edge]
+    sur = Surrogate(Substrate(RHO, CL, CT), Rod(ROD_E, ROD_RHO, ROD_D), ROW_PITCH,
+                    (0.75 * SPACING, 1.25 * SPACING), (60e3, 400e3), model="line",
+                    cache_dir=tmp_path)
+    k_sur = sur.local_modes(HEIGHT, SPACING, head, f_fe).k[0, 0]
+    assert k_fe.size >= 5
+    assert np.all(np.isfinite(k_sur)), k_sur
+    np.testing.assert_array_equal(np.imag(k_sur), 0.0)
+    rel_k = np.abs(np.real(k_sur) / k_fe - 1.0)
+    assert np.all(rel_k < TOL_K), rel_k
