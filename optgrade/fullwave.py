@@ -897,7 +897,8 @@ class Verification:
         return np.sum([self.fractions[c] for c in CHANNELS], axis=0)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict: the trace.json keys plus ``agreement``, ``energy`` and ``grid``."""
+        """JSON-ready dict: the trace.json channel keys plus ``agreement``, ``surrogate`` (its
+        trace.json content, line model), ``energy`` and ``fullwave`` (grid, timing)."""
 
         def clean(a) -> list:
             return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, float)]
@@ -908,6 +909,7 @@ class Verification:
             "position_m": {c: clean(self.position[c]) for c in CHANNELS},
             "angle_deg": {c: clean(self.angle[c]) for c in CHANNELS},
             "agreement": self.agreement,
+            "surrogate": None if self.surrogate is None else self.surrogate.to_dict(),
             "energy": {"closure": clean(self.closure),
                        "balance_error": clean(self.balance_error)},
             "fullwave": self.info,

@@ -8,7 +8,9 @@ ultrasonic-testing values, from memory) unless a published root needs nu = 0.25.
 from __future__ import annotations
 
 import dataclasses
+import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -208,3 +210,67 @@ def test_grid_convergence_of_channel_fractions():
     diffs = {c: float(np.mean(np.abs(coarse.fractions[c] - fine.fractions[c])))
              for c in fw.CHANNELS}
     assert max(diffs.values()) < 0.05, diffs
+
+
+# --------------------------------------------------------------------------------------------
+# command line
+# --------------------------------------------------------------------------------------------
+
+DEMO = Path(__file__).resolve().parents[1] / "benchmarks" / "fullwave_demo.toml"
+
+
+def _small_case(tmp_path: Path, n: int = 6) -> tuple[Path, Path]:
+    """Invented 6-pin version of the demo study and its table."""
+    from optgrade.layout import layout_from_cells, write_table
+
+    text = DEMO.read_text().replace("count = [40, 40]", f"count = [{n}, {n}]")
+    text = text.replace("n_frequencies = 64", "n_frequencies = 9")
+    study = tmp_path / "small.toml"
+    study.write_text(text)
+    table = tmp_path / "table.csv"
+    lay = layout_from_cells(np.linspace(10e-3, 4e-3, n), np.full(n, 4e-3), 1e-3)
+    write_table(lay, table, study_name="small", material="aluminium_6061")
+    return study, table
+
+
+def test_cli_verify_bad_layout_exits_2_naming_the_field(tmp_path, capsys):
+    """Bad input: message names the option and the reason, exit code 2, no traceback
+    (the project's command-line rule)."""
+    from optgrade.cli import main
+
+    study, _ = _small_case(tmp_path)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("index,x_mm,height_mm\n0,0,abc\n")
+    rc = main(["verify", str(study), "--layout", str(bad), "--out", str(tmp_path / "o")])
+    err = capsys.readouterr()
+    assert rc == 2
+    assert "--layout" in err.err + err.out
+    assert "Traceback" not in err.err + err.out
+    rc = main(["verify", str(tmp_path / "missing.toml"), "--layout", str(bad), "--out",
+               str(tmp_path / "o")])
+    assert rc == 2
+
+
+@pytest.mark.slow
+def test_cli_verify_writes_trace_keys_agreement_and_figures(tmp_path):
+    """End to end on a 6-pin invented row: verify.json carries the trace.json channel keys
+    (same channel names as the propagation stage), fractions summing to 1, the agreement
+    object, and the figures are written."""
+    from optgrade.cli import main
+
+    study, table = _small_case(tmp_path)
+    out = tmp_path / "out"
+    rc = main(["verify", str(study), "--layout", str(table), "--out", str(out), "--fast",
+               "--no-lattice"])
+    assert rc == 0
+    data = json.loads((out / "verify.json").read_text())
+    for key in ("frequency_hz", "fractions", "position_m", "angle_deg", "agreement", "energy"):
+        assert key in data
+    assert set(data["fractions"]) == set(fw.CHANNELS)
+    total = np.sum([np.array(data["fractions"][c], float) for c in fw.CHANNELS], axis=0)
+    assert np.allclose(total, 1.0)
+    if data["agreement"] is not None:
+        assert set(data["agreement"]) == set(fw.CHANNELS)
+    assert max(abs(v) for v in data["energy"]["balance_error"]) < 0.03
+    for name in ("comparison.png", "snapshots.png", "animation.gif"):
+        assert (out / name).stat().st_size > 1000
