@@ -57,21 +57,23 @@ def plot_pareto(ax: Axes, values: np.ndarray, is_front: np.ndarray, names: list[
 
 
 def plot_plan(ax: Axes, x: np.ndarray, diameter: np.ndarray, row_pitch: float, *,
-              n_rows: int = 3, scale: float = 1e3, unit: str = "mm") -> Axes:
-    """Plan view: rod footprints of a few rows (pitch ``row_pitch`` across the row)."""
-    x = np.asarray(x, dtype=float) * scale
-    d = np.broadcast_to(np.asarray(diameter, dtype=float), x.shape) * scale
+              n_rows: int = 3, n_show: int = 12, scale: float = 1e3, unit: str = "mm") -> Axes:
+    """Plan view: rod footprints of the first ``n_show`` resonators of a few rows (pitch
+    ``row_pitch`` across the row), drawn to scale."""
+    n_all = np.asarray(x).size
+    x = np.asarray(x, dtype=float)[:n_show] * scale
+    d = np.broadcast_to(np.asarray(diameter, dtype=float), (n_all,))[:n_show] * scale
     for r in range(n_rows):
         y = r * row_pitch * scale
         for xi, di in zip(x, d, strict=True):
             ax.add_patch(Circle((xi, y), di / 2, fc="#56B4E9", ec="k", lw=0.3))
-    pad = max(d.max(), row_pitch * scale * 0.5)
-    ax.set_xlim(x.min() - pad, x.max() + pad)
-    ax.set_ylim(-pad, (n_rows - 1) * row_pitch * scale + pad)
     ax.set_aspect("equal", adjustable="datalim")
+    ax.autoscale_view()
     ax.set_xlabel(f"x along the row ({unit}), wave enters at x = 0")
     ax.set_ylabel(f"y ({unit})")
-    ax.set_title(f"plan, {n_rows} rows at pitch {row_pitch * scale:.3g} {unit}")
+    shown = f"first {x.size} of {n_all} resonators" if x.size < n_all else f"{n_all} resonators"
+    ax.set_title(f"plan: {shown}, {n_rows} rows at pitch {row_pitch * scale:.3g} {unit}",
+                 fontsize=9)
     return ax
 
 

@@ -1,0 +1,76 @@
+"""``optgrade export STUDY --storage URL --trial N --out DIR``: re-export a stored trial.
+
+Rebuilds the trial's layout from its stored parameters, traces it with the study's surrogate and
+writes table.csv, layout.dxf, sheet.png, result.json and report.txt into DIR (atomically).
+"""
+
+from __future__ import annotations
+
+import argparse
+
+from optgrade.commands import add_study_argument, open_study
+from optgrade.errors import StudyError
+
+__all__ = ["add_parser", "run"]
+
+
+def _trial_number(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise StudyError([f"--trial: expected a trial number or 'best', got {text!r}"]) from None
+    if value < 0:
+        raise StudyError([f"--trial: must be >= 0, got {value}"])
+    return value
+
+
+def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
+    """Register ``optgrade export``."""
+    parser = subparsers.add_parser(
+        "export",
+        help="export a stored search trial (machining table, drawing, figures, report)",
+        description=(
+            "Export one trial of a stored search: table.csv (machining table), layout.dxf (plan "
+            "and elevation), sheet.png (figure sheet), result.json and report.txt."
+        ),
+    )
+    add_study_argument(parser)
+    parser.add_argument("--storage", required=True, metavar="URL",
+                        help="optuna storage URL of the search (e.g. sqlite:///runs/x/study.db)")
+    parser.add_argument("--trial", default="best", metavar="N",
+                        help="trial number, or 'best' (default)")
+    parser.add_argument("--out", required=True, metavar="DIR", help="output directory")
+    parser.set_defaults(handler=run)
+    return parser
+
+
+def run(args: argparse.Namespace) -> int:
+    """Export the trial; 0 done, 2 bad input."""
+    import optuna
+
+    from optgrade import export, search
+
+    study = open_study(args.study)
+    try:
+        store = search.open_storage(args.storage)
+        if study.meta.name not in optuna.study.get_all_study_names(store):
+            raise search.SearchError("--storage", f"no study named {study.meta.name!r} in "
+                                     f"{args.storage}")
+        ostudy = optuna.load_study(study_name=study.meta.name, storage=store)
+        if args.trial == "best":
+            best = search.best_trial(ostudy)
+            if best is None:
+                raise search.SearchError("--trial", "the stored study has no complete trial")
+            number = best.number
+        else:
+            number = _trial_number(args.trial)
+        stored_hash = ostudy.user_attrs.get("study_hash")
+        if stored_hash and stored_hash != search.study_hash(study):
+            raise search.SearchError("STUDY", "this study file differs from the one the search "
+                                     "ran with; the layout would not match the stored trial")
+        export.export_trial(study, ostudy, number, args.out)
+    except search.SearchError as exc:
+        raise StudyError([f"{args.study}: {exc}"]) from None
+    print(f"exported trial {number} to {args.out}: table.csv layout.dxf sheet.png result.json "
+          "report.txt")
+    return 0

@@ -1,0 +1,104 @@
+"""``optgrade search STUDY --out DIR``: run (or resume) the inverse-design search of a study.
+
+One owner process asks optuna for candidates and tells the scores back; a pool of worker
+processes scores them with the fast surrogate. Results are stored in an optuna storage (SQLite
+file DIR/study.db by default) and the best trial is exported into DIR at the end (table.csv,
+layout.dxf, sheet.png, result.json, report.txt). Ctrl-C stops asking, finishes the candidates in
+flight, exports the best so far and exits 130; ``--resume`` continues an interrupted search to
+the requested trial count.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from optgrade.commands import add_study_argument, open_study
+from optgrade.errors import StudyError
+
+__all__ = ["add_parser", "run"]
+
+SAMPLER_CHOICES = ("auto", "tpe", "cmaes", "random", "nsga2", "qmc")
+
+
+def _positive_int(option: str, allow_zero: bool = False):
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise StudyError([f"{option}: expected a whole number, got {text!r}"]) from None
+        if value < (0 if allow_zero else 1):
+            need = ">= 0" if allow_zero else ">= 1"
+            raise StudyError([f"{option}: must be {need}, got {value}"])
+        return value
+
+    parse.__name__ = "whole number"
+    return parse
+
+
+def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
+    """Register ``optgrade search``."""
+    parser = subparsers.add_parser(
+        "search",
+        help="search for the best graded layout of a study (parallel, resumable)",
+        description=(
+            "Search the layout profiles of a study for the best score (weighted goals, or a "
+            "Pareto front when [search] objectives lists several). Trials are stored in an optuna "
+            "storage so a search can be resumed or shared; the best trial is exported into --out "
+            "(table.csv, layout.dxf, sheet.png, result.json, report.txt)."
+        ),
+    )
+    add_study_argument(parser)
+    parser.add_argument("--out", required=True, metavar="DIR",
+                        help="output directory (storage file and exports)")
+    parser.add_argument("--trials", type=_positive_int("--trials"), metavar="N",
+                        help="finished trials wanted in total (default: [search] trials)")
+    parser.add_argument("--jobs", type=_positive_int("--jobs", allow_zero=True), metavar="J",
+                        help="worker processes (default: [search] workers; 0 = score in this "
+                             "process)")
+    parser.add_argument("--storage", metavar="URL",
+                        help="optuna storage URL (default sqlite:///DIR/study.db; "
+                             "journal:PATH for a journal file on a shared file system)")
+    parser.add_argument("--resume", action="store_true",
+                        help="continue the stored study of the same name to --trials")
+    parser.add_argument("--sampler", choices=SAMPLER_CHOICES,
+                        help="candidate sampler (default: [search] sampler; auto = tpe, or "
+                             "nsga2 for several objectives)")
+    parser.add_argument("--chunk", type=_positive_int("--chunk"), metavar="K",
+                        help="candidates per worker task (default from [search] batch_size)")
+    parser.add_argument("--no-export", action="store_true",
+                        help="do not export the best trial at the end")
+    parser.add_argument("--quiet", action="store_true", help="no progress display")
+    parser.set_defaults(handler=run)
+    return parser
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run the search; 0 done, 2 bad input, 130 interrupted (best so far exported)."""
+    from optgrade import search
+    from optgrade.profiles import ProfileError
+
+    study = open_study(args.study)
+    try:
+        outcome = search.run_search(
+            study, args.out, n_trials=args.trials, n_jobs=args.jobs, storage=args.storage,
+            is_resume=args.resume, sampler=args.sampler, chunk_size=args.chunk,
+            show_progress=not args.quiet and sys.stderr.isatty(), do_export=not args.no_export,
+        )
+    except (search.SearchError, ProfileError) as exc:
+        raise StudyError([f"{args.study}: {exc}"]) from None
+    best = "none" if outcome.best_score is None else (
+        f"trial {outcome.best_number}, score {outcome.best_score:.4f}")
+    print(f"{outcome.study_name}: {outcome.n_finished} trials finished "
+          f"({outcome.n_told_now} now, {outcome.trials_per_second:.1f} trials/s"
+          + (f", {outcome.n_recovered} lost trials re-queued" if outcome.n_recovered else "")
+          + (f", {outcome.n_pool_restarts} worker pool restarts" if outcome.n_pool_restarts
+             else "")
+          + f"); best {best}")
+    print(f"storage: {outcome.storage}")
+    if not args.no_export and outcome.best_number is not None:
+        print(f"exported to {args.out}: table.csv layout.dxf sheet.png result.json report.txt")
+    if outcome.is_interrupted:
+        print("interrupted: run again with --resume to continue", file=sys.stderr)
+        return 130
+    return 0
