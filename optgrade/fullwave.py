@@ -329,9 +329,15 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
     n_rods = rods.x.size
     w_c = math.pi * (band[0] + band[1])
     visc = np.full(n_rods, rods.loss_factor / w_c)
-    # explicit leapfrog with Kelvin-Voigt damping tau: (c dt/ds)^2 (1 + 2 tau/dt) <= 1
-    ds_min = c_bar * dt * np.sqrt(1.0 + 2.0 * visc / dt) / 0.9
-    n_seg = np.maximum(4, np.minimum(400, np.floor(rods.height / ds_min))).astype(np.int64)
+    # Sub-steps so that the shortest rod gets at least 16 segments; explicit leapfrog with
+    # Kelvin-Voigt damping tau is stable for (c dt_sub/ds)^2 (1 + 2 tau/dt_sub) <= 1.
+    if n_rods:
+        n_sub = max(1, math.ceil(16 * c_bar * dt / (0.9 * float(np.min(rods.height)))))
+    else:
+        n_sub = 1
+    dt_sub = dt / n_sub
+    ds_min = c_bar * dt_sub * np.sqrt(1.0 + 2.0 * visc / dt_sub) / 0.9
+    n_seg = np.clip(np.floor(rods.height / ds_min), 1, 400).astype(np.int64)
     ds = rods.height / n_seg
     area = math.pi * rods.diameter**2 / 4
     b = rods.row_pitch
@@ -348,6 +354,7 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
         "rod_e": np.zeros((n_rods, n_max)),
         "n_seg": n_seg, "ds": ds, "m_node": m_node, "m_tip": m_tip.astype(float),
         "ea": ea.astype(float), "visc": visc, "fp_start": fp_start, "fp_count": n_fp,
+        "n_sub": n_sub,
     }
 
 
@@ -464,7 +471,7 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
                    ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi_k, src, grid.i_source,
                    tz_new, ra_k["rod_v"], ra_k["rod_c"], ra_k["rod_e"], ra_k["n_seg"],
                    ra_k["ds"], ra_k["m_node"], ra_k["m_tip"], ra_k["ea"], ra_k["visc"],
-                   ra_k["fp_start"], ra_k["fp_count"])
+                   ra_k["fp_start"], ra_k["fp_count"], ra_k["n_sub"])
         t_new = n1 * dt
         if snap_every and n1 % snap_every == 0 and len(snaps) < n_snapshots:
             snaps.append(uz.astype(np.float32))
