@@ -49,7 +49,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from optgrade.halfspace import Substrate
-from optgrade.lattice import MODELS, _split_shares, harmonic_term, lattice_sum
+from optgrade.lattice import MODELS, _split_shares, harmonic_term, lattice_sum, main_orders
 from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
 
 __all__ = [
@@ -135,23 +135,49 @@ class Bands:
     warnings: tuple[str, ...] = field(default_factory=tuple)
 
 
-def main_terms(K, w, a, substrate: Substrate, b: float, r: float, model: str) -> np.ndarray:
-    """T_0 + T_-1 (homogenised: T_0 only) at complex or real K (m/N), broadcasting."""
-    t = harmonic_term(K, w, substrate, a, b, r, 0, model)
-    if model != "homogenised":
-        t = t + harmonic_term(K, w, substrate, a, b, r, -1, model)
+def main_terms(K, w, a, substrate: Substrate, b: float, r: float, model: str, n_main: int = 1):
+    """Sum of the main harmonics T_m, m = -J .. J-1 (homogenised: T_0 only), at complex or
+    real K (m/N), broadcasting."""
+    if model == "homogenised":
+        return harmonic_term(K, w, substrate, a, b, r, 0, model)
+    t = 0.0
+    for m in range(-n_main, n_main):
+        t = t + harmonic_term(K, w, substrate, a, b, r, m, model)
     return t
 
 
-def _main_derivative(K, w, a, substrate, b, r, model):
+def _main_derivative(K, w, a, substrate, b, r, model, n_main):
     h = 1e-6 * np.pi / a
     return (
-        main_terms(K + h, w, a, substrate, b, r, model)
-        - main_terms(K - h, w, a, substrate, b, r, model)
+        main_terms(K + h, w, a, substrate, b, r, model, n_main)
+        - main_terms(K - h, w, a, substrate, b, r, model, n_main)
     ) / (2.0 * h)
 
 
 RestFn = Callable[..., tuple[np.ndarray, np.ndarray]]
+
+
+def _pole_bounds(kr, g, n_main, is_homog):
+    """Nearest Rayleigh poles of the main harmonics below and above kR in (0, 2 pi/a).
+
+    Returns (p_lo, p_hi): nan where there is none (then the bracket ends at 1e-3 kR, resp. at
+    pi/a (homogenised) or 2 pi/a).
+    """
+    p_lo = np.full(kr.shape, np.nan)
+    p_hi = np.full(kr.shape, np.nan)
+    if is_homog:
+        return p_lo, p_hi
+    for m in range(-n_main, n_main):
+        for sgn in (1.0, -1.0):
+            if m == 0 and sgn == 1.0:
+                continue
+            p = sgn * kr - m * g
+            inside = (p > 0) & (p < g)
+            above = inside & (p > kr) & ~(p >= p_hi)
+            p_hi = np.where(above, p, p_hi)
+            below = inside & (p < kr) & ~(p <= p_lo)
+            p_lo = np.where(below, p, p_lo)
+    return p_lo, p_hi
 
 
 def solve_points(
@@ -163,8 +189,9 @@ def solve_points(
     r: float,
     model: str,
     rest: RestFn,
+    n_main: int = 1,
 ) -> dict[str, np.ndarray]:
-    """Root engine shared by the direct solver and the surrogate.
+    """Root engine of the direct solver (the surrogate's compiled kernel mirrors it).
 
     Parameters
     ----------
@@ -176,6 +203,8 @@ def solve_points(
         ``rest(K, idx, deriv) -> (value, dvalue/dK)`` of Rest (m/N) at real K for points
         ``idx``; K has shape (len(idx),) or (len(idx), m); the derivative may be None when
         ``deriv`` is False.
+    n_main : int
+        J of `optgrade.lattice.main_orders`: harmonics -J .. J-1 in closed form.
 
     Returns
     -------
@@ -189,38 +218,41 @@ def solve_points(
     lossless = Substrate(substrate.density, substrate.cl, substrate.ct)
     kr = w / substrate.cr
     g = 2.0 * np.pi / a
-    kfold = g - kr
     is_homog = model == "homogenised"
-    below_edge = kr < 0.5 * g
+    orders = [0] if is_homog else list(range(-n_main, n_main))
+    p_lo, p_hi = _pole_bounds(kr, g, n_main, is_homog)
     out_k = np.full((2, n), np.nan + 0j)
     out_sh = np.zeros((2, 5, n))
     out_an = np.full((2, 4, n), np.nan)
     out_leaky = np.zeros((2, n), dtype=bool)
     out_fo = np.zeros((2, n), dtype=bool)
 
-    def re_f(K, idx):
-        """Re D with the sign of Sigma - 1/Z, lossless main terms (real-axis function)."""
-        Kc = np.asarray(K)
-        sh = (slice(None),) + (None,) * (Kc.ndim - 1)
-        val = main_terms(Kc, w[idx][sh], a[idx][sh], lossless, b, r, model)
-        rv, _ = rest(Kc, idx, False)
-        return (val + rv).real - inv_z[idx][sh].real
+    def h_of(K, sel, lo_s, hi_s, pole_lo, pole_hi):
+        """Re(Sigma - 1/Z) times the pole factors of the bracket ends (pole-free)."""
+        sh = (slice(None),) + (None,) * (np.ndim(K) - 1)
+        val = main_terms(K, w[sel][sh], a[sel][sh], lossless, b, r, model, n_main)
+        rv, _ = rest(K, sel, False)
+        f = (val + rv).real - inv_z[sel][sh].real
+        f = f * np.where(pole_lo[sh], K - lo_s[sh], 1.0)
+        return f * np.where(pole_hi[sh], hi_s[sh] - K, 1.0)
 
     for branch in (0, 1):
         if branch == 0:
             lo = kr.copy()
-            hi = np.where(below_edge | is_homog, np.where(is_homog, 0.5 * g, kfold), g)
-            valid = hi > lo * (1.0 + 1e-9)
+            hi = np.where(np.isfinite(p_hi), p_hi, 0.5 * g if is_homog else g)
+            pole_lo = np.ones(n, dtype=bool)
+            pole_hi = np.isfinite(p_hi)
         else:
             hi = kr.copy()
-            lo = np.where(below_edge | is_homog, 1e-3 * kr, kfold)
-            valid = (hi > lo * (1.0 + 1e-9)) & (is_homog | (kr < g))
+            lo = np.where(np.isfinite(p_lo), p_lo, 1e-3 * kr)
+            pole_lo = np.isfinite(p_lo)
+            pole_hi = np.ones(n, dtype=bool)
+        valid = (hi > lo * (1.0 + 1e-9)) & (kr < (0.5 * g if is_homog else g))
         idx = np.flatnonzero(valid)
         if idx.size == 0:
             continue
-        lo_i, hi_i, kr_i = lo[idx], hi[idx], kr[idx]
-        has_fold = (~below_edge[idx]) if branch == 1 else (below_edge[idx] & (not is_homog))
-        # scan from the Rayleigh pole outwards, points clustered near the pole
+        lo_i, hi_i, pl_i, ph_i = lo[idx], hi[idx], pole_lo[idx], pole_hi[idx]
+        # scan outwards from the Rayleigh pole, points clustered near it
         u = (np.arange(1, _N_SCAN + 1) / _N_SCAN) ** 2
         u[-1] = 1.0 - 1e-9
         u = np.concatenate([[1e-9], u])
@@ -228,19 +260,7 @@ def solve_points(
             Ks = lo_i[:, None] + (hi_i - lo_i)[:, None] * u[None, :]
         else:
             Ks = hi_i[:, None] - (hi_i - lo_i)[:, None] * u[None, :]
-
-        def h_of(K, sel, lo_s, hi_s, kr_s, fold_s, _branch=branch):
-            f = re_f(K, sel)
-            sh = (slice(None),) + (None,) * (np.ndim(K) - 1)
-            pole = (K - kr_s[sh]) if _branch == 0 else (kr_s[sh] - K)
-            other = np.where(
-                fold_s[sh],
-                (hi_s[sh] - K) if _branch == 0 else (K - lo_s[sh]),
-                1.0,
-            )
-            return f * pole * other
-
-        H = h_of(Ks, idx, lo_i, hi_i, kr_i, has_fold)
+        H = h_of(Ks, idx, lo_i, hi_i, pl_i, ph_i)
         # h keeps the sign of the pole's residue next to it; the first sign change outwards
         # brackets the root
         neg = np.sign(H) != np.sign(H[:, :1])
@@ -253,52 +273,60 @@ def solve_points(
         rows = np.flatnonzero(found)
         ka, kb = Ks[rows, j - 1], Ks[rows, j]
         ha, hb = H[rows, j - 1], H[rows, j]
-        lo_s, hi_s, kr_s, fold_s = lo_i[rows], hi_i[rows], kr_i[rows], has_fold[rows]
+        lo_s, hi_s, pl_s, ph_s = lo_i[rows], hi_i[rows], pl_i[rows], ph_i[rows]
         active = np.ones(sel.size, dtype=bool)
         for _ in range(_MAX_ILLINOIS):
             act = np.flatnonzero(active)
             if act.size == 0:
                 break
             den = hb[act] - ha[act]
+            safe = np.where(den != 0, den, 1.0)
             kc = np.where(
                 den != 0,
-                (ka[act] * hb[act] - kb[act] * ha[act]) / np.where(den != 0, den, 1.0),
+                (ka[act] * hb[act] - kb[act] * ha[act]) / safe,
                 0.5 * (ka[act] + kb[act]),
             )
-            hc = h_of(kc, sel[act], lo_s[act], hi_s[act], kr_s[act], fold_s[act])
+            hc = h_of(kc, sel[act], lo_s[act], hi_s[act], pl_s[act], ph_s[act])
             flip = np.sign(hc) != np.sign(hb[act])
             ka_new = np.where(flip, kb[act], ka[act])
             ha_new = np.where(flip, hb[act], 0.5 * ha[act])
+            moved = np.abs(kc - kb[act])
             ka[act], ha[act] = ka_new, ha_new
             kb[act], hb[act] = kc, hc
-            done = (np.abs(kb[act] - ka[act]) <= 1e-13 * np.abs(kc)) | (hc == 0)
+            done = (
+                (np.abs(kb[act] - ka[act]) <= 1e-13 * np.abs(kc))
+                | (hc == 0)
+                | (moved <= 1e-13 * np.abs(kc))
+            )
             active[act[done]] = False
         k_re = kb
         # complex root: Newton with exact main terms and Taylor-continued rest
         w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
         r0, dr0 = rest(k_re, sel)
-        m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model)
-        dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model)
+        m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model, n_main)
+        dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model, n_main)
         d0 = iz_s - m0 - r0
         dd0 = -(dm0 + dr0)
         with np.errstate(divide="ignore", invalid="ignore"):
             k_first = k_re + 1j * (-d0.imag / dd0.real)
+        is_real = np.abs(d0.imag) <= 1e-14 * np.abs(iz_s)
         kk = k_re.astype(complex)
-        ok = np.ones(sel.size, dtype=bool)
+        step = np.zeros(sel.size, dtype=complex)
         for _ in range(_N_NEWTON):
-            m = main_terms(kk, w_s, a_s, substrate, b, r, model)
-            dm = _main_derivative(kk, w_s, a_s, substrate, b, r, model)
-            rr = r0 + (kk - k_re) * dr0
-            d = iz_s - m - rr
+            m = main_terms(kk, w_s, a_s, substrate, b, r, model, n_main)
+            dm = _main_derivative(kk, w_s, a_s, substrate, b, r, model, n_main)
+            d = iz_s - m - (r0 + (kk - k_re) * dr0)
             dd = -(dm + dr0)
             with np.errstate(divide="ignore", invalid="ignore"):
-                step = d / dd
+                step = np.where(is_real, 0.0, d / dd)
             kk = kk - step
-        ok &= np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
-        # Newton must not cross a branch point of the radiating harmonics
+        ok = np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
+        # Newton must not cross a branch point of a radiating main harmonic
         kt_s, kl_s = w_s / substrate.ct, w_s / substrate.cl
-        for edge in (kt_s, kl_s, g[sel] - kt_s, g[sel] - kl_s):
-            ok &= np.sign(kk.real - edge) == np.sign(k_re - edge)
+        for mi in orders:
+            for edge in (kt_s, kl_s, -kt_s, -kl_s):
+                e = edge - mi * g[sel]
+                ok &= np.sign(kk.real - e) == np.sign(k_re - e)
         ok &= kk.imag > -1e-9 * np.abs(kk)
         kk = np.where(ok, kk, k_first)
         fo = ~ok
@@ -307,48 +335,17 @@ def solve_points(
         kk = np.where(keep, kk, np.nan)
         out_k[branch, sel] = kk
         out_fo[branch, sel] = fo & keep
-        # channels at K' (first order)
-        kp = kk.real
-        kl2, kt2 = (w_s / substrate.cl) ** 2, (w_s / substrate.ct) ** 2
-        parts = np.zeros((4, sel.size))
-        for mi, off in ((0, 0), (-1, 2)):
-            if is_homog and mi == -1:
-                continue
-            kx = kp + 2.0 * np.pi * mi / a_s
-            xi2 = kx * kx
-            im = np.where(
-                xi2 < kt2,
-                harmonic_term(kp, w_s, lossless, a_s, b, r, mi, model).imag,
-                0.0,
-            )
-            shear = _split_shares(xi2, kl2, kt2)
-            parts[off] = im * shear
-            parts[off + 1] = im * (1.0 - shear)
+        sh, an = _channels(kk.real, w_s, a_s, substrate, lossless, b, r, model, orders)
         total = (m0 + r0 - iz_s).imag
         total = np.where(np.isfinite(total), total, 0.0)
-        absorbed = np.maximum(total - parts.sum(axis=0), 0.0)
-        allp = np.concatenate([np.maximum(parts, 0.0), absorbed[None]], axis=0)
+        absorbed = np.maximum(total - sh.sum(axis=0), 0.0)
+        allp = np.concatenate([sh, absorbed[None]], axis=0)
         ssum = allp.sum(axis=0)
         has_decay = keep & (kk.imag > 0) & (ssum > 0)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out_sh[branch][:, sel] = np.where(has_decay, allp / np.where(ssum > 0, ssum, 1.0), 0.0)
-        # angles from the surface normal (negative = pointing back to the source)
-        kb_back = kp - g[sel]
-        kts, kls = np.sqrt(kt2), np.sqrt(kl2)
-        with np.errstate(invalid="ignore"):
-            ang = np.full((4, sel.size), np.nan)
-            ang[0] = np.where(kp < kts, np.arcsin(np.clip(kp / kts, -1, 1)), np.nan)
-            ang[1] = np.where(kp < kls, np.arcsin(np.clip(kp / kls, -1, 1)), np.nan)
-            if not is_homog:
-                ang[2] = np.where(
-                    np.abs(kb_back) < kts, np.arcsin(np.clip(kb_back / kts, -1, 1)), np.nan
-                )
-                ang[3] = np.where(
-                    np.abs(kb_back) < kls, np.arcsin(np.clip(kb_back / kls, -1, 1)), np.nan
-                )
-        ang[:, ~keep] = np.nan
-        out_an[branch][:, sel] = ang
-        out_leaky[branch, sel] = keep & np.any(np.isfinite(ang), axis=0)
+        out_sh[branch][:, sel] = np.where(has_decay, allp / np.where(ssum > 0, ssum, 1.0), 0.0)
+        an[:, ~keep] = np.nan
+        out_an[branch][:, sel] = an
+        out_leaky[branch, sel] = keep & np.any(np.isfinite(an), axis=0)
     return {
         "k": out_k,
         "shares": out_sh,
@@ -358,7 +355,44 @@ def solve_points(
     }
 
 
-def _direct_rest(w, a, substrate, b, r, model):
+def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
+    """Radiated Im parts (4, n) of the main harmonics at K' and the channel angles (4, n).
+
+    Harmonic m radiates shear where |K' + 2 pi m/a| < kT (compressional where < kL); forward if
+    K' + 2 pi m/a > 0. Its Im T_m (lossless substrate) is split by `_split_shares`. A channel fed
+    by several harmonics reports the angle of the strongest one.
+    """
+    kl2, kt2 = (w / substrate.cl) ** 2, (w / substrate.ct) ** 2
+    parts = np.zeros((4, kp.size))
+    best = np.zeros((4, kp.size))
+    ang = np.full((4, kp.size), np.nan)
+    g = 2.0 * np.pi / a
+    for mi in orders:
+        kx = kp + mi * g
+        xi2 = kx * kx
+        with np.errstate(invalid="ignore"):
+            im = np.where(
+                xi2 < kt2,
+                harmonic_term(np.nan_to_num(kp), w, lossless, a, b, r, mi, model).imag,
+                0.0,
+            )
+            im = np.maximum(np.nan_to_num(im), 0.0)
+            shear = _split_shares(xi2, kl2, kt2)
+            fwd = kx > 0
+            for off, share, k2 in ((0, shear, kt2), (1, 1.0 - shear, kl2)):
+                p = im * share
+                for ch, mask in ((off, fwd), (off + 2, ~fwd)):
+                    pm = np.where(mask, p, 0.0)
+                    parts[ch] += pm
+                    opened = mask & (xi2 < k2)
+                    stronger = opened & ((pm > best[ch]) | np.isnan(ang[ch]))
+                    th = np.arcsin(np.clip(kx / np.sqrt(k2), -1.0, 1.0))
+                    ang[ch] = np.where(stronger, th, ang[ch])
+                    best[ch] = np.where(stronger, pm, best[ch])
+    return parts, ang
+
+
+def _direct_rest(w, a, substrate, b, r, model, n_main):
     """Rest callback summing the lattice exactly (one lattice_sum per distinct spacing)."""
     a = np.asarray(a, dtype=float)
 
@@ -374,12 +408,13 @@ def _direct_rest(w, a, substrate, b, r, model):
             h = 1e-6 * np.pi / av
             kk = K[rows]
             ww = np.broadcast_to(ws[rows], kk.shape) if K.ndim > 1 else ws[rows]
-            val[rows] = lattice_sum(kk, ww, substrate, av, b, r, model, exclude_main=True)
+            kw = dict(exclude_main=n_main)
+            val[rows] = lattice_sum(kk, ww, substrate, av, b, r, model, **kw)
             if not deriv:
                 continue
             der[rows] = (
-                lattice_sum(kk + h, ww, substrate, av, b, r, model, exclude_main=True)
-                - lattice_sum(kk - h, ww, substrate, av, b, r, model, exclude_main=True)
+                lattice_sum(kk + h, ww, substrate, av, b, r, model, **kw)
+                - lattice_sum(kk - h, ww, substrate, av, b, r, model, **kw)
             ) / (2.0 * h)
         return val, der
 
@@ -458,16 +493,9 @@ def direct_local_modes(
     iz = rod_compliance(
         2 * np.pi * freq[None, :], rod, h.ravel()[:, None], m.ravel()[:, None]
     ).ravel()
-    res = solve_points(
-        w,
-        iz,
-        ap,
-        substrate,
-        row_pitch,
-        rod.radius,
-        model,
-        _direct_rest(w, ap, substrate, row_pitch, rod.radius, model),
-    )
+    n_main = main_orders(float(ap.max()), float(w.max()) / substrate.cr, model)
+    rest = _direct_rest(w, ap, substrate, row_pitch, rod.radius, model, n_main)
+    res = solve_points(w, iz, ap, substrate, row_pitch, rod.radius, model, rest, n_main)
     return LocalModes(
         k=res["k"].reshape(2, n_cells, n_freq),
         shares=res["shares"].reshape(2, 5, n_cells, n_freq),
@@ -516,16 +544,10 @@ def solve_bands(cell: Cell, freq: ArrayLike, model: str = "lattice") -> Bands:
     w = 2 * np.pi * freq
     a = np.full(freq.shape, float(cell.spacing))
     iz = rod_compliance(w, cell.rod, cell.height, cell.head_mass)
-    res = solve_points(
-        w,
-        iz,
-        a,
-        cell.substrate,
-        cell.row_pitch,
-        cell.rod.radius,
-        model,
-        _direct_rest(w, a, cell.substrate, cell.row_pitch, cell.rod.radius, model),
-    )
+    sub, b, r = cell.substrate, cell.row_pitch, cell.rod.radius
+    n_main = main_orders(float(cell.spacing), float(w.max()) / sub.cr, model)
+    rest = _direct_rest(w, a, sub, b, r, model, n_main)
+    res = solve_points(w, iz, a, sub, b, r, model, rest, n_main)
     names = ("lower", "upper")
     branches = tuple(
         Branch(

@@ -43,6 +43,7 @@ __all__ = [
     "radiation_parts",
     "form_factor_sq",
     "default_harmonics",
+    "main_orders",
 ]
 
 Model = Literal["lattice", "line", "homogenised"]
@@ -178,6 +179,18 @@ def harmonic_term(
     return compliance_sq(xi2, w, substrate) * s2 / (spacing * row_pitch)
 
 
+def main_orders(spacing: float, kr_max: float, model: Model = "lattice") -> int:
+    """Number J of main harmonic pairs: m = -J .. J-1 (n = 0) are treated in closed form.
+
+    Chosen so that every other harmonic stays away from the Rayleigh pole and the radiation
+    cones over the extended zone 0 < K < 2 pi/a: 2 pi J / a > 1.1 kR_max (dimensionless count).
+    The set is symmetric under m -> -1 - m, so the rest is symmetric about the zone edge.
+    """
+    if model == "homogenised":
+        return 1
+    return max(1, int(np.ceil(1.1 * kr_max * spacing / (2.0 * np.pi))))
+
+
 def lattice_sum(
     K: ArrayLike,
     w: ArrayLike,
@@ -187,7 +200,7 @@ def lattice_sum(
     radius: float,
     model: Model = "lattice",
     n_harmonics: int | None = None,
-    exclude_main: bool = False,
+    exclude_main: bool | int = False,
 ) -> np.ndarray:
     """Lattice sum Sigma(K, w) (m/N): the Bloch dispersion relation is 1/Z(w) = Sigma(K, w).
 
@@ -207,8 +220,9 @@ def lattice_sum(
         See the module docstring (physics.md section 5).
     n_harmonics : int, optional
         Half-width M of the static box in m (n scaled to the same |xi|); default |xi| r <= 12.
-    exclude_main : bool
-        Drop the (m, n) = (0, 0) and (-1, 0) terms (the surrogate adds them exactly).
+    exclude_main : bool or int
+        Drop the main harmonics (m, 0) with -J <= m < J, J = int(exclude_main) (True: J = 1,
+        i.e. m = 0 and -1); the band solver adds them in closed form (`main_orders`).
 
     Returns
     -------
@@ -220,15 +234,15 @@ def lattice_sum(
     w = np.asarray(w, dtype=float)
     a, b, r = float(spacing), float(row_pitch), float(radius)
     if model == "homogenised":
-        if exclude_main:
+        if int(exclude_main) > 0:
             return np.zeros(np.broadcast(K, w).shape, dtype=complex)
         return harmonic_term(K, w, substrate, a, b, r, 0, model)
     m_s = default_harmonics(a, r, model) if n_harmonics is None else int(n_harmonics)
-    m_s = max(m_s, 2)
+    m_s = max(m_s, 2, int(exclude_main) + 1)
     n_s = int(np.ceil(m_s * b / a)) if model == "lattice" else 0
     kt_max = float(np.max(w, initial=0.0)) / substrate.ct
     x_dyn = max(_DYNAMIC_XR / r, _DYNAMIC_KT * kt_max)
-    m_d = min(m_s, max(2, int(np.ceil(x_dyn * a / (2.0 * np.pi)))))
+    m_d = min(m_s, max(2, int(exclude_main) + 1, int(np.ceil(x_dyn * a / (2.0 * np.pi)))))
     n_d = min(n_s, int(np.ceil(x_dyn * b / (2.0 * np.pi)))) if model == "lattice" else 0
 
     shape = np.broadcast(K, w).shape
@@ -240,8 +254,9 @@ def lattice_sum(
 
     # dynamic remainder (G - G_s) S^2 over the small box
     mm, nn = _harmonic_grid(a, b, model, m_d, n_d)
-    if exclude_main:
-        keep = ~((nn == 0) & ((mm == 0) | (mm == -1)))
+    n_main = int(exclude_main)
+    if n_main > 0:
+        keep = ~((nn == 0) & (mm >= -n_main) & (mm < n_main))
         mm, nn = mm[keep], nn[keep]
     xi2 = (Kb + 2.0 * np.pi * mm / a) ** 2 + (2.0 * np.pi * nn / b) ** 2
     s2 = form_factor_sq(xi2, r, model)
@@ -251,8 +266,8 @@ def lattice_sum(
 
     # static part over the large box (w independent; computed once per K)
     ms, ns = _harmonic_grid(a, b, model, m_s, n_s)
-    if exclude_main:
-        keep = ~((ns == 0) & ((ms == 0) | (ms == -1)))
+    if n_main > 0:
+        keep = ~((ns == 0) & (ms >= -n_main) & (ms < n_main))
         ms, ns = ms[keep], ns[keep]
     Ku = np.asarray(K)[..., None]
     xi2s = (Ku + 2.0 * np.pi * ms / a) ** 2 + (2.0 * np.pi * ns / b) ** 2

@@ -43,13 +43,13 @@ from numba import njit
 from numpy.typing import ArrayLike
 
 from optgrade.halfspace import Substrate
-from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum
+from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum, main_orders
 from optgrade.resonators import Rod, rod_compliance
 
 __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 
 #: bump when the table layout or the lattice-sum numerics change
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 #: largest ratio between neighbouring spacing levels, minus one
 LEVEL_STEP = 0.04
 #: table resolution: points along kappa in [0, 1] and along w
@@ -156,6 +156,8 @@ class Surrogate:
         self.dk = 1.0 / (N_KAPPA - 1)
         self.kappa = -3 * self.dk + self.dk * np.arange(N_KAPPA + 6)
         self.omega = np.linspace(2 * np.pi * f_lo, 2 * np.pi * f_hi, N_FREQ)
+        kr_max = 2 * np.pi * f_hi / substrate.cr
+        self.n_main = main_orders(self.spacing_range[1], kr_max, model)
         self.was_loaded = False
         self.cache_path: Path | None = None
         self.table = self._load_or_build(cache_dir)
@@ -201,7 +203,7 @@ class Surrogate:
             "levels": [float(v) for v in self.levels],
             "kappa": [N_KAPPA, float(self.kappa[0]), float(self.dk)],
             "omega": [float(self.omega[0]), float(self.omega[-1]), N_FREQ],
-            "sums": [_STATIC_XR, _DYNAMIC_XR, _DYNAMIC_KT],
+            "sums": [_STATIC_XR, _DYNAMIC_XR, _DYNAMIC_KT, self.n_main],
         }
         text = json.dumps(payload, sort_keys=True)
         return hashlib.sha256(text.encode()).hexdigest()[:32]
@@ -219,7 +221,7 @@ class Surrogate:
                 self.row_pitch,
                 self.rod.radius,
                 self.model,
-                exclude_main=True,
+                exclude_main=self.n_main,
             )
         return out
 
@@ -311,6 +313,7 @@ class Surrogate:
             self.rod.radius,
             {"lattice": 0, "line": 1, "homogenised": 2}[self.model],
             _COEF,
+            self.n_main,
             out_k,
             out_sh,
             out_an,
@@ -371,7 +374,7 @@ N_NEWTON = 4
 
 # Taylor coefficients of 2 J1(x)/x in x^2 (|x| <= 4 is all the two main terms need)
 _COEF = np.array(
-    [(-1.0) ** k / (4.0**k * math.factorial(k) * math.factorial(k + 1)) for k in range(15)]
+    [(-1.0) ** k / (4.0**k * math.factorial(k) * math.factorial(k + 1)) for k in range(22)]
 )
 
 
@@ -438,13 +441,16 @@ def _ff2(q, radius, model, coef):
 
 
 @njit(cache=True)
-def _main(K, a, b, radius, model, kl2, kt2, mu, coef):
-    q0 = K * K
-    t = _compliance(q0, kl2, kt2, mu) * _ff2(q0, radius, model, coef)
-    if model != 2:
-        x = K - 2.0 * math.pi / a
-        q1 = x * x
-        t += _compliance(q1, kl2, kt2, mu) * _ff2(q1, radius, model, coef)
+def _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
+    g = 2.0 * math.pi / a
+    if model == 2:
+        q0 = K * K
+        return _compliance(q0, kl2, kt2, mu) * _ff2(q0, radius, model, coef) / (a * b)
+    t = 0j
+    for m in range(-n_main, n_main):
+        x = K + m * g
+        q = x * x
+        t += _compliance(q, kl2, kt2, mu) * _ff2(q, radius, model, coef)
     return t / (a * b)
 
 
@@ -499,6 +505,38 @@ def _split_shear(xi2, kl2, kt2):
 
 
 @njit(cache=True)
+def _h(
+    K,
+    a,
+    b,
+    radius,
+    model,
+    kl2_0,
+    kt2_0,
+    mu,
+    coef,
+    n_main,
+    iz,
+    table,
+    k0,
+    dk,
+    wi,
+    wt,
+    lo,
+    hi,
+    pole_lo,
+    pole_hi,
+):
+    rv, _ = _rest(K, a, table, k0, dk, wi, wt)
+    f = (_main(K, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main) + rv).real - iz.real
+    if pole_lo:
+        f *= K - lo
+    if pole_hi:
+        f *= hi - K
+    return f
+
+
+@njit(cache=True)
 def solve_grid(
     w_arr,
     inv_z,
@@ -519,6 +557,7 @@ def solve_grid(
     radius,
     model,
     coef,
+    n_main,
     out_k,
     out_sh,
     out_an,
@@ -529,6 +568,8 @@ def solve_grid(
     nf = w_arr.size
     nw = slices.shape[2]
     pi = math.pi
+    m_lo = 0 if model == 2 else -n_main
+    m_hi = 1 if model == 2 else n_main
     for ic in range(nc):
         a = a_arr[ic]
         g = 2.0 * pi / a
@@ -548,30 +589,39 @@ def solve_grid(
             kl2 = (w / clc) ** 2
             kt2 = (w / ctc) ** 2
             kr = w / cr
-            kfold = g - kr
-            below = kr < 0.5 * g
+            kt_s = w / ct
+            kl_s = w / cl
+            # nearest poles of the main harmonics below / above kR in (0, 2 pi / a)
+            p_lo = -1.0
+            p_hi = -1.0
+            if model != 2:
+                for m in range(-n_main, n_main):
+                    for sgn in (1.0, -1.0):
+                        if m == 0 and sgn == 1.0:
+                            continue
+                        p = sgn * kr - m * g
+                        if p > 0.0 and p < g:
+                            if p > kr and (p_hi < 0.0 or p < p_hi):
+                                p_hi = p
+                            if p < kr and (p_lo < 0.0 or p > p_lo):
+                                p_lo = p
+            zone = 0.5 * g if model == 2 else g
+            if kr >= zone:
+                continue
             for br in range(2):
                 if br == 0:
                     lo = kr
-                    if model == 2:
-                        hi = 0.5 * g
-                    elif below:
-                        hi = kfold
-                    else:
-                        hi = g
-                    valid = hi > lo * (1.0 + 1e-9)
-                    has_fold = below and model != 2
+                    hi = p_hi if p_hi > 0.0 else zone
+                    pole_lo = True
+                    pole_hi = p_hi > 0.0
                 else:
                     hi = kr
-                    if below or model == 2:
-                        lo = 1e-3 * kr
-                    else:
-                        lo = kfold
-                    valid = hi > lo * (1.0 + 1e-9) and (model == 2 or kr < g)
-                    has_fold = (not below) and model != 2
-                if not valid:
+                    lo = p_lo if p_lo > 0.0 else 1e-3 * kr
+                    pole_lo = p_lo > 0.0
+                    pole_hi = True
+                if not hi > lo * (1.0 + 1e-9):
                     continue
-                # scan outwards from the pole
+                # scan outwards from the Rayleigh pole
                 kprev = 0.0
                 hprev = 0.0
                 h_first = 0.0
@@ -591,15 +641,28 @@ def solve_grid(
                         K = lo + (hi - lo) * u
                     else:
                         K = hi - (hi - lo) * u
-                    rv, _ = _rest(K, a, table, k0, dk, wi, wt)
-                    f = (
-                        _main(K + 0j, a, b, radius, model, kl2_0, kt2_0, mu, coef) + rv
-                    ).real - iz.real
-                    pole = (K - kr) if br == 0 else (kr - K)
-                    other = 1.0
-                    if has_fold:
-                        other = (hi - K) if br == 0 else (K - lo)
-                    h = f * pole * other
+                    h = _h(
+                        K,
+                        a,
+                        b,
+                        radius,
+                        model,
+                        kl2_0,
+                        kt2_0,
+                        mu,
+                        coef,
+                        n_main,
+                        iz,
+                        table,
+                        k0,
+                        dk,
+                        wi,
+                        wt,
+                        lo,
+                        hi,
+                        pole_lo,
+                        pole_hi,
+                    )
                     if js == 0:
                         h_first = h
                     elif (h > 0.0) != (h_first > 0.0):
@@ -615,15 +678,28 @@ def solve_grid(
                         kc = (ka * hb - kb * ha) / den
                     else:
                         kc = 0.5 * (ka + kb)
-                    rv, _ = _rest(kc, a, table, k0, dk, wi, wt)
-                    f = (
-                        _main(kc + 0j, a, b, radius, model, kl2_0, kt2_0, mu, coef) + rv
-                    ).real - iz.real
-                    pole = (kc - kr) if br == 0 else (kr - kc)
-                    other = 1.0
-                    if has_fold:
-                        other = (hi - kc) if br == 0 else (kc - lo)
-                    hc = f * pole * other
+                    hc = _h(
+                        kc,
+                        a,
+                        b,
+                        radius,
+                        model,
+                        kl2_0,
+                        kt2_0,
+                        mu,
+                        coef,
+                        n_main,
+                        iz,
+                        table,
+                        k0,
+                        dk,
+                        wi,
+                        wt,
+                        lo,
+                        hi,
+                        pole_lo,
+                        pole_hi,
+                    )
                     if (hc > 0.0) != (hb > 0.0):
                         ka, ha = kb, hb
                     else:
@@ -635,10 +711,10 @@ def solve_grid(
                 k_re = kb
                 hstep = 1e-6 * pi / a
                 r0, dr0 = _rest(k_re, a, table, k0, dk, wi, wt)
-                m0 = _main(k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef)
+                m0 = _main(k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
                 dm0 = (
-                    _main(k_re + hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef)
-                    - _main(k_re - hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef)
+                    _main(k_re + hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
+                    - _main(k_re - hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
                 ) / (2.0 * hstep)
                 d0 = iz - m0 - r0
                 dd0 = -(dm0 + dr0)
@@ -646,11 +722,13 @@ def solve_grid(
                 kk = k_re + 0j
                 step = 0j
                 n_newton = N_NEWTON
-                if abs(d0.imag) <= 1e-14 * abs(iz) + 1e-300:
+                if abs(d0.imag) <= 1e-14 * abs(iz):
                     n_newton = 0  # lossless bound root: already exact on the real axis
                 for _ in range(n_newton):
-                    m = _main(kk, a, b, radius, model, kl2, kt2, muc, coef)
-                    dm = (_main(kk + hstep, a, b, radius, model, kl2, kt2, muc, coef) - m) / hstep
+                    m = _main(kk, a, b, radius, model, kl2, kt2, muc, coef, n_main)
+                    dm = (
+                        _main(kk + hstep, a, b, radius, model, kl2, kt2, muc, coef, n_main) - m
+                    ) / hstep
                     d = iz - m - (r0 + (kk - k_re) * dr0)
                     dd = -(dm + dr0)
                     step = d / dd
@@ -662,12 +740,11 @@ def solve_grid(
                     and math.isfinite(kk.imag)
                     and abs(step) <= 1e-7 * abs(kk)
                 )
-                kt_s = w / ct
-                kl_s = w / cl
-                edges = (kt_s, kl_s, g - kt_s, g - kl_s)
-                for e in edges:
-                    if (kk.real > e) != (k_re > e):
-                        ok = False
+                for m in range(m_lo, m_hi):
+                    for e0 in (kt_s, kl_s, -kt_s, -kl_s):
+                        e = e0 - m * g
+                        if (kk.real > e) != (k_re > e):
+                            ok = False
                 if kk.imag < -1e-9 * abs(kk):
                     ok = False
                 fo = False
@@ -680,51 +757,39 @@ def solve_grid(
                     continue
                 out_k[br, ic, jf] = kk
                 out_fo[br, ic, jf] = fo
-                # shares at K'
+                # channel parts and angles at K'
                 kp = kk.real
                 kl2r = (w / cl) ** 2
                 kt2r = (w / ct) ** 2
-                p0 = 0.0
-                p1 = 0.0
-                p2 = 0.0
-                p3 = 0.0
-                for mi in range(2):
-                    if model == 2 and mi == 1:
-                        continue
-                    kx = kp - mi * g
+                parts = np.zeros(4)
+                best = np.zeros(4)
+                for m in range(m_lo, m_hi):
+                    kx = kp + m * g
                     xi2 = kx * kx
-                    if xi2 < kt2r:
-                        qq = xi2 + 0j
-                        im = (
-                            _compliance(qq, kl2_0, kt2_0, mu) * _ff2(qq, radius, model, coef)
-                        ).imag / (a * b)
-                        sh = _split_shear(xi2, kl2r, kt2r)
-                        if mi == 0:
-                            p0 = max(im * sh, 0.0)
-                            p1 = max(im * (1.0 - sh), 0.0)
-                        else:
-                            p2 = max(im * sh, 0.0)
-                            p3 = max(im * (1.0 - sh), 0.0)
+                    if xi2 >= kt2r:
+                        continue
+                    qq = xi2 + 0j
+                    im = (_compliance(qq, kl2_0, kt2_0, mu) * _ff2(qq, radius, model, coef)).imag
+                    im = max(im / (a * b), 0.0)
+                    sh = _split_shear(xi2, kl2r, kt2r)
+                    base = 0 if kx > 0.0 else 2
+                    for typ in range(2):
+                        pm = im * sh if typ == 0 else im * (1.0 - sh)
+                        k2 = kt2r if typ == 0 else kl2r
+                        ch = base + typ
+                        parts[ch] += pm
+                        if xi2 < k2 and (pm > best[ch] or math.isnan(out_an[br, ch, ic, jf])):
+                            best[ch] = pm
+                            out_an[br, ch, ic, jf] = math.asin(
+                                max(min(kx / math.sqrt(k2), 1.0), -1.0)
+                            )
                 total = (m0 + r0 - iz).imag
                 if not math.isfinite(total):
                     total = 0.0
-                absorbed = max(total - (p0 + p1 + p2 + p3), 0.0)
-                ssum = p0 + p1 + p2 + p3 + absorbed
+                psum = parts[0] + parts[1] + parts[2] + parts[3]
+                absorbed = max(total - psum, 0.0)
+                ssum = psum + absorbed
                 if kk.imag > 0.0 and ssum > 0.0:
-                    out_sh[br, 0, ic, jf] = p0 / ssum
-                    out_sh[br, 1, ic, jf] = p1 / ssum
-                    out_sh[br, 2, ic, jf] = p2 / ssum
-                    out_sh[br, 3, ic, jf] = p3 / ssum
+                    for ch in range(4):
+                        out_sh[br, ch, ic, jf] = parts[ch] / ssum
                     out_sh[br, 4, ic, jf] = absorbed / ssum
-                kts = w / ct
-                kls = w / cl
-                if kp < kts:
-                    out_an[br, 0, ic, jf] = math.asin(max(min(kp / kts, 1.0), -1.0))
-                if kp < kls:
-                    out_an[br, 1, ic, jf] = math.asin(max(min(kp / kls, 1.0), -1.0))
-                if model != 2:
-                    kbk = kp - g
-                    if abs(kbk) < kts:
-                        out_an[br, 2, ic, jf] = math.asin(kbk / kts)
-                    if abs(kbk) < kls:
-                        out_an[br, 3, ic, jf] = math.asin(kbk / kls)
