@@ -65,9 +65,11 @@ from skfem.models.elasticity import linear_elasticity
 __all__ = [
     "CellModel",
     "CellModes",
+    "bloch_transform",
     "build_cell",
     "graded_depth_nodes",
     "rayleigh_speed_ratio",
+    "single_thread_blas",
     "solve_cell",
 ]
 
@@ -335,6 +337,10 @@ def build_cell(
         return v[1] / footprint
 
     coupling = asm(mean_uy, fbasis)
+    # a uniform vertical field has mean 1, a horizontal one contributes nothing
+    if not (np.isclose(coupling[comp == 1].sum(), 1.0, rtol=1e-12)
+            and np.allclose(coupling[comp == 0], 0.0)):
+        raise RuntimeError("footprint coupling vector is not a mean of u_y over the strip")
 
     # bar: axial P2 elements on 0 <= s <= L, per unit out-of-plane length
     area = 0.25 * np.pi * rod_diameter**2
