@@ -544,7 +544,15 @@ def run_search(
             on_told(told_now)
 
     def submit(ex, chunk):
-        return ex.submit(_score_chunk, study, key, pipeline, chunk, is_dry)
+        from concurrent.futures import Future
+        from concurrent.futures.process import BrokenProcessPool
+
+        try:
+            return ex.submit(_score_chunk, study, key, pipeline, chunk, is_dry)
+        except BrokenProcessPool as exc:  # the pool broke before this chunk got in
+            fut = Future()
+            fut.set_exception(exc)
+            return fut
 
     is_interrupted = False
     prog, task = _progress(show_progress, n_trials, n_done)
