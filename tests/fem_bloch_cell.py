@@ -269,7 +269,8 @@ def build_cell(
     n_edge_refinements : int
         Local refinements (scikit-fem's conforming triangle refinement) of the elements near
         the two strip edges at the surface, where the uniform traction jumps and the
-        displacement gradient is log-singular; refinement radius halves at each pass.
+        displacement gradient is log-singular; refinement radius halves at each pass. Elements
+        touching the periodic sides are never marked (the sides must stay matched).
 
     Returns
     -------
@@ -285,7 +286,9 @@ def build_cell(
     for i in range(n_edge_refinements if has_bar else 0):
         centre = mesh.p[:, mesh.t].mean(axis=1)
         dist = np.hypot(centre[0][:, None] - edges[None, :], centre[1][:, None]).min(axis=1)
-        mesh = mesh.refined(np.flatnonzero(dist < 2.5 * h_surface / 2**i))
+        x_el = mesh.p[0, mesh.t]
+        touches_side = np.any((x_el < 1e-9 * spacing) | (x_el > spacing * (1 - 1e-9)), axis=0)
+        mesh = mesh.refined(np.flatnonzero((dist < 2.5 * h_surface / 2**i) & ~touches_side))
     elem = ElementVector(ElementTriP2())
     basis = Basis(mesh, elem, intorder=4)
 
