@@ -69,11 +69,18 @@ def step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h,
 @njit(cache=True)
 def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
                 ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h,
-                p_s_x, p_s_z, p_sxz_x, p_sxz_z, tz):  # pragma: no cover
-    """Advance the stresses by one step (Hooke's law); free surface with applied traction."""
+                p_s_x, p_s_z, p_sxz_x, p_sxz_z, tz, sel, tau):  # pragma: no cover
+    """Advance the stresses by one step (Hooke's law); free surface with applied traction.
+
+    With ``tau > 0`` the substrate is Kelvin-Voigt viscoelastic, sigma = C (e + tau de/dt):
+    ``sel`` (3, nx, nz) keeps the elastic parts of sxx, szz, sxz and the stresses are the
+    elastic part plus tau times the rate (increment / dt). With ``tau == 0`` ``sel`` is unused.
+    """
     nx, nz = sxx.shape
     l2m = lam + 2.0 * mu
     c = dt / h
+    is_visc = tau > 0.0
+    g = tau / dt
     # Surface row: plane-strain modulus with szz = 0 for sxx. The applied traction acts on the
     # vertical momentum only (its Poisson effect on sxx in the half cell above the first vz
     # node is left out: that term is not energy-consistent on this grid and made the box
@@ -88,15 +95,28 @@ def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
                 p_s_x[i, j] = bxi * p_s_x[i, j] + axi * dvx
                 dvx += p_s_x[i, j]
             if j == 0:
-                sxx[i, 0] += c * m_surf * dvx
+                d = c * m_surf * dvx
+                if is_visc:
+                    sel[0, i, 0] += d
+                    sxx[i, 0] = sel[0, i, 0] + g * d
+                else:
+                    sxx[i, 0] += d
                 szz[i, 0] = -tz[i]
                 continue
             dvz = vz[i, j] - vz[i, j - 1]
             if az_i[j] != 0.0:
                 p_s_z[i, j] = bz_i[j] * p_s_z[i, j] + az_i[j] * dvz
                 dvz += p_s_z[i, j]
-            sxx[i, j] += c * (l2m * dvx + lam * dvz)
-            szz[i, j] += c * (lam * dvx + l2m * dvz)
+            dx_ = c * (l2m * dvx + lam * dvz)
+            dz_ = c * (lam * dvx + l2m * dvz)
+            if is_visc:
+                sel[0, i, j] += dx_
+                sel[1, i, j] += dz_
+                sxx[i, j] = sel[0, i, j] + g * dx_
+                szz[i, j] = sel[1, i, j] + g * dz_
+            else:
+                sxx[i, j] += dx_
+                szz[i, j] += dz_
     for i in range(nx - 1):
         axh = ax_h[i]
         bxh = bx_h[i]
@@ -109,7 +129,12 @@ def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
             if axh != 0.0:
                 p_sxz_x[i, j] = bxh * p_sxz_x[i, j] + axh * dvzx
                 dvzx += p_sxz_x[i, j]
-            sxz[i, j] += c * mu * (dvxz + dvzx)
+            d = c * mu * (dvxz + dvzx)
+            if is_visc:
+                sel[2, i, j] += d
+                sxz[i, j] = sel[2, i, j] + g * d
+            else:
+                sxz[i, j] += d
 
 
 @njit(cache=True)
@@ -151,12 +176,12 @@ def step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc,
 def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
             ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi, src, i_source, tz,
             rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
-            fp_count, n_sub):  # pragma: no cover - compiled
+            fp_count, n_sub, sel, tau):  # pragma: no cover - compiled
     """Steps n0 .. n1-1 in one call (velocity, rods, surface traction, stress).
 
     ``src[n]`` is the source traction at time (n + 1) dt on surface node ``i_source``;
     ``psi`` stacks the eight CPML memory arrays; with ``is_uz`` the vertical displacement
-    ``uz`` is integrated as well (for snapshots).
+    ``uz`` is integrated as well (for snapshots); ``sel``/``tau``: see :func:`step_stress`.
     """
     for n in range(n0, n1):
         step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
@@ -167,7 +192,7 @@ def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
             step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
                       fp_count, dt, h, tz, n_sub)
         step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
-                    az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz)
+                    az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz, sel, tau)
         if is_uz:
             for i in range(uz.shape[0]):
                 for j in range(uz.shape[1]):
@@ -184,7 +209,7 @@ def warm_up() -> None:
     step_velocity(*f, 1.0, 1e-3, 1.0, cx[0], cx[1], cx[2], cx[3], cz[0], cz[1], cz[2], cz[3],
                   *p[:4])
     step_stress(*f, 1.0, 1.0, 1e-3, 1.0, cx[0], cx[1], cx[2], cx[3], cz[0], cz[1], cz[2], cz[3],
-                *p[4:], np.zeros(nx))
+                *p[4:], np.zeros(nx), np.zeros((3, nx, nz)), 0.0)
     step_rods(f[1], np.zeros((1, 3)), np.zeros((1, 2)), np.zeros((1, 2)), np.array([2]),
               np.array([1.0]), np.array([1.0]), np.array([0.0]), np.array([1.0]),
               np.array([0.0]), np.array([1]), np.array([1]), 1e-3, 1.0, np.zeros(nx), 1)
@@ -194,5 +219,5 @@ def warm_up() -> None:
                 1, np.zeros(nx), np.zeros((n_rods, 3)), np.zeros((n_rods, 2)),
                 np.zeros((n_rods, 2)), np.full(n_rods, 2), np.ones(n_rods), np.ones(n_rods),
                 np.zeros(n_rods), np.ones(n_rods), np.zeros(n_rods), np.ones(n_rods, np.int64),
-                np.ones(n_rods, np.int64), 1)
+                np.ones(n_rods, np.int64), 1, np.zeros((3, nx, nz)), 0.0)
 

@@ -148,8 +148,12 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     say(f"[bold]{study.meta.name}[/]: {layout.x.size} resonators, {ver.frequency.size} "
         f"frequencies, grid {grid.nx} x {grid.nz} (h = {grid.h * 1e3:.3g} mm), "
         f"{ver.info['n_steps']} steps in {ver.info['seconds']:.1f} s")
-    say(f"  energy balance within {100 * ver.info['max_balance_error']:.2f} % of the incident "
-        "power")
+    if ver.info["max_balance_error"] is not None:
+        say(f"  energy balance within {100 * ver.info['max_balance_error']:.2f} % of the "
+            "incident power")
+    else:
+        say("  lossy substrate: the box energy balance measures the absorbed power (no "
+            "separate balance check)")
     for c in CHANNELS:
         line = f"  band-mean {c:<24s} {float(np.mean(ver.fractions[c])):7.3f}"
         if ver.agreement is not None:
