@@ -17,7 +17,10 @@ power and follows one local Bloch branch cell by cell:
    power ``P_{j-1} - P_j`` is booked to the four radiation channels and ``absorbed`` in the
    proportions ``LocalModes.shares`` give for that cell (shares are renormalised to sum to 1;
    a cell that reports decay without any split books it to ``absorbed``). Its position is the
-   cell centre ``x_j + a_j / 2``; its angle is the cell's radiation angle.
+   cell centre ``x_j + a_j / 2``; its angle is the cell's radiation angle. A root reported
+   with K'' < 0 is a backward-wave solution (phase and energy travel in opposite directions,
+   e.g. near a Bragg gap edge): by the symmetry K -> 2 pi/a - K of the Bloch relation its
+   partner carrying power towards +x decays at |K''|, so the decay used is |K''|.
 4. **Turning point.** The first cell whose continued branch has no root (``nan``: local gap)
    turns the remaining power back as a surface wave at ``x`` of that cell. The returning wave
    crosses the same cells again in reverse order with the same decay, still leaking. Channels
@@ -227,8 +230,7 @@ def march(
     p_in = 1.0 - entry
 
     # 3. forward march: power lost in each cell, as a fraction of p_in
-    kim = np.where(in_path, kb.imag, 0.0)
-    np.maximum(kim, 0.0, out=kim)  # tiny negative K'' (interpolation noise) -> no decay
+    kim = np.abs(np.where(in_path, kb.imag, 0.0))  # K'' < 0: backward-wave root, see above
     tau = kim * (2.0 * a[:, None])  # power decay exponent per cell
     cum = np.cumsum(tau, axis=0)
     total_tau = cum[-1]
