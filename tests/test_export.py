@@ -113,3 +113,32 @@ def test_export_trial_from_storage(tmp_path):
     assert res["weighted_score"] == pytest.approx(out.best_score, abs=1e-12)
     with pytest.raises(search.SearchError, match="--trial"):
         export.export_trial(s, url, 999, tmp_path / "x", context=_ctx(s))
+
+
+@pytest.mark.slow
+def test_real_search_export_cli_round_trip(tmp_path):
+    """Command line on the bench example: a short search exports the best trial; `optgrade
+    export` re-exports it; the table read back and traced gives the exported fractions."""
+    from optgrade.cli import main
+    from optgrade.propagation import trace_study
+    from optgrade.study import load_study
+
+    study_path = REPO / "studies" / "bench_backward_shear.toml"
+    out = tmp_path / "run"
+    assert main(["search", str(study_path), "--out", str(out), "--trials", "6",
+                 "--jobs", "0", "--quiet"]) == 0
+    for name in ("table.csv", "layout.dxf", "sheet.png", "result.json", "report.txt"):
+        assert (out / name).is_file()
+    url = f"sqlite:///{out / 'study.db'}"
+    assert main(["export", str(study_path), "--storage", url, "--trial", "best",
+                 "--out", str(tmp_path / "again")]) == 0
+    a = json.loads((out / "result.json").read_text())
+    b = json.loads((tmp_path / "again" / "result.json").read_text())
+    assert a["weighted_score"] == b["weighted_score"] and a["trial"] == b["trial"]
+    s = load_study(study_path)
+    tr = trace_study(s, read_table(out / "table.csv"))
+    for c in CHANNELS:
+        np.testing.assert_allclose(np.array(a["performance"]["fractions"][c], dtype=float),
+                                   tr.fractions[c], atol=1e-12)
+    assert main(["export", str(study_path), "--storage", url, "--trial", "9999",
+                 "--out", str(tmp_path / "x")]) == 2

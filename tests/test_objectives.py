@@ -136,3 +136,32 @@ def test_new_goal_is_one_file_and_one_registration(tmp_path, monkeypatch):
     finally:
         objectives._REGISTRY.pop("spread", None)
         sys.modules.pop("spread_goal", None)
+
+
+@pytest.mark.slow
+def test_interpolated_robustness_matches_full_traces():
+    """Robustness from modes interpolated between h -/+ tol agrees with tracing every draw in
+    full (real surrogate, bench example) within 0.01 of the score."""
+    from pathlib import Path
+
+    from optgrade import profiles, search
+    from optgrade.study import load_study
+
+    s = load_study(Path(__file__).resolve().parent.parent / "studies" /
+                   "bench_backward_shear.toml")
+    ctx = search.make_context(s)
+    goal = objectives.get("robustness")
+    rng = np.random.default_rng(5)
+    for _ in range(2):
+        params = profiles.centre_params(s)
+        params.update({k: float(rng.uniform(0.1, 0.9)) for k in params if k != "n_resonators"})
+        lay = profiles.layout_from_params(s, params)
+        tr = ctx.trace_fn(lay)
+        fast = goal.evaluate(tr, lay, s, ctx)
+        try:
+            type(goal).is_interpolated = False
+            full = goal.evaluate(tr, lay, s, ctx)
+        finally:
+            type(goal).is_interpolated = True
+        assert fast.score == pytest.approx(full.score, abs=0.01)
+        assert fast.details["nominal"] == pytest.approx(full.details["nominal"], abs=1e-12)
