@@ -165,6 +165,53 @@ def upper_table() -> None:
               f"| {modes.bar_fraction[i, 1]:.3f} |")
 
 
+def wide_table() -> None:
+    """Print the wide-footprint cell (d = 2.5 mm, L = 4 mm, a = b = 3 mm): FE, solve_bands, and
+    the line model with the engine's default harmonic count and with 100 harmonics."""
+    from optgrade.bands import Cell, solve_bands
+    from optgrade.lattice import default_harmonics, lattice_sum
+    from optgrade.resonators import Rod, rod_compliance
+
+    d, height, a, b = 2.5e-3, 4e-3, 3e-3, 3e-3
+    sub, _ = _engine()
+    rod = Rod(ROD_E, ROD_RHO, d)
+    frac = np.array([0.3, 0.5, 0.6, 0.7, 0.8, 0.9, 0.95])
+    k = np.pi / a * frac
+    rows = {}
+    for label, mesh in (("test mesh", dict(h_surface=a / 8, h_deep=3e-3, n_edge_refinements=4)),
+                        ("fine mesh", dict(h_surface=a / 32, h_deep=1.5e-3,
+                                           n_edge_refinements=5))):
+        model = build_cell(density=RHO, cl=CL, ct=CT, spacing=a, depth=DEPTH, rod_modulus=ROD_E,
+                           rod_density=ROD_RHO, rod_diameter=d, rod_height=height,
+                           row_pitch=b, **mesh)
+        rows[label] = (solve_cell(model, k).lower, model.stiffness.shape[0])
+    f_fe = rows["test mesh"][0]
+    k_bands = solve_bands(Cell(sub, rod, height, a, b, 0.0), f_fe, model="line").branches[0].k
+
+    def f_line(kk, f0, n_harmonics):
+        def det(w):
+            return np.real(rod_compliance(w, rod, height, 0.0) - lattice_sum(
+                kk, w, sub, a, b, rod.radius, model="line", n_harmonics=n_harmonics))
+
+        w0 = 2 * np.pi * f0
+        return brentq(det, 0.9 * w0, min(1.1 * w0, sub.cr * kk * (1 - 1e-12)),
+                      xtol=1e-9) / (2 * np.pi)
+
+    m_default = default_harmonics(a, rod.radius, "line")
+    print(f"\n#### wide footprint: d = 2.5 mm, L = 4 mm, a = b = 3 mm "
+          f"(engine default harmonics M = {m_default})\n")
+    print(f"| K a/pi | f_FE test mesh, {rows['test mesh'][1]} DOFs (Hz) "
+          f"| f_FE fine mesh, {rows['fine mesh'][1]} DOFs (Hz) | f_line default M (Hz) "
+          "| f_line M = 100 (Hz) | K_bands/K - 1 (test mesh f) | K/kR - 1 |")
+    print("|---|---|---|---|---|---|---|")
+    cr = sub.cr
+    for i in range(frac.size):
+        f1, f2 = rows["test mesh"][0][i], rows["fine mesh"][0][i]
+        print(f"| {frac[i]:.2f} | {f1:.1f} | {f2:.1f} | {f_line(k[i], f1, None):.1f} "
+              f"| {f_line(k[i], f1, 100):.1f} | {k_bands[i].real / k[i] - 1:+.2e} "
+              f"| {k[i] * cr / (2 * np.pi * f1) - 1:+.3f} |")
+
+
 def convergence_table() -> None:
     """Print the FE mesh and depth study (markdown): lower-branch f at three K."""
     frac = np.array([0.4, 0.8, 1.0])
@@ -264,6 +311,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.accuracy:
         accuracy_table()
         upper_table()
+        wide_table()
     if args.convergence:
         convergence_table()
     if not (args.accuracy or args.convergence):
