@@ -124,11 +124,13 @@ def plot_local_dispersion(
     trace : Trace, optional
         If given, the turning points are marked.
     vmax : float
-        Upper end of the colour scale of K'/kR.
+        Largest upper end of the colour scale of K'/kR (the scale follows the data below it).
 
     The lower branch is shown where it exists, the upper one elsewhere; cells where neither
-    exists (local gap) are shaded grey. The zone-edge line is the frequency cR / (2 a) at which
-    a wave at the Rayleigh speed reaches K = pi / a in that cell.
+    exists (local gap) are shaded grey; dotted hatching marks where the local mode loses more
+    than K'' a = 1e-3 per cell to bulk radiation (material damping excluded). The zone-edge
+    line is the frequency cR / (2 a) at which a wave at the Rayleigh speed reaches K = pi / a
+    in that cell.
     """
     fs, funit = frequency_unit(float(np.max(freq)))
     s, unit = length_unit(layout.length)
@@ -141,15 +143,29 @@ def plot_local_dispersion(
     edges_f = np.concatenate(([f[0] - (f[1] - f[0]) / 2 if f.size > 1 else f[0] * 0.99],
                               (f[1:] + f[:-1]) / 2,
                               [f[-1] + (f[-1] - f[-2]) / 2 if f.size > 1 else f[0] * 1.01]))
+    finite = slowness[np.isfinite(slowness)]
+    top = min(vmax, max(1.2, float(np.percentile(finite, 99)))) if finite.size else vmax
+    bottom = max(0.0, min(0.9, float(np.percentile(finite, 1)))) if finite.size else 0.0
     mesh = ax.pcolormesh(edges_x, edges_f, np.ma.masked_invalid(slowness.T), cmap="viridis",
-                         vmin=0.0, vmax=vmax, shading="flat", rasterized=True)
+                         vmin=bottom, vmax=top, shading="flat", rasterized=True)
+    # where the local mode radiates into the bulk: radiated decay over one cell > 1e-3
+    shares = np.asarray(modes.shares)
+    rad_share = np.where(np.isfinite(k[0]), shares[0, :4].sum(axis=0), shares[1, :4].sum(axis=0))
+    rad_a = np.abs(k_show.imag) * rad_share * layout.spacing[:, None]
+    is_leaky = np.isfinite(rad_a) & (rad_a > 1e-3)
+    if is_leaky.any() and (~is_leaky).any():
+        xs = np.concatenate(([edges_x[0]], layout.cell_centre / s, [edges_x[-1]]))
+        grid = np.concatenate((is_leaky[:1], is_leaky, is_leaky[-1:])).T.astype(float)
+        ax.contourf(xs, f, grid, levels=[0.5, 1.5], colors="none", hatches=["...."])
     is_gap = ~np.isfinite(k[0]) & ~np.isfinite(k[1])
     ax.pcolormesh(edges_x, edges_f, np.ma.masked_where(~is_gap.T, np.ones(is_gap.T.shape)),
                   cmap=ListedColormap(["#c8c8c8"]), shading="flat", rasterized=True)
     cb = ax.figure.colorbar(mesh, ax=ax, pad=0.01)
     cb.set_label("local slowness K'/kR (1 = Rayleigh speed)")
     xc = layout.cell_centre / s
-    handles = [Patch(color="#c8c8c8", label="local gap (no root)")]
+    handles = [Patch(color="#c8c8c8", label="local gap (no root)"),
+               Patch(facecolor="none", edgecolor="k", hatch="....",
+                     label="radiating: K'' a > 1e-3 per cell into bulk waves")]
     if rod_resonance is not None:
         (line,) = ax.plot(xc, np.asarray(rod_resonance) / fs, color="#d62828", ls="--",
                           lw=1.6, label="rod resonance")

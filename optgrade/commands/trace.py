@@ -69,6 +69,7 @@ def _write_json_atomic(path: Path, payload: dict) -> None:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             json.dump(payload, fh, indent=1, allow_nan=False)
             fh.write("\n")
+        os.chmod(tmp, 0o644)
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
@@ -81,6 +82,7 @@ def _save_atomic(fig: Any, path: Path) -> None:
     os.close(fd)
     try:
         fig.savefig(tmp, dpi=130)
+        os.chmod(tmp, 0o644)
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
