@@ -51,7 +51,7 @@ __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "
 #: bump when the table layout or the lattice-sum numerics change
 FORMAT_VERSION = 2
 #: largest ratio between neighbouring spacing levels, minus one
-LEVEL_STEP = 0.04
+LEVEL_STEP = 0.15
 #: table resolution: points along kappa in [0, 1] and along w
 N_KAPPA = 49
 N_FREQ = 97

@@ -69,6 +69,7 @@ def _grid(study, n_f=24):
     return heights, spacings, masses, freq
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("which", ["bench", "site"])
 def test_surrogate_matches_direct_solve(which, bench_sur, site_sur):
     """|dK'|/K' < 1e-3 and K'' within 5 % where K''/K' > 1e-3 (issue 3 accuracy targets),
