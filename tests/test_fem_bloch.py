@@ -105,8 +105,10 @@ def test_surface_mode_independent_of_depth(fe_rod):
     deep = solve_cell(_cell(0.0, depth=2 * DEPTH), K_ROD[[0, 3, 6]])
     np.testing.assert_allclose(deep.lower, fe_rod.lower[[0, 3, 6]], rtol=1e-5)
     assert np.all(fe_rod.surface_fraction[:, 0] > 0.95)
-    # every lower-branch point lies below the shear line (bound) and below the rod resonance
+    # every lower-branch point lies below the shear line (bound) and below the rod's
+    # quarter-wave resonance c_r / (4 L) (thin-rod theory, physics.md section 4)
     assert np.all(2 * np.pi * fe_rod.lower < CT * K_ROD)
+    assert np.all(fe_rod.lower < np.sqrt(ROD_E / ROD_RHO) / (4 * HEIGHT))
 
 
 @pytest.mark.slow
