@@ -685,13 +685,16 @@ def _ps_side(line: dict, medium: Medium) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _fk_split(div: np.ndarray, curl: np.ndarray, freq: np.ndarray, medium: Medium,
-              h: float) -> tuple[np.ndarray, np.ndarray]:
-    """Shares of [forward_shear, forward_compressional, backward_shear, backward_compressional]
-    and power-weighted angles (deg) of a downgoing field on a horizontal line.
+              h: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Shares of [forward_shear, forward_compressional, backward_shear, backward_compressional],
+    power-weighted angles (deg) and mean crossing positions (m from the line's first node) of
+    a downgoing field on a horizontal line.
 
     Wavenumber transform along x (zero-padded, Hann-tapered); plane-wave flux through the line
     per wavenumber: rho w^2 c k_z |D|^2 / (2 k^3) with D the transformed divergence (P) or
-    rotation (S) and k = kL or kT (Achenbach 1973; from memory).
+    rotation (S) and k = kL or kT (Achenbach 1973; from memory). Crossing positions: each
+    channel's part of the spectrum (sign of k_x, propagating k_x only; untapered) transformed
+    back to x, weighted by its squared magnitude.
     """
     n = div.shape[-1]
     n_pad = 1 << int(math.ceil(math.log2(4 * n)))
@@ -720,7 +723,17 @@ def _fk_split(div: np.ndarray, curl: np.ndarray, freq: np.ndarray, medium: Mediu
                                  (angles[0], kx < 0), (angles[1], kx < 0)):
             wgt = np.where(sel, flux, 0.0)
             ang_out.append(np.sum(wgt * ang, -1) / np.sum(wgt, -1))
-    return shares, np.array(ang_out)
+    x = np.arange(n) * h
+    x_out = []
+    d_raw = np.fft.fft(div, n_pad, axis=-1)
+    r_raw = np.fft.fft(curl, n_pad, axis=-1)
+    for c, spec, sel in ((medium.ct, r_raw, kx > 0), (medium.cl, d_raw, kx > 0),
+                         (medium.ct, r_raw, kx < 0), (medium.cl, d_raw, kx < 0)):
+        keep = sel[None, :] & (np.abs(kx)[None, :] < w / c)
+        part = np.abs(np.fft.ifft(np.where(keep, spec, 0.0), axis=-1)[:, :n]) ** 2
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x_out.append(np.sum(part * x, -1) / np.sum(part, -1))
+    return shares, np.array(ang_out), np.array(x_out)
 
 
 @dataclass
@@ -742,11 +755,14 @@ class ChannelSplit:
 
 
 def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
-                   layout_length: float, spacing: float | None = None) -> ChannelSplit:
+                   layout_length: float, rod_x: np.ndarray | None = None) -> ChannelSplit:
     """Split the outgoing power of ``run`` into the seven channels, normalised by ``ref``.
 
     See the module docstring for the definitions. ``layout_length`` (m) places the
     transmitted channel; positions are measured along the row from its first resonator.
+    ``rod_x`` (m, the rods' positions) locates where the surface wave is stopped: the last rod
+    whose base force spectrum is at least 10 % (in power) of the largest one; without it the
+    drop of the surface motion below 10 % of the reference is used.
     """
     h = grid.h
     freq = run.freq
@@ -786,7 +802,10 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     bot = {k: v[:, :, 0] for k, v in fields["bottom"][2].items()}
     pz = -np.real(bot["sxz"] * np.conj(bot["vx"]) + bot["szz"] * np.conj(bot["vz"]))
     bottom = np.sum(pz * _trap(pz.shape[-1]), -1) * h / p_inc
-    shares, angles = _fk_split(bot["div"], bot["curl"], freq, medium, h)
+    shares, angles, x_cross = _fk_split(bot["div"], bot["curl"], freq, medium, h)
+    # back along each channel's mean ray to the surface: where the row sent it
+    depth = grid.j_bottom * h
+    x_origin = (grid.i_left * h - grid.x_array) + x_cross - depth * np.tan(np.radians(angles))
 
     if run.rod_c.shape[1]:
         absorbed = np.sum(np.real(-run.rod_c * np.conj(run.rod_v)), axis=1) / p_inc
@@ -856,20 +875,25 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     pz_r = -np.real(ref_f["sxz"][:, :, js] * np.conj(ref_f["vx"][:, :, js])
                     + ref_f["szz"][:, :, js] * np.conj(ref_f["vz"][:, :, js]))
     down = np.where(in_row, np.clip(pz_t - pz_r, 0.0, None), 0.0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        x_conv = np.sum(down * x_nodes, -1) / np.sum(down, -1)
     ratio = np.abs(tot["vz"][:, :, 0]) ** 2 / np.abs(ref_f["vz"][:, :, 0]) ** 2
-    x_stop = _stop_position(ratio, x_nodes, in_row, cr / freq, h)
+    if rod_x is not None and run.rod_c.shape[1] == np.size(rod_x):
+        power = np.abs(run.rod_c) ** 2
+        strong = power >= 0.1 * power.max(axis=1, keepdims=True)
+        last = strong.shape[1] - 1 - np.argmax(strong[:, ::-1], axis=1)
+        x_stop = np.asarray(rod_x, float)[last]
+    else:
+        x_stop = _stop_position(ratio, x_nodes, in_row, cr / freq, h)
 
     position = {c: np.full(freq.size, np.nan) for c in CHANNELS}
     angle = {c: np.full(freq.size, np.nan) for c in CHANNELS}
     for i, c in enumerate(BULK):
-        position[c] = np.where(fractions[c] > 0.01, x_conv, np.nan)
+        position[c] = np.where(fractions[c] > 0.01,
+                               np.clip(x_origin[i], 0.0, layout_length), np.nan)
         angle[c] = np.where(fractions[c] > 0.01, angles[i], np.nan)
     position["transmitted_surface"] = np.where(fractions["transmitted_surface"] > 0.01,
                                                layout_length, np.nan)
     position["reflected_surface"] = np.where(fractions["reflected_surface"] > 0.01,
-                                             0.5 * x_stop, np.nan)
+                                             x_stop, np.nan)
     angle["transmitted_surface"] = np.where(fractions["transmitted_surface"] > 0.01, 90.0,
                                             np.nan)
     angle["reflected_surface"] = np.where(fractions["reflected_surface"] > 0.01, -90.0, np.nan)
@@ -988,7 +1012,7 @@ def run_pair(medium: Medium, rods: RodRow, band: tuple[float, float], freq: np.n
     run = simulate(medium, grid, band, freq, rods, n_snapshots=n_snapshots,
                    progress=cb("with resonators"))
     ref = simulate(medium, grid, band, freq, None, progress=cb("reference (bare)"))
-    split = split_channels(run, ref, medium, grid, length)
+    split = split_channels(run, ref, medium, grid, length, rods.x)
     return grid, run, ref, split
 
 
