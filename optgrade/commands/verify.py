@@ -132,7 +132,9 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     plt.close(fig)
 
     run_rec, grid = ver.run, ver.grid
-    fig = plt.figure(figsize=(10, 9), layout="constrained")
+    aspect = (grid.nz * grid.h + 1.15 * float(np.max(rods.height))) / (grid.nx * grid.h)
+    fig = plt.figure(figsize=(11, min(14.0, 1.0 + 4 * (10.5 * aspect + 0.6))),
+                     layout="constrained")
     pf.plot_snapshots(fig, run_rec.snapshots, run_rec.snapshot_times, grid, rods)
     _save_atomic(fig, out / "snapshots.png")
     plt.close(fig)
