@@ -48,7 +48,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
-from optgrade.halfspace import Substrate
+from optgrade.halfspace import Substrate, rayleigh_function
 from optgrade.lattice import MODELS, _split_shares, harmonic_term, lattice_sum, main_orders
 from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
 
@@ -75,6 +75,7 @@ CHANNELS = (
 _N_SCAN = 40
 _MAX_ILLINOIS = 60
 _N_NEWTON = 4
+_N_LOSS_STAGES = 1  # continuation stages in the substrate loss (1: the pole-free Newton suffices)
 
 
 @dataclass(frozen=True)
@@ -155,6 +156,22 @@ def _main_derivative(K, w, a, substrate, b, r, model, n_main):
 
 
 RestFn = Callable[..., tuple[np.ndarray, np.ndarray]]
+
+
+def _pole_free(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
+    """D(K) R_0(K): dispersion function times the m = 0 Rayleigh function (no m = 0 pole)."""
+    cl, ct = sub.complex_speeds
+    d = iz - main_terms(K, w, a, sub, b, r, model, n_main) - (r0 + (K - k_re) * dr0)
+    return d * rayleigh_function(K, w, cl, ct)
+
+
+def _newton_step(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
+    h = 1e-6 * np.pi / a
+    args = (k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main)
+    f0 = _pole_free(K, *args)
+    f1 = _pole_free(K + h, *args)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return f0 / ((f1 - f0) / h)
 
 
 def _pole_bounds(kr, g, n_main, is_homog):
@@ -312,14 +329,18 @@ def solve_points(
         is_real = np.abs(d0.imag) <= 1e-14 * np.abs(iz_s)
         kk = k_re.astype(complex)
         step = np.zeros(sel.size, dtype=complex)
-        for _ in range(_N_NEWTON):
-            m = main_terms(kk, w_s, a_s, substrate, b, r, model, n_main)
-            dm = _main_derivative(kk, w_s, a_s, substrate, b, r, model, n_main)
-            d = iz_s - m - (r0 + (kk - k_re) * dr0)
-            dd = -(dm + dr0)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                step = np.where(is_real, 0.0, d / dd)
-            kk = kk - step
+        # substrate loss moves the Rayleigh pole off the axis; Newton on the pole-free D R_0
+        # reaches the lossy root directly (optional continuation stages in the loss factor)
+        n_stages = _N_LOSS_STAGES if substrate.loss_factor > 0 else 1
+        for stage in range(1, n_stages + 1):
+            eta = substrate.loss_factor * stage / n_stages
+            sub_s = Substrate(substrate.density, substrate.cl, substrate.ct, eta)
+            for _ in range(_N_NEWTON):
+                # Newton on D(K) R_0(K): the Rayleigh function of the m = 0 harmonic removes
+                # the nearby (loss-displaced) Rayleigh pole, widening Newton's basin
+                step = _newton_step(kk, k_re, w_s, a_s, iz_s, r0, dr0, sub_s, b, r, model, n_main)
+                step = np.where(is_real, 0.0, step)
+                kk = kk - step
         ok = np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
         # Newton must not cross a branch point of a radiating main harmonic
         kt_s, kl_s = w_s / substrate.ct, w_s / substrate.cl
@@ -330,6 +351,8 @@ def solve_points(
         ok &= kk.imag > -1e-9 * np.abs(kk)
         kk = np.where(ok, kk, k_first)
         fo = ~ok
+        # a first-order value with K'' < 0 (growth) is not a mode we can follow
+        kk = np.where(fo & (kk.imag < 0), np.nan, kk)
         # drop overdamped roots
         keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real)
         kk = np.where(keep, kk, np.nan)
@@ -522,7 +545,13 @@ def _gaps(freq, branches):
     return tuple(gaps)
 
 
-def solve_bands(cell: Cell, freq: ArrayLike, model: str = "lattice") -> Bands:
+def solve_bands(
+    cell: Cell,
+    freq: ArrayLike,
+    model: str = "lattice",
+    progress: Callable[[int, int], None] | None = None,
+    chunk: int = 32,
+) -> Bands:
     """All branches of one cell over a frequency grid, by direct root solves.
 
     Parameters
@@ -531,11 +560,15 @@ def solve_bands(cell: Cell, freq: ArrayLike, model: str = "lattice") -> Bands:
     freq : array_like
         Frequencies (Hz), increasing.
     model : {"lattice", "line", "homogenised"}
+    progress : callable, optional
+        Called as ``progress(done, total)`` after each chunk of frequencies.
+    chunk : int
+        Frequencies solved per chunk.
 
     Returns
     -------
     Bands
-        Branch 0 (lower, surface) and branch 1 (upper), gaps, rod resonances in the band and
+        Branch 0 (lower, surface) and branch 1 (upper), gaps, rod resonances and
         model-validity warnings.
     """
     if model not in MODELS:
@@ -546,8 +579,14 @@ def solve_bands(cell: Cell, freq: ArrayLike, model: str = "lattice") -> Bands:
     iz = rod_compliance(w, cell.rod, cell.height, cell.head_mass)
     sub, b, r = cell.substrate, cell.row_pitch, cell.rod.radius
     n_main = main_orders(float(cell.spacing), float(w.max()) / sub.cr, model)
-    rest = _direct_rest(w, a, sub, b, r, model, n_main)
-    res = solve_points(w, iz, a, sub, b, r, model, rest, n_main)
+    parts = []
+    for start in range(0, freq.size, max(1, int(chunk))):
+        sl = slice(start, start + max(1, int(chunk)))
+        rest = _direct_rest(w[sl], a[sl], sub, b, r, model, n_main)
+        parts.append(solve_points(w[sl], iz[sl], a[sl], sub, b, r, model, rest, n_main))
+        if progress is not None:
+            progress(min(start + int(chunk), freq.size), freq.size)
+    res = {key: np.concatenate([p[key] for p in parts], axis=-1) for key in parts[0]}
     names = ("lower", "upper")
     branches = tuple(
         Branch(

@@ -309,6 +309,7 @@ class Surrogate:
             complex(ctc),
             complex(s.mu),
             complex(s.complex_mu),
+            float(s.loss_factor),
             self.row_pitch,
             self.rod.radius,
             {"lattice": 0, "line": 1, "homogenised": 2}[self.model],
@@ -371,6 +372,7 @@ def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> N
 N_SCAN = 16
 MAX_ILLINOIS = 60
 N_NEWTON = 4
+N_LOSS_STAGES = 1
 
 # Taylor coefficients of 2 J1(x)/x in x^2 (|x| <= 4 is all the two main terms need)
 _COEF = np.array(
@@ -505,6 +507,21 @@ def _split_shear(xi2, kl2, kt2):
 
 
 @njit(cache=True)
+def _rayleigh(q, kl2, kt2):
+    alpha = _vert(q, kl2)
+    beta = _vert(q, kt2)
+    a = (2.0 * q - kt2) ** 2
+    b = 4.0 * q * alpha * beta
+    return a - b
+
+
+@njit(cache=True)
+def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
+    d = iz - _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main) - (r0 + (K - k_re) * dr0)
+    return d * _rayleigh(K * K, kl2, kt2)
+
+
+@njit(cache=True)
 def _h(
     K,
     a,
@@ -553,6 +570,7 @@ def solve_grid(
     ctc,
     mu,
     muc,
+    eta_sub,
     b,
     radius,
     model,
@@ -724,17 +742,51 @@ def solve_grid(
                 n_newton = N_NEWTON
                 if abs(d0.imag) <= 1e-14 * abs(iz):
                     n_newton = 0  # lossless bound root: already exact on the real axis
-                for _ in range(n_newton):
-                    m = _main(kk, a, b, radius, model, kl2, kt2, muc, coef, n_main)
-                    dm = (
-                        _main(kk + hstep, a, b, radius, model, kl2, kt2, muc, coef, n_main) - m
-                    ) / hstep
-                    d = iz - m - (r0 + (kk - k_re) * dr0)
-                    dd = -(dm + dr0)
-                    step = d / dd
-                    kk = kk - step
-                    if abs(step) <= 1e-10 * abs(kk):
-                        break
+                n_stages = N_LOSS_STAGES if eta_sub > 0.0 else 1
+                for stage in range(1, n_stages + 1):
+                    eta_s = eta_sub * stage / n_stages
+                    fac = cmath.sqrt(1.0 - 1j * eta_s)
+                    kl2_s = (w / (cl * fac)) ** 2
+                    kt2_s = (w / (ct * fac)) ** 2
+                    mu_s = mu * (1.0 - 1j * eta_s)
+                    for _ in range(n_newton):
+                        # Newton on D(K) R_0(K) (pole-free, see optgrade.bands)
+                        f0 = _pole_free(
+                            kk,
+                            k_re,
+                            a,
+                            b,
+                            radius,
+                            model,
+                            kl2_s,
+                            kt2_s,
+                            mu_s,
+                            coef,
+                            n_main,
+                            iz,
+                            r0,
+                            dr0,
+                        )
+                        f1 = _pole_free(
+                            kk + hstep,
+                            k_re,
+                            a,
+                            b,
+                            radius,
+                            model,
+                            kl2_s,
+                            kt2_s,
+                            mu_s,
+                            coef,
+                            n_main,
+                            iz,
+                            r0,
+                            dr0,
+                        )
+                        step = f0 / ((f1 - f0) / hstep)
+                        kk = kk - step
+                        if abs(step) <= 1e-10 * abs(kk):
+                            break
                 ok = (
                     math.isfinite(kk.real)
                     and math.isfinite(kk.imag)
@@ -751,6 +803,8 @@ def solve_grid(
                 if not ok:
                     kk = k_first
                     fo = True
+                    if kk.imag < 0.0:
+                        continue
                 if not (math.isfinite(kk.real) and math.isfinite(kk.imag)):
                     continue
                 if abs(kk.imag) > kk.real:

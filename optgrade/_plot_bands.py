@@ -1,0 +1,181 @@
+"""Band-diagram figure of one cell (used by `optgrade bands`)."""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from optgrade.bands import Bands
+
+__all__ = ["plot_bands"]
+
+_COLORS = ("#1f4e9c", "#c0392b")
+
+
+def _freq_unit(fmax: float) -> tuple[float, str]:
+    if fmax >= 1e6:
+        return 1e-6, "MHz"
+    if fmax >= 1e3:
+        return 1e-3, "kHz"
+    return 1.0, "Hz"
+
+
+def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) -> Path:
+    """Draw the band diagram and the attenuation of each branch; write a PNG atomically.
+
+    Left: frequency against Bloch wavenumber K' (extended zone 0..2 pi/a), with the shear,
+    compressional and Rayleigh lines, their folded images 2 pi/a - k, the zone edge pi/a, the
+    rod resonances; bound parts drawn solid, leaky parts as dots coloured by K''/K'.
+    Right: attenuation K'' a (nepers per cell, log scale) of the leaky or lossy parts.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from matplotlib.lines import Line2D
+
+    cell = bands.cell
+    sub = cell.substrate
+    a = cell.spacing
+    f = bands.freq
+    scale, unit = _freq_unit(float(f.max()))
+    fs = f * scale
+    w = 2 * np.pi * f
+    g = 2 * np.pi / a
+    fig, (ax, ax2) = plt.subplots(
+        1, 2, figsize=(11, 7), gridspec_kw={"width_ratios": [2.2, 1]}, constrained_layout=True
+    )
+    # light lines and folded images
+    kmax = g
+    styles = [
+        (sub.ct, "shear  $k_T$", "#555555", "-"),
+        (sub.cl, "compressional  $k_L$", "#999999", "-"),
+        (sub.cr, "Rayleigh  $k_R$", "#2e8b57", "--"),
+    ]
+    for c, label, col, ls in styles:
+        k = w / c
+        ax.plot(k, fs, color=col, ls=ls, lw=1.0, label=label)
+        if c != sub.cr:
+            ax.plot(g - k, fs, color=col, ls=":", lw=1.0)
+        else:
+            ax.plot(g - k, fs, color=col, ls=":", lw=0.8)
+    # radiating regions: forward (K' < kT) and backward (2 pi/a - K' < kT) shaded
+    kt = w / sub.ct
+    ax.fill_betweenx(fs, 0, np.minimum(kt, kmax), color="#f2d7a6", alpha=0.35, lw=0)
+    ax.fill_betweenx(fs, np.maximum(g - kt, 0), kmax, color="#cfe0f3", alpha=0.45, lw=0)
+    ax.axvline(np.pi / a, color="k", lw=0.8, ls="-.")
+    ax.text(np.pi / a, fs.max(), r" $\pi/a$", va="top", ha="left", fontsize=9)
+    for i, fr in enumerate(bands.resonances):
+        if f.min() <= fr <= f.max():
+            ax.axhline(fr * scale, color="#7b3fa0", lw=0.9, ls="--")
+            ax.text(
+                kmax * 0.01,
+                fr * scale,
+                f"rod resonance {i + 1}",
+                color="#7b3fa0",
+                ha="left",
+                va="bottom",
+                fontsize=8,
+            )
+    for lo, hi in bands.gaps:
+        ax2.axhspan(lo * scale, hi * scale, color="#eeeeee", lw=0)
+        ax.axhspan(lo * scale, hi * scale, color="#eeeeee", alpha=0.6, lw=0)
+    sc = None
+    for br, col in zip(bands.branches, _COLORS, strict=False):
+        k = br.k
+        kp = k.real
+        finite = np.isfinite(k)
+        bound = finite & ~br.is_leaky
+        bound_line = np.where(bound, kp, np.nan)
+        ax.plot(bound_line, fs, color=col, lw=2.2)
+        leaky = finite & br.is_leaky
+        if leaky.any():
+            ratio = np.clip(k.imag[leaky] / kp[leaky], 1e-6, 1.0)
+            sc = ax.scatter(
+                kp[leaky],
+                fs[leaky],
+                c=np.log10(ratio),
+                cmap="viridis_r",
+                vmin=-6,
+                vmax=0,
+                s=14,
+                edgecolors=col,
+                linewidths=0.6,
+                zorder=3,
+            )
+            fo = leaky & br.is_first_order
+            if fo.any():
+                ax.scatter(kp[fo], fs[fo], marker="x", color="k", s=18, lw=0.8, zorder=4)
+        att = np.where(finite & (k.imag > 0), k.imag * a, np.nan)
+        ax2.plot(att, fs, color=col, lw=1.6, marker=".", ms=3)
+    ax.set_xlim(0, kmax)
+    ax.set_ylim(fs.min(), fs.max())
+    ax.set_xlabel("Bloch wavenumber K' (rad/m), extended zone")
+    ax.set_ylabel(f"frequency ({unit})")
+    handles, labels = ax.get_legend_handles_labels()
+    handles += [
+        Line2D([], [], color=_COLORS[0], lw=2.2, label="lower branch, bound"),
+        Line2D([], [], color=_COLORS[1], lw=2.2, label="upper branch, bound"),
+        Line2D(
+            [],
+            [],
+            color="w",
+            marker="o",
+            markeredgecolor="k",
+            markerfacecolor="#55a",
+            label="leaky (colour: K''/K')",
+        ),
+        Line2D([], [], color="k", ls=":", lw=1, label=r"folded lines $2\pi/a - k$"),
+        Line2D([], [], color="k", marker="x", ls="", label="first-order K'' (branch point)"),
+    ]
+    ax.legend(
+        handles=handles,
+        loc="upper left",
+        bbox_to_anchor=(0.0, -0.09),
+        ncol=4,
+        fontsize=8,
+        frameon=False,
+    )
+    ax.text(
+        0.01,
+        0.99,
+        "shaded: forward radiation $K'<k_T$ (orange), backward radiation\n"
+        r"$2\pi/a-K'<k_T$ (blue), both (overlap); grey bands: no branch (gap)",
+        transform=ax.transAxes,
+        va="top",
+        fontsize=8,
+        bbox=dict(facecolor="white", alpha=0.8, lw=0),
+    )
+    if sc is not None:
+        cb = fig.colorbar(sc, ax=ax, shrink=0.6, pad=0.01)
+        cb.set_label("log10(K''/K')")
+    ax2.set_xscale("log")
+    ax2.set_xlabel("attenuation K'' a (Np per cell)")
+    ax2.set_ylim(fs.min(), fs.max())
+    ax2.grid(True, which="both", alpha=0.3)
+    ax2.set_yticklabels([])
+    rod = cell.rod
+    head = f", head mass {cell.head_mass:.4g} kg" if cell.head_mass else ""
+    fig.suptitle(
+        title
+        or (
+            f"{bands.model} model: rod L = {cell.height:.4g} m, d = {rod.diameter:.4g} m{head}, "
+            f"spacing a = {a:.4g} m, row pitch b = {cell.row_pitch:.4g} m"
+        ),
+        fontsize=11,
+    )
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.stem, suffix=".png")
+    os.close(fd)
+    try:
+        fig.savefig(tmp, dpi=130)
+        os.replace(tmp, path)
+    finally:
+        plt.close(fig)
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return path
