@@ -39,7 +39,7 @@ def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
             ax.plot(lattice.frequency / 1e3, lattice.fractions[c], ":", color="C2", lw=1.3,
                     label="surrogate, 3-D lattice")
         title = LABELS[c]
-        if ver.agreement is not None:
+        if ver.agreement is not None and ver.agreement[c]["mean_abs_difference"] is not None:
             title += f"\nmean |diff| {ver.agreement[c]['mean_abs_difference']:.3f}"
         ax.set_title(title, fontsize=9)
         ax.set_ylim(-0.02, 1.02)

@@ -161,7 +161,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
         if ver.agreement is not None:
             a = ver.agreement[c]
             line += f"   surrogate {float(np.mean(ver.surrogate.fractions[c])):7.3f}"
-            line += f"   mean |diff| {a['mean_abs_difference']:.3f}"
+            if a["mean_abs_difference"] is not None:
+                line += f"   mean |diff| {a['mean_abs_difference']:.3f}"
             if a["position_difference_cells"] is not None:
                 line += f"   position diff {a['position_difference_cells']:.1f} cells"
         say(line)
