@@ -23,20 +23,33 @@ LABELS = {
 }
 
 
+def _freq_unit(f_max: float) -> tuple[float, str]:
+    return (1e3, "kHz") if f_max >= 2e3 else (1.0, "Hz")
+
+
+def _len_unit(span: float) -> tuple[float, str]:
+    return (1e3, "mm") if span < 3.0 else (1.0, "m")
+
+
+def _time_label(t: float) -> str:
+    return f"{1e6 * t:.1f} us" if t < 0.01 else f"{1e3 * t:.1f} ms"
+
+
 def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
     """Channel fractions against frequency: full-wave (solid) and the surrogate's 2-D line
     model (dashed), and the 3-D lattice prediction (dotted) when given; last panel: energy
     balance and direct-flux closure of the full-wave run."""
     axes = fig.subplots(2, 4, sharex=True)
-    f_khz = ver.frequency / 1e3
+    scale, unit = _freq_unit(float(np.max(ver.frequency)))
+    f_khz = ver.frequency / scale
     sur = ver.surrogate
     for ax, c in zip(axes.flat, CHANNELS, strict=False):
         ax.plot(f_khz, ver.fractions[c], "-", color="C0", lw=1.6, label="full-wave 2-D")
         if sur is not None:
-            ax.plot(sur.frequency / 1e3, sur.fractions[c], "--", color="C1", lw=1.3,
+            ax.plot(sur.frequency / scale, sur.fractions[c], "--", color="C1", lw=1.3,
                     label="surrogate, line model")
         if lattice is not None:
-            ax.plot(lattice.frequency / 1e3, lattice.fractions[c], ":", color="C2", lw=1.3,
+            ax.plot(lattice.frequency / scale, lattice.fractions[c], ":", color="C2", lw=1.3,
                     label="surrogate, 3-D lattice")
         title = LABELS[c]
         if ver.agreement is not None and ver.agreement[c]["mean_abs_difference"] is not None:
@@ -54,35 +67,37 @@ def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
     ax.legend(fontsize=7, loc="best")
     axes.flat[0].legend(fontsize=7, loc="best")
     for ax in axes[1]:
-        ax.set_xlabel("frequency (kHz)")
+        ax.set_xlabel(f"frequency ({unit})")
     for ax in axes[:, 0]:
         ax.set_ylabel("fraction of incident power")
 
 
 def _extent(grid: Any) -> list[float]:
-    """Image extent in mm, x measured from the first resonator, depth down."""
+    """Image extent in mm (m for site-scale grids), x from the first resonator, depth down."""
+    u = _len_unit(grid.nx * grid.h)[0]
     x0 = -grid.x_array
-    return [1e3 * x0, 1e3 * (x0 + (grid.nx - 1) * grid.h), 1e3 * (grid.nz - 1) * grid.h, 0.0]
+    return [u * x0, u * (x0 + (grid.nx - 1) * grid.h), u * (grid.nz - 1) * grid.h, 0.0]
 
 
 def _draw_frame(ax: Any, field: np.ndarray, grid: Any, rods: Any, vmax: float) -> Any:
     im = ax.imshow(field.T, extent=_extent(grid), cmap="RdBu_r", vmin=-vmax, vmax=vmax,
                    aspect="equal", interpolation="nearest")
+    u = _len_unit(grid.nx * grid.h)[0]
     if rods is not None:
-        xs = 1e3 * rods.x
-        ax.vlines(xs, -1e3 * rods.height, 0.0, color="k", lw=0.8)
-    p = grid.n_pml * grid.h * 1e3
+        xs = u * rods.x
+        ax.vlines(xs, -u * rods.height, 0.0, color="k", lw=0.8)
+    p = grid.n_pml * grid.h * u
     ext = _extent(grid)
     ax.axvspan(ext[0], ext[0] + p, color="0.85", alpha=0.6, lw=0)
     ax.axvspan(ext[1] - p, ext[1], color="0.85", alpha=0.6, lw=0)
     ax.axhspan(ext[2] - p, ext[2], color="0.85", alpha=0.6, lw=0)
-    xl = 1e3 * (grid.i_left * grid.h - grid.x_array)
-    xr = 1e3 * (grid.i_right * grid.h - grid.x_array)
-    zb = 1e3 * grid.j_bottom * grid.h
+    xl = u * (grid.i_left * grid.h - grid.x_array)
+    xr = u * (grid.i_right * grid.h - grid.x_array)
+    zb = u * grid.j_bottom * grid.h
     ax.plot([xl, xl, xr, xr], [0, zb, zb, 0], color="0.3", lw=0.7, ls="--")
-    xs = 1e3 * (grid.i_source * grid.h - grid.x_array)
+    xs = u * (grid.i_source * grid.h - grid.x_array)
     ax.plot([xs], [0], marker="v", color="g", ms=6)
-    top = -1e3 * float(np.max(rods.height)) * 1.15 if rods is not None else -1.0
+    top = -u * float(np.max(rods.height)) * 1.15 if rods is not None else -1.0
     ax.set_ylim(ext[2], top)
     return im
 
@@ -99,9 +114,10 @@ def plot_snapshots(fig: Any, snapshots: np.ndarray, times: np.ndarray, grid: Any
     axes = fig.subplots(n_panels, 1, sharex=True)
     for ax, k in zip(np.atleast_1d(axes), picks, strict=True):
         im = _draw_frame(ax, snapshots[k], grid, rods, vmax)
-        ax.set_title(f"vertical displacement u_z, t = {1e6 * times[k]:.1f} us", fontsize=9)
-        ax.set_ylabel("depth (mm)")
-    np.atleast_1d(axes)[-1].set_xlabel("x from the first resonator (mm)")
+        ax.set_title(f"vertical displacement u_z, t = {_time_label(times[k])}", fontsize=9)
+        ax.set_ylabel(f"depth ({_len_unit(grid.nx * grid.h)[1]})")
+    np.atleast_1d(axes)[-1].set_xlabel(
+        f"x from the first resonator ({_len_unit(grid.nx * grid.h)[1]})")
     fig.colorbar(im, ax=axes, shrink=0.6, label="u_z (arbitrary units)")
 
 
@@ -118,12 +134,12 @@ def write_animation(path: Any, snapshots: np.ndarray, times: np.ndarray, grid: A
     fig, ax = plt.subplots(figsize=(9, 3.4), layout="constrained")
     im = _draw_frame(ax, snapshots[0], grid, rods, vmax)
     title = ax.set_title("")
-    ax.set_xlabel("x from the first resonator (mm)")
-    ax.set_ylabel("depth (mm)")
+    ax.set_xlabel(f"x from the first resonator ({_len_unit(grid.nx * grid.h)[1]})")
+    ax.set_ylabel(f"depth ({_len_unit(grid.nx * grid.h)[1]})")
 
     def update(k: int):
         im.set_data(snapshots[k].T)
-        title.set_text(f"u_z, t = {1e6 * times[k]:.1f} us")
+        title.set_text(f"u_z, t = {_time_label(times[k])}")
         return im, title
 
     anim = animation.FuncAnimation(fig, update, frames=len(snapshots), blit=False)

@@ -35,9 +35,9 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
         "verify",
         help="full-wave 2-D check of a layout against the surrogate",
         description=(
-            "Simulate the layout in the time domain (2-D plane strain, rows of rods smeared "
-            "along the row, absorbing layers, broadband Rayleigh-wave source), split the "
-            "outgoing power into the same channels as 'optgrade trace' and compare them with "
+            "Simulate the layout in the time domain (2-D plane strain, each row of rods "
+            "smeared across the wave path, absorbing layers, broadband Rayleigh-wave source), "
+            "split the outgoing power into the same channels as 'optgrade trace' and compare with "
             "the surrogate's 2-D line model. Writes DIR/verify.json, DIR/comparison.png, "
             "DIR/snapshots.png and DIR/animation.gif."
         ),
