@@ -39,6 +39,13 @@ value between cells that both carry the wave (0 when fewer than two do), and
 ``is_adiabatic = eps_max <= 0.1``. Turning points themselves are not counted: total reflection
 there is the standard WKB turning-point result.
 
+Known limitation (discrete sampling): each cell is represented by its own Bloch mode, and the
+turning point is placed at cell resolution. Near a gap edge K'' of the leaky mode can grow
+steeply, so the leakage booked just before a turning point depends on how close the last
+passing cell sits to its own band edge at that frequency. Fractions against frequency therefore
+show a comb with one tooth per cell where a row stops a band of frequencies; a finer grading
+(more, smaller steps) shrinks the teeth. Treat single-frequency peaks with that in mind.
+
 The march (:func:`march`) only needs the arrays of a ``LocalModes`` (contract in DEVELOPERS.md),
 however they were produced: the fast surrogate, direct root solves, or hand-built toy dispersion
 in tests. It is vectorised over frequencies and cells (cumulative sums, no Python loops).

@@ -113,3 +113,15 @@ def test_trace_writes_json_and_figures(tmp_path, capsys, study, table, is_site):
         assert "qualified" in payload["caution"] and "local codes" in payload["caution"]
         assert "CAUTION" in text
     assert not list(out.glob("*.tmp")) and not list(out.glob(".*"))
+
+
+def test_spacing_outside_the_study_range_exits_2(tmp_path, capsys):
+    table = tmp_path / "wide.csv"
+    table.write_text(
+        "index,x_mm,height_mm,diameter_mm,head_mass_kg,height_tol_mm\n"
+        "0,0,5,1,0,0\n1,40,6,1,0,0\n2,80,7,1,0,0\n"
+    )  # 40 mm cells; the bench study allows 6 .. 16 mm
+    code, _, err = _run(capsys, BENCH, "--layout", table, "--out", tmp_path / "o")
+    assert code == 2
+    assert "--layout" in err and "layout.spacing" in err and "resonator 0" in err
+    assert "Traceback" not in err

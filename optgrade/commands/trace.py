@@ -205,8 +205,28 @@ def run(args: argparse.Namespace) -> int:
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise StudyError([f"--out: {out} exists and is not a folder"])
+    a_lo, a_hi = (float(v) for v in study.layout.spacing)
+    bad = np.flatnonzero((layout.spacing < a_lo * 0.98) | (layout.spacing > a_hi * 1.02))
+    if bad.size:
+        i = int(bad[0])
+        raise StudyError([
+            f"--layout: {args.layout}: resonator {i}: cell length {layout.spacing[i] * 1e3:.6g} mm "
+            f"is outside the study's layout.spacing range {a_lo * 1e3:.6g} .. {a_hi * 1e3:.6g} mm "
+            f"({bad.size} cells outside); the dispersion tables cover only that range"
+        ])
     d_study = float(study.resonator.diameter)
     console = Console(stderr=False, highlight=False)
+    try:
+        from optgrade.fabrication import check_layout
+
+        violations = check_layout(study, layout)
+    except Exception:  # noqa: BLE001 - fabrication checks are advisory here
+        violations = []
+    for v in violations[:10]:
+        where = "" if v.index is None else f" (resonator {v.index})"
+        console.print(f"[yellow]fabrication[/]: {v.field}{where}: {v.reason}")
+    if len(violations) > 10:
+        console.print(f"[yellow]fabrication[/]: ... {len(violations) - 10} more limits broken")
     if not np.allclose(layout.diameter, d_study, rtol=1e-6):
         console.print(f"[yellow]warning[/]: table diameters differ from the study's "
                       f"{d_study * 1e3:.4g} mm; the dispersion tables use the study's diameter")
