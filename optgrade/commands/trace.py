@@ -176,8 +176,12 @@ def run_trace(study: Any, layout: Any, out: Path, *, model: str | None = None,
 
     # summary
     mean = {c: float(np.mean(v)) for c, v in tr.fractions.items()}
-    say(f"[bold]{study.meta.name}[/]: {layout.n_resonators} resonators, "
-        f"{freq.size} frequencies {freq[0]:.4g}-{freq[-1]:.4g} Hz")
+    from optgrade._plot_trace import frequency_unit
+
+    fs, funit = frequency_unit(float(freq[-1]))
+    say(f"[bold]{study.meta.name}[/]: {layout.n_resonators} resonators, length "
+        f"{layout.length:.4g} m, {freq.size} frequencies {freq[0] / fs:.4g} .. "
+        f"{freq[-1] / fs:.4g} {funit}")
     for c, v in mean.items():
         say(f"  band-mean {c:<24s} {v:7.3f}")
     n_bad = int(np.sum(~tr.is_adiabatic))
