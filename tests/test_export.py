@@ -90,7 +90,7 @@ def test_result_json_and_report(tmp_path):
     assert not list(tmp_path.glob(".*"))  # no temporary files left
 
 
-@settings(max_examples=8, deadline=None,
+@settings(max_examples=4, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(u=st.floats(0.0, 1.0), which=st.sampled_from(["spline", "linear", "power"]))
 def test_every_exported_layout_meets_every_limit(tmp_path_factory, u, which):

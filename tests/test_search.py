@@ -46,8 +46,8 @@ def _load(url, name="fake"):
 def test_seeded_search_is_reproducible(tmp_path):
     """Same seed, same chunking: the same candidates and the same best score."""
     s = fake_study()
-    a, ua = _run(s, tmp_path, "a", n_trials=24, chunk_size=4)
-    b, ub = _run(s, tmp_path, "b", n_trials=24, chunk_size=4)
+    a, ua = _run(s, tmp_path, "a", n_trials=14, chunk_size=4)
+    b, ub = _run(s, tmp_path, "b", n_trials=14, chunk_size=4)
     pa = [t.params for t in _load(ua).trials]
     pb = [t.params for t in _load(ub).trials]
     assert pa == pb and a.best_score == b.best_score
@@ -103,8 +103,8 @@ def test_pool_workers_score_like_owner(tmp_path):
     """Two worker processes score exactly as the owner does (random sampler, so that both runs
     see the same candidates whatever the number of chunks in flight)."""
     s = fake_study()
-    a, ua = _run(s, tmp_path, "own", n_trials=16, chunk_size=2, n_jobs=0, sampler="random")
-    b, ub = _run(s, tmp_path, "pool", n_trials=16, chunk_size=2, n_jobs=2, sampler="random")
+    a, ua = _run(s, tmp_path, "own", n_trials=10, chunk_size=2, n_jobs=0, sampler="random")
+    b, ub = _run(s, tmp_path, "pool", n_trials=10, chunk_size=2, n_jobs=2, sampler="random")
     va = [t.values for t in _load(ua).trials]
     vb = [t.values for t in _load(ub).trials]
     assert va == vb
