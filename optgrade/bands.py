@@ -2,42 +2,50 @@
 
 The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.lattice`). We split
 
-    Sigma = T_0(K) + T_-1(K) + Rest(K, w)
+    Sigma = sum_{m=-J}^{J-1} T_m(K) + Rest(K, w)
 
-where T_0 and T_-1 are the (m, n) = (0, 0) and (-1, 0) harmonics: they carry the Rayleigh pole
-(K = kR and, folded, K = 2 pi/a - kR) and the branch points of the forward (m = 0) and backward
-(m = -1) radiating harmonics. They are evaluated in closed form, at complex K as well. The rest
-(all other harmonics) is smooth and analytic over 0 < K < 2 pi/a as long as those harmonics stay
-evanescent (kR < 2 pi/a and kR < 2 pi/b; `validity_warnings` says when not). The direct solver
-sums Rest exactly; the surrogate (`optgrade.surrogate`) interpolates it from tables. Both share
-the root engine `solve_points` below.
+where T_m are the (m, n = 0) "main" harmonics (J from `optgrade.lattice.main_orders`: J = 1,
+i.e. m = 0 and -1, unless the spacing exceeds about a Rayleigh wavelength). They carry the
+Rayleigh poles (K = kR and its folded images) and the branch points of every harmonic that can
+radiate, and are evaluated in closed form, at complex K as well. The rest (all other harmonics)
+is then smooth and analytic over the extended zone 0 < K < 2 pi/a and symmetric about the zone
+edge. The direct solver sums Rest exactly; the surrogate (`optgrade.surrogate`) interpolates it
+from tables with a compiled copy of the root engine `solve_points` below.
 
 Branches (K in the extended zone 0 < K < 2 pi/a, so that a wave running in +x has K' > 0):
 
-* branch 0, the lower (surface) branch: the root of Re D nearest above the Rayleigh pole kR,
-  searched in (kR, 2 pi/a - kR) while kR < pi/a (the mirror half beyond the zone edge holds the
-  same roots, so the branch ends at K = pi/a: the Bragg gap) and in (kR, 2 pi/a) once kR > pi/a
-  (the second band, where the folded harmonic K - 2 pi/a radiates backward when
-  2 pi/a - K' < kT). It leaves the Rayleigh line at low frequency and slows towards the rod
+* branch 0, the lower (surface) branch: the first root of Re D above the Rayleigh pole kR,
+  bracketed by the next pole of a main harmonic (while kR < pi/a that is the folded pole
+  2 pi/a - kR, and the mirror half beyond the zone edge holds the same roots, so the branch ends
+  at K = pi/a: the Bragg gap) or by 2 pi/a (once kR > pi/a: the second band, where the folded
+  harmonic K - 2 pi/a radiates backward when 2 pi/a - K' < kT). It leaves the Rayleigh line at
+  low frequency and slows towards the rod resonance.
+* branch 1, the upper branch: the first root of Re D below kR (down to the previous pole of a
+  main harmonic, or to 1e-3 kR); above the rod resonance it emerges from the shear line and is
+  leaky forward while K' < kT. Under heavy mass loading it can also exist just below the
   resonance.
-* branch 1, the upper branch: the root of Re D nearest below kR (above the folded pole when
-  kR > pi/a); above the rod resonance it emerges from the shear line and is leaky forward while
-  K' < kT.
 
-Continuation across frequency: each branch is the root of a fixed bracketing rule attached to
-the Rayleigh pole, so it follows itself from frequency to frequency; it is nan where it has no
-root (a gap). Roots with K'' > K' (overdamped, no travelling wave) are dropped.
+Roots are found by scanning outwards from the Rayleigh pole (points clustered near the pole) for
+the first sign change of Re D times the pole factors of the bracket ends (pole-free), then
+Illinois (regula falsi) steps. Continuation across frequency: each branch is the root of this
+fixed rule attached to the Rayleigh pole, so it follows itself from frequency to frequency; it
+is nan where it has no root (a gap). Roots with K'' > K' (overdamped, no travelling wave) are
+dropped.
 
-Leaky roots: K' from the real-axis root of Re D, then complex Newton steps with T_0, T_-1 on the
-analytic continuation of their branches (`optgrade.halfspace.vertical_wavenumber`) and Rest by a
-first-order Taylor step from the real axis. Near a branch point (Newton leaves the side of the
-cone it started on, or does not converge) the first-order value K'' = -Im D / (d Re D/dK) is kept
-and flagged. Loss factors of rod and substrate enter D, so K'' includes material loss.
+Leaky and lossy roots: K' from the real-axis root of Re D (lossless main terms), then complex
+Newton steps on D(K) R_0(K) (R_0, the Rayleigh function of the m = 0 harmonic, removes the
+nearby Rayleigh pole that substrate loss moves off the axis), with the main terms on the
+analytic continuation of their branches (`optgrade.halfspace.vertical_wavenumber`) and Rest by
+a first-order Taylor step from the real axis. Near a branch point (Newton leaves the side of the
+cone it started on, or does not converge) the first-order value K'' = -Im D / (d Re D/dK) is
+kept and flagged (`Branch.is_first_order`); a first-order K'' < 0 is dropped. Loss factors of
+rod and substrate enter D, so K'' includes material loss.
 
-Channel shares: K'' is split in proportion to the Im parts at K' (first order): the radiating
-harmonics' Im T (lossless substrate) split into shear and compressional power
-(`optgrade.lattice.radiation_parts`), forward for m = 0 and backward for m = -1; the remainder
-of Im(Sigma - 1/Z) is absorbed (material loss).
+Channel shares: K'' is split in proportion to the Im parts at K' (first order): each radiating
+main harmonic's Im T_m (lossless substrate) split into shear and compressional power
+(`optgrade.lattice._split_shares`), forward if K' + 2 pi m/a > 0, backward otherwise; the
+remainder of Im(Sigma - 1/Z) is absorbed (material loss). Sideways harmonics (n != 0) are not
+booked (`validity_warnings` says when they radiate).
 """
 
 from __future__ import annotations
@@ -455,13 +463,18 @@ def validity_warnings(
     """Model-validity warnings for a frequency band (plain sentences).
 
     * sideways radiation: 2 pi / b < kT (physics.md section 5);
-    * the surrogate split needs the other harmonics evanescent: kR < 2 pi / a and kR < 2 pi / b;
+    * grating regime: kR >= 2 pi / a (informational; more main harmonics are used);
     * thin-rod theory: d > lambda_r / 5 (physics.md section 4);
     * bending modes of the rods are not represented.
     """
     out = []
     kt = 2 * np.pi * freq_max / substrate.ct
     kr = 2 * np.pi * freq_max / substrate.cr
+    if model == "lattice" and 2 * np.pi / row_pitch <= kr:
+        out.append(
+            f"row pitch {row_pitch:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
+            "sideways harmonics reach the Rayleigh pole; results outside the model"
+        )
     if model == "lattice" and 2 * np.pi / row_pitch < kt:
         out.append(
             f"row pitch {row_pitch:.4g} m exceeds the shear wavelength at {freq_max:.4g} Hz: "
@@ -470,7 +483,7 @@ def validity_warnings(
     if model != "homogenised" and kr >= 2 * np.pi / spacing_max:
         out.append(
             f"spacing {spacing_max:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
-            "higher harmonics reach the Rayleigh pole; results outside the model"
+            "grating regime, several harmonics radiate (handled as main harmonics)"
         )
     if not bool(np.all(is_thin_rod(freq_max, rod))):
         out.append(

@@ -158,6 +158,12 @@ class Surrogate:
         self.omega = np.linspace(2 * np.pi * f_lo, 2 * np.pi * f_hi, N_FREQ)
         kr_max = 2 * np.pi * f_hi / substrate.cr
         self.n_main = main_orders(self.spacing_range[1], kr_max, model)
+        from optgrade.bands import validity_warnings
+
+        #: model-validity notes for the whole table range (plain sentences)
+        self.warnings = tuple(
+            validity_warnings(substrate, rod, self.spacing_range[1], self.row_pitch, f_hi, model)
+        )
         self.was_loaded = False
         self.cache_path: Path | None = None
         self.table = self._load_or_build(cache_dir)
