@@ -227,6 +227,34 @@ def test_lossy_substrate_attenuates_rayleigh_wave_as_predicted():
     assert np.all(np.abs(measured / expected - 1.0) < 0.05), measured / expected
 
 
+def test_bulk_split_of_known_plane_waves():
+    """The bottom-line wavenumber split on synthetic plane waves crossing a horizontal line: a
+    shear wave at -35 deg (backward) plus a compressional wave at +20 deg (forward) with known
+    amplitudes. Plane-wave intensity I = rho c w^2 |U|^2 / 2 along the ray, flux through the
+    line I cos(theta) (Achenbach 1973, from memory); curl u = i kT U for shear, div u = i kL U
+    for compressional. Shares within 0.03, angles within 1.5 deg, crossing positions at the
+    middle of the (uniformly lit) line within 5 %."""
+    h = 0.5e-3
+    x = np.arange(1200) * h
+    freq = np.array([180e3])
+    w = 2 * np.pi * freq[0]
+    k_s, k_p = w / ALU.ct, w / ALU.cl
+    th_s, th_p = np.radians(-35.0), np.radians(20.0)
+    u_s, u_p = 1.0, 0.8
+    curl = (1j * k_s * u_s * np.exp(1j * k_s * np.sin(th_s) * x))[None, :]
+    div = (1j * k_p * u_p * np.exp(1j * k_p * np.sin(th_p) * x))[None, :]
+    shares, angles, x_cross = fw._fk_split(div, curl, freq, ALU, h)
+    flux_s = ALU.ct * u_s**2 * np.cos(th_s)
+    flux_p = ALU.cl * u_p**2 * np.cos(th_p)
+    expected_p = flux_p / (flux_p + flux_s)
+    assert abs(shares[1, 0] - expected_p) < 0.03, shares[:, 0]
+    assert abs(shares[2, 0] - (1 - expected_p)) < 0.03, shares[:, 0]
+    assert shares[0, 0] < 0.01 and shares[3, 0] < 0.01
+    assert abs(angles[2, 0] - (-35.0)) < 1.5 and abs(angles[1, 0] - 20.0) < 1.5, angles[:, 0]
+    mid = 0.5 * x[-1]
+    assert abs(x_cross[1, 0] / mid - 1) < 0.05 and abs(x_cross[2, 0] / mid - 1) < 0.05
+
+
 def test_tiny_resonators_transmit_everything():
     """Limit check: eight pins 0.5 mm tall (first resonance c_bar/(4L) ~ 2.5 MHz, ten times the
     band; mass loading ~1 % of a Rayleigh wavelength of substrate) barely disturb the wave, so
