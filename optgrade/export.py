@@ -195,7 +195,8 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
     else:
         _plot_search.describe(ax[4], ["no optimisation history (single layout)"])
     if pareto is not None:
-        _plot_search.plot_pareto(ax[5], *pareto)
+        values, is_front, names, chosen = pareto
+        _plot_search.plot_pareto(ax[5], values, is_front, names, chosen=chosen)
     else:
         _plot_search.describe(ax[5], summary)
     fig.suptitle(f"{study.meta.name}: trial {trial_number}", fontsize=11)

@@ -601,9 +601,6 @@ def run_search(
                     results = _score_chunk(study, key, pipeline, chunk, is_dry)
                 else:
                     results = fut.result()
-            except KeyboardInterrupt:
-                flag["stop"] = True
-                continue
             except Exception as exc:  # BrokenProcessPool / TerminatedWorkerError
                 from concurrent.futures.process import BrokenProcessPool
 

@@ -271,3 +271,30 @@ def test_examples_search_beats_random(tmp_path, name):
                                           storage=url, sampler=sampler, show_progress=False,
                                           do_export=False)
     assert runs["auto"].best_score > runs["random"].best_score
+
+
+def test_journal_storage_and_resume(tmp_path):
+    """optuna's journal file storage (for shared file systems) works through `journal:PATH`."""
+    s = fake_study()
+    url = f"journal:{tmp_path / 'j.log'}"
+    kw = dict(n_jobs=0, storage=url, pipeline=fake_pipeline, show_progress=False,
+              do_export=False)
+    search.run_search(s, tmp_path / "j", n_trials=5, **kw)
+    out = search.run_search(s, tmp_path / "j", n_trials=9, is_resume=True, **kw)
+    assert out.n_told_now == 4 and out.n_finished == 9
+
+
+def test_multi_objective_pareto_and_export(tmp_path):
+    """Two goals with opposite directions: NSGA-II by default, one direction per goal, the
+    exported trial lies on the Pareto front and the sheet gets its Pareto panel."""
+    s = fake_study()
+    s.search.objectives = ["channel", "compactness"]
+    out, url = _run(s, tmp_path, "mo", n_trials=16, do_export=True)
+    st = _load(url)
+    assert [d.name for d in st.directions] == ["MAXIMIZE", "MINIMIZE"]
+    assert isinstance(search.make_sampler("auto", 1, multi=True), optuna.samplers.NSGAIISampler)
+    front = {t.number for t in st.best_trials}
+    assert out.best_number in front
+    res = json.loads((tmp_path / "mo" / "result.json").read_text())
+    assert res["trial"] == out.best_number
+    assert set(res["objectives"]) >= {"channel", "compactness"}
