@@ -4,7 +4,7 @@ Measures, on the example studies (real surrogate and propagation):
 
 1. framework ceiling: trials/s with scoring switched off (storage + sampler only);
 2. throughput: trials/min for a 60-resonator, 128-frequency study on 2 worker processes, with
-   and without the robustness goal;
+   and without the robustness goal (wall clock), and the CPU seconds per trial behind it;
 3. convergence: seconds until the bench-scale example reaches 95 % of the best score of a run
    of ``--budget`` seconds on 2 workers;
 4. sampler comparison: best score after N trials for each sampler and seed, both examples.
@@ -80,6 +80,42 @@ def throughput(out: Path, n: int) -> dict:
     return res
 
 
+def cpu_cost(out: Path, n: int) -> dict:
+    """CPU seconds (process time, less sensitive to other load than wall time) per scored trial
+    of the 60-resonator, 128-frequency study, and of the owner's storage work per trial; from
+    these, the trials/min a dedicated 2-core machine would reach (owner and 2 workers sharing
+    the 2 cores)."""
+    from optgrade import profiles
+
+    s = load_study(BENCH)
+    res = {}
+    variants = {
+        "no_robustness": {"channel": 1.0, "worst": 0.3, "adiabaticity": 0.1},
+        "with_robustness": dict(s.goal.weights),
+    }
+    rng = np.random.default_rng(0)
+    owner = _run(s, out, "cpu_dry", n_trials=n, n_jobs=0, is_dry=True)
+    t0 = time.process_time()
+    _run(s, out, "cpu_dry2", n_trials=n, n_jobs=0, is_dry=True)
+    owner_cpu = (time.process_time() - t0) / n
+    for label, weights in variants.items():
+        s60 = _with(s, layout__count=(60, 60), goal__weights=weights)
+        ctx = search.make_context(s60)
+        space = profiles.search_space(s60)
+        pts = [{k: (d.low if d.low == d.high else float(rng.uniform(d.low, d.high)))
+                for k, d in space.items()} for _ in range(n)]
+        search.evaluate_params(s60, pts[0], ctx)
+        t0 = time.process_time()
+        for p in pts:
+            search.evaluate_params(s60, p, ctx)
+        per = (time.process_time() - t0) / n
+        res[label] = {"cpu_s_per_trial": per, "owner_cpu_s_per_trial": owner_cpu,
+                      "est_trials_per_min_2cores": 60 * 2 / (per + owner_cpu),
+                      "load": _load()}
+    res["owner_wall_trials_per_s"] = owner.trials_per_second
+    return res
+
+
 def convergence(out: Path, budget: float) -> dict:
     s = load_study(BENCH)
     o = _run(s, out, "conv", n_trials=100_000, n_jobs=2, time_budget=budget)
@@ -91,9 +127,10 @@ def convergence(out: Path, budget: float) -> dict:
             int(np.argmax(hist[:, 1] >= 0.95 * best)) + 1, "load": _load()}
 
 
-def samplers(out: Path, n: int, seeds: list[int], names: list[str]) -> dict:
+def samplers(out: Path, n: int, seeds: list[int], names: list[str],
+             paths: tuple[Path, ...] = (BENCH, SITE)) -> dict:
     res: dict = {}
-    for path in (BENCH, SITE):
+    for path in paths:
         base = load_study(path)
         res[base.meta.name] = {}
         for sampler in names:
@@ -113,8 +150,12 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="runs/bench_search")
     ap.add_argument("--quick", action="store_true", help="small counts (a few minutes)")
-    ap.add_argument("--only", nargs="*", default=["ceiling", "throughput", "convergence",
+    ap.add_argument("--only", nargs="*", default=["ceiling", "throughput", "cpu", "convergence",
                                                   "samplers"])
+    ap.add_argument("--samplers", nargs="*", default=["tpe", "random", "qmc"])
+    ap.add_argument("--sampler-trials", type=int, default=None)
+    ap.add_argument("--seeds", type=int, nargs="*", default=None)
+    ap.add_argument("--studies", nargs="*", default=["bench", "site"])
     args = ap.parse_args()
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -129,13 +170,19 @@ def main() -> None:
     if "throughput" in args.only:
         results["throughput"] = throughput(out, 30 if q else 100)
         print("throughput", results["throughput"], flush=True)
+    if "cpu" in args.only:
+        results["cpu"] = cpu_cost(out, 10 if q else 30)
+        print("cpu", results["cpu"], flush=True)
     if "convergence" in args.only:
         results["convergence"] = convergence(out, 60.0 if q else 240.0)
         print("convergence", results["convergence"], flush=True)
     if "samplers" in args.only:
-        results["samplers"] = samplers(out, 30 if q else 60, [1, 2] if q else [1, 2, 3],
-                                       ["tpe", "random", "qmc"])
-        print("samplers", json.dumps(results["samplers"], indent=1), flush=True)
+        n = args.sampler_trials or (30 if q else 60)
+        seeds = args.seeds or ([1, 2] if q else [1, 2, 3])
+        paths = tuple({"bench": BENCH, "site": SITE}[k] for k in args.studies)
+        key = f"samplers_{n}"
+        results[key] = samplers(out, n, seeds, args.samplers, paths)
+        print(key, json.dumps(results[key], indent=1), flush=True)
     path.write_text(json.dumps(results, indent=1) + "\n")
     print(f"written {path}")
 

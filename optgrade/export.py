@@ -200,7 +200,13 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
     else:
         _plot_search.describe(ax[5], summary)
     fig.suptitle(f"{study.meta.name}: trial {trial_number}", fontsize=11)
-    fig.tight_layout()
+    is_site = getattr(study.meta, "scale", "bench") == "site"
+    fig.tight_layout(rect=(0, 0.04 if is_site else 0, 1, 1))
+    if is_site:
+        import textwrap
+
+        fig.text(0.01, 0.005, "\n".join(textwrap.wrap(SITE_CAUTION, 190)), fontsize=8,
+                 color="#8B0000", va="bottom")
 
     def save(p: Path) -> None:
         fig.savefig(p, dpi=110, format="png")
