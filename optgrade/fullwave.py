@@ -264,7 +264,7 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
 
     Spacing h: ``ppw`` points per Rayleigh wavelength at the top of the band, and at least
     ``fp_cells`` cells across the narrowest footprint. Box depth D = 1.5 Rayleigh wavelengths at
-    the bottom of the band (the Rayleigh mode has decayed to ~1e-4 there). Source 1.2 D before
+    the bottom of the band (the Rayleigh mode has decayed to ~1e-4 there). Source 3 D before
     the left line so that little of its own bulk radiation enters the box. Time step
     ``courant * h / cL`` (stable below 1/sqrt(2)). Duration: at least the pulse plus 1.5
     Rayleigh transit times from source to the right line, at most the pulse plus
@@ -284,7 +284,7 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     nz = j_bottom + 6 + n_pml
     gap = 0.25 * lam_lo + 3 * h
     i_source = n_pml + int(math.ceil(0.3 * lam_lo / h))
-    i_left = i_source + int(math.ceil(1.2 * depth / h))
+    i_left = i_source + int(math.ceil(3.0 * depth / h))
     x_array = (i_left * h) + gap
     i_right = int(math.ceil((x_array + length + gap) / h))
     nx = i_right + int(math.ceil(0.3 * lam_lo / h)) + n_pml
