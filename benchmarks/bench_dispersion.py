@@ -7,7 +7,8 @@ table build time per spacing level; surrogate time for all branches of 1 cell an
 different cells at 256 frequencies (median of repeats, compiled kernel warm); the direct root
 solve of one cell at the same frequencies and the speed ratio; and the surrogate's error against
 the direct solve on a grid of heights x spacings x head masses. The machine may be shared:
-timings are noisy, repeat for quiet figures.
+timings are CPU times of this process (time.process_time), which a busy machine still
+disturbs somewhat through shared caches; repeat for quiet figures.
 """
 
 from __future__ import annotations
@@ -33,19 +34,20 @@ from optgrade.surrogate import Surrogate  # noqa: E402
 
 
 def _median_time(fn, repeats):
+    """Median CPU time of this process (s): robust against other jobs on a shared machine."""
     times = []
     for _ in range(repeats):
-        t = time.perf_counter()
+        t = time.process_time()
         fn()
-        times.append(time.perf_counter() - t)
+        times.append(time.process_time() - t)
     return float(np.median(times))
 
 
 def bench_study(name: str, quick: bool) -> dict:
     study = load_study(ROOT / "studies" / name)
-    t = time.perf_counter()
+    t = time.process_time()
     sur = Surrogate.from_study(study, cache_dir=False)
-    build = time.perf_counter() - t
+    build = time.process_time() - t
     f = np.linspace(*study.goal.band, 256)
     h_lo, h_hi = study.layout.height
     a_lo, a_hi = study.layout.spacing
@@ -60,9 +62,9 @@ def bench_study(name: str, quick: bool) -> dict:
     t60 = _median_time(lambda: sur.local_modes(h60, a60, m60, f), 2 if quick else 5)
     n_direct = 32 if quick else 256
     fd = np.linspace(*study.goal.band, n_direct)
-    t = time.perf_counter()
+    t = time.process_time()
     direct_local_modes(sur.substrate, sur.rod, sur.row_pitch, h1, a1, m1, fd, sur.model)
-    td = (time.perf_counter() - t) * 256 / n_direct
+    td = (time.process_time() - t) * 256 / n_direct
     from test_surrogate import _grid, compare
 
     acc = compare(sur, *_grid(study, 12 if quick else 24))
@@ -87,7 +89,7 @@ def main() -> int:
         bench_study(n, args.quick)
         for n in ("bench_backward_shear.toml", "site_ground_barrier.toml")
     ]
-    print("\nDispersion engine benchmark (one core; shared machine, timings noisy)")
+    print("\nDispersion engine benchmark (CPU seconds of this process, thread pools pinned to 1)")
     print(
         f"{'study':28s} {'levels':>6s} {'build s':>8s} {'s/level':>8s} {'1 cell ms':>10s} "
         f"{'60 cells ms':>12s} {'direct s':>9s} {'ratio':>8s}"

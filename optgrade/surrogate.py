@@ -598,6 +598,7 @@ def solve_grid(
         a = a_arr[ic]
         g = 2.0 * pi / a
         table = slices[ic]
+        prev_k = np.zeros(2)
         for jf in range(nf):
             w = w_arr[jf]
             iz = inv_z[ic, jf]
@@ -633,6 +634,8 @@ def solve_grid(
             if kr >= zone:
                 continue
             for br in range(2):
+                root_real = prev_k[br]
+                prev_k[br] = 0.0
                 if br == 0:
                     lo = kr
                     hi = p_hi if p_hi > 0.0 else zone
@@ -654,7 +657,87 @@ def solve_grid(
                 kb = 0.0
                 ha = 0.0
                 hb = 0.0
-                for js in range(N_SCAN + 1):
+                # continuation: bracket around the previous frequency's root, if the pole-side
+                # end keeps the sign found next to the pole (else the full scan below)
+                if jf > 0 and root_real > 0.0:
+                    kg = root_real * w / w_arr[jf - 1]
+                    dlt = 0.5 * abs(w - w_arr[jf - 1]) / w + 1e-3
+                    k1 = kg * (1.0 - dlt) if br == 0 else kg * (1.0 + dlt)
+                    k2 = kg * (1.0 + dlt) if br == 0 else kg * (1.0 - dlt)
+                    inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
+                    if inside:
+                        u0 = lo + (hi - lo) * 1e-9 if br == 0 else hi - (hi - lo) * 1e-9
+                        h0 = _h(
+                            u0,
+                            a,
+                            b,
+                            radius,
+                            model,
+                            kl2_0,
+                            kt2_0,
+                            mu,
+                            coef,
+                            n_main,
+                            iz,
+                            table,
+                            k0,
+                            dk,
+                            wi,
+                            wt,
+                            lo,
+                            hi,
+                            pole_lo,
+                            pole_hi,
+                        )
+                        h1 = _h(
+                            k1,
+                            a,
+                            b,
+                            radius,
+                            model,
+                            kl2_0,
+                            kt2_0,
+                            mu,
+                            coef,
+                            n_main,
+                            iz,
+                            table,
+                            k0,
+                            dk,
+                            wi,
+                            wt,
+                            lo,
+                            hi,
+                            pole_lo,
+                            pole_hi,
+                        )
+                        if (h1 > 0.0) == (h0 > 0.0):
+                            h2 = _h(
+                                k2,
+                                a,
+                                b,
+                                radius,
+                                model,
+                                kl2_0,
+                                kt2_0,
+                                mu,
+                                coef,
+                                n_main,
+                                iz,
+                                table,
+                                k0,
+                                dk,
+                                wi,
+                                wt,
+                                lo,
+                                hi,
+                                pole_lo,
+                                pole_hi,
+                            )
+                            if (h2 > 0.0) != (h0 > 0.0):
+                                ka, ha, kb, hb = k1, h1, k2, h2
+                                found = True
+                for js in range(0 if not found else N_SCAN + 1, N_SCAN + 1):
                     if js == 0:
                         u = 1e-9
                     elif js == N_SCAN:
@@ -733,6 +816,7 @@ def solve_grid(
                     if abs(kb - ka) <= 1e-13 * abs(kc) or hc == 0.0 or moved <= 1e-13 * abs(kc):
                         break
                 k_re = kb
+                prev_k[br] = k_re
                 hstep = 1e-6 * pi / a
                 r0, dr0 = _rest(k_re, a, table, k0, dk, wi, wt)
                 m0 = _main(k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
