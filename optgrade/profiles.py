@@ -268,7 +268,10 @@ def quantise(values: np.ndarray, step: float, lo: float, hi: float) -> np.ndarra
     q_hi = np.floor(hi / step + 1e-9) * step
     if q_lo > q_hi + 1e-15:
         return values
-    return np.clip(np.round(values / step) * step, q_lo, q_hi)
+    out = np.clip(np.round(values / step) * step, q_lo, q_hi)
+    # k * step carries binary noise (110 * 0.05e-3 = 5.5000000000000005e-3): snap to the
+    # nearest double of the decimal value at picometre resolution, so tables read 5.5 mm
+    return np.round(out, 12)
 
 
 def _fit_length(spacing: np.ndarray, s_lo: float, max_length: float | None) -> np.ndarray:
