@@ -67,7 +67,7 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
     ax.fill_betweenx(fs, 0, np.minimum(kt, kmax), color="#f2d7a6", alpha=0.35, lw=0)
     ax.fill_betweenx(fs, np.maximum(g - kt, 0), kmax, color="#cfe0f3", alpha=0.45, lw=0)
     ax.axvline(np.pi / a, color="k", lw=0.8, ls="-.")
-    ax.text(np.pi / a, fs.max(), r" $\pi/a$", va="top", ha="left", fontsize=9)
+    ax.text(np.pi / a, fs.min(), r" $\pi/a$ (zone edge)", va="bottom", ha="left", fontsize=9)
     for i, fr in enumerate(bands.resonances):
         if f.min() <= fr <= f.max():
             ax.axhline(fr * scale, color="#7b3fa0", lw=0.9, ls="--")
@@ -150,9 +150,16 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
         bbox=dict(facecolor="white", alpha=0.8, lw=0),
     )
     if sc is not None:
-        cb = fig.colorbar(sc, ax=ax, shrink=0.6, pad=0.01)
+        cax = ax.inset_axes([0.955, 0.08, 0.018, 0.4])
+        cb = fig.colorbar(sc, cax=cax)
+        cax.yaxis.set_ticks_position("left")
+        cax.yaxis.set_label_position("left")
         cb.set_label("log10(K''/K')")
     ax2.set_xscale("log")
+    from matplotlib.ticker import LogLocator, NullFormatter
+
+    ax2.xaxis.set_major_locator(LogLocator(base=10))
+    ax2.xaxis.set_minor_formatter(NullFormatter())
     ax2.set_xlabel("attenuation K'' a (Np per cell)")
     ax2.set_ylim(fs.min(), fs.max())
     ax2.grid(True, which="both", alpha=0.3)
