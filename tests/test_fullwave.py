@@ -73,11 +73,13 @@ def test_rayleigh_speed_aluminium_matches_halfspace_root():
 
 
 def test_absorbing_boundaries_reflect_less_than_one_percent():
-    """CPML reflection < 1 %: box fields of the working domain against a much larger domain
-    whose boundaries are too far for any reflection to come back within the run (the usual
-    way to measure an absorbing boundary; common practice). Also the Rayleigh wave sent back
-    by the right layer: the difference of the backward Rayleigh amplitudes at the right receiver
-    line between the two domains is < 1 % of the forward amplitude."""
+    """CPML reflection < 1 %: the recorded receiver-strip fields of the working domain against a
+    much larger domain whose boundaries are too far for any reflection to come back within the
+    run (the usual way to measure an absorbing boundary; common practice), as the rms
+    difference over all strips relative to their rms field, at every frequency. Also the
+    Rayleigh wave sent back by the right layer: the difference of the backward Rayleigh
+    amplitudes at the right receiver line between the two domains is < 1 % of the forward
+    amplitude."""
     grid = fw.plan_grid(ALU, BAND, 0.02, 1e-3, quality="fast", duration_factor=1.3)
     small = fw.simulate(ALU, grid, BAND, FREQ, energy_tol=0.0)
     t_end = grid.n_steps * grid.dt
@@ -86,14 +88,14 @@ def test_absorbing_boundaries_reflect_less_than_one_percent():
                                    i_source=grid.i_source + pad, i_left=grid.i_left + pad,
                                    i_right=grid.i_right + pad, x_array=grid.x_array + pad * grid.h)
     big = fw.simulate(ALU, big_grid, BAND, FREQ, energy_tol=0.0)
-    worst = 0.0
+    num = den = 0.0
     for part in small.blocks:
         for name in ("vx", "vz"):
             a = small.blocks[part][name]
             b = big.blocks[part][name]
-            err = np.sqrt(np.sum(np.abs(a - b) ** 2, axis=(1, 2))
-                          / np.sum(np.abs(b) ** 2, axis=(1, 2)))
-            worst = max(worst, float(err.max()))
+            num = num + np.sum(np.abs(a - b) ** 2, axis=(1, 2))
+            den = den + np.sum(np.abs(b) ** 2, axis=(1, 2))
+    worst = float(np.sqrt(num / den).max())
     print("box field difference", worst)
     assert worst < 0.01, worst
     cr = fw.rayleigh_speed(ALU.cl, ALU.ct)
