@@ -513,6 +513,63 @@ def _split_shear(xi2, kl2, kt2):
 
 
 @njit(cache=True)
+def _re_compliance(q, kl2, kt2, mu):
+    """Re G at real xi^2 = q for a lossless solid (real arithmetic, same branches as _vert)."""
+    c = (2.0 * q - kt2) ** 2
+    if q >= kt2:
+        al = math.sqrt(q - kl2)
+        be = math.sqrt(q - kt2)
+        r = c - 4.0 * q * al * be
+        if abs(c + 4.0 * q * al * be) >= abs(c):
+            num = (
+                16.0 * q**3 * (kl2 - kt2)
+                + 8.0 * q**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
+                - 8.0 * q * kt2**3
+                + kt2**4
+            )
+            r = num / (c + 4.0 * q * al * be)
+        return -al * kt2 / (mu * r)
+    if q > kl2:
+        al = math.sqrt(q - kl2)
+        bb = 4.0 * q * al * math.sqrt(kt2 - q)  # R = c + i bb
+        return -al * kt2 * c / (mu * (c * c + bb * bb))
+    return 0.0
+
+
+@njit(cache=True)
+def _ff2_re(q, radius, model, coef):
+    if model == 2:
+        return 1.0
+    x2 = q * radius * radius
+    if model == 0:
+        s = coef[coef.size - 1] * x2 + coef[coef.size - 2]
+        for i in range(coef.size - 3, -1, -1):
+            s = s * x2 + coef[i]
+    else:
+        if x2 < 1e-12:
+            s = 1.0 - x2 / 6.0
+        else:
+            x = math.sqrt(x2)
+            s = math.sin(x) / x
+    return s * s
+
+
+@njit(cache=True)
+def _main_re(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
+    """Re of the main harmonics at real K, lossless (fast path of the real-axis scan)."""
+    g = 2.0 * math.pi / a
+    if model == 2:
+        q0 = K * K
+        return _re_compliance(q0, kl2, kt2, mu) * _ff2_re(q0, radius, model, coef) / (a * b)
+    t = 0.0
+    for m in range(-n_main, n_main):
+        x = K + m * g
+        q = x * x
+        t += _re_compliance(q, kl2, kt2, mu) * _ff2_re(q, radius, model, coef)
+    return t / (a * b)
+
+
+@njit(cache=True)
 def _rayleigh(q, kl2, kt2):
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
@@ -551,7 +608,8 @@ def _h(
     pole_hi,
 ):
     rv, _ = _rest(K, a, table, k0, dk, wi, wt)
-    f = (_main(K, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main) + rv).real - iz.real
+    f = _main_re(K, a, b, radius, model, kl2_0.real, kt2_0.real, mu.real, coef, n_main)
+    f += rv.real - iz.real
     if pole_lo:
         f *= K - lo
     if pole_hi:
