@@ -91,6 +91,11 @@ def test_existing_study_needs_resume_and_resume_tops_up(tmp_path):
     out, _ = _run(s, tmp_path, "r", n_trials=20, is_resume=True)
     assert out.n_told_now == 10 and out.n_finished == 20
     assert len(search.finished_trials(_load(url))) == 20
+    attrs = _load(url).user_attrs
+    assert attrs["study_hash"] == search.study_hash(s) and attrs["package_version"]
+    changed = fake_study(goal__band=(100e3, 250e3))  # same name, different study
+    with pytest.raises(search.SearchError, match="changed"):
+        _run(changed, tmp_path, "r", n_trials=30, is_resume=True)
 
 
 def test_framework_ceiling_dry_run(tmp_path):
@@ -237,6 +242,16 @@ def test_ctrl_c_finishes_batch_exports_and_exits_130(tmp_path):
     assert not st.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
     assert (tmp_path / "out" / "table.csv").is_file()
     assert _n_complete(url) < 400
+
+
+def test_cli_existing_study_without_resume_exit_2(tmp_path, capsys):
+    """The command refuses to overwrite a stored search (exit 2, names --resume) before any
+    physics is built."""
+    study = REPO / "studies" / "bench_backward_shear.toml"
+    url = f"sqlite:///{tmp_path / 'study.db'}"
+    optuna.create_study(study_name="bench_backward_shear", storage=search.open_storage(url))
+    assert main(["search", str(study), "--out", str(tmp_path), "--quiet"]) == 2
+    assert "--resume" in capsys.readouterr().err
 
 
 def test_cli_bad_input_exit_2(tmp_path, capsys):
