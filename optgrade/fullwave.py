@@ -823,14 +823,17 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     if medium.loss_factor > 0:
         # Lossy substrate: the box balance measures the absorption instead of checking it.
         # Transmitted: include the bare-substrate decay over the row's length (as the
-        # surrogate's complex wavenumbers do); absorbed: all power lost inside the box
-        # minus the bare loss over the two gaps between the receiver lines and the row.
+        # surrogate's complex wavenumbers do); absorbed: all power lost inside the box, minus
+        # what the source's own bulk waves lose there (reference loss minus the bare Rayleigh
+        # loss), minus the bare Rayleigh loss over the two gaps between the lines and the row.
         box_len = (grid.i_right - grid.i_left) * h
         frac = min(1.0, layout_length / box_len)
         decay = np.abs(ap_ref_r) ** 2 / np.abs(ap_ref_l) ** 2
         transmitted = transmitted * decay**frac
-        loss_ref = -box_out(1) / p_inc
-        absorbed = -box_out(0) / p_inc - loss_ref * 0.5 * (1.0 - frac) * (1.0 + transmitted)
+        l_box = 1.0 - decay
+        source_bulk_loss = -box_out(1) / p_inc - l_box
+        absorbed = (-box_out(0) / p_inc - source_bulk_loss
+                    - l_box * 0.5 * (1.0 - frac) * (1.0 + transmitted))
         balance = np.full(freq.size, np.nan)
         ref_balance = np.full(freq.size, np.nan)
     else:
