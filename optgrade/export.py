@@ -121,6 +121,10 @@ def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: 
         doc.layers.add(name, color=colour)
     msp = doc.modelspace()
     text_h = max(float(d.max()), float(x[-1] - x[0]) / 150.0)
+    # dimension text and arrows scaled with the drawing (the default 2.5 mm vanishes at site scale)
+    dim_style = {"dimtxt": 0.8 * text_h, "dimasz": 0.5 * text_h, "dimexo": 0.2 * text_h,
+                 "dimexe": 0.3 * text_h, "dimgap": 0.2 * text_h,
+                 "dimlfac": 1.0, "dimdec": 3}  # drawing units are mm, shown as mm
 
     # plan: rows at y = 0, pitch, 2 pitch, ... (wave runs along +x)
     for r in range(n_rows):
@@ -132,11 +136,12 @@ def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: 
         (x[0], plan_top + 2 * text_h))
     if n_rows > 1:
         dim = msp.add_linear_dim(base=(x[0] - 3 * d.max(), pitch / 2), p1=(x[0], 0),
-                                 p2=(x[0], pitch), angle=90, dimstyle="EZDXF",
+                                 p2=(x[0], pitch), angle=90, dimstyle="EZDXF", override=dim_style,
                                  dxfattribs={"layer": "DIMENSIONS"})
         dim.render()
     dim = msp.add_linear_dim(base=(0, -2 * d.max()), p1=(x[0], 0), p2=(x[1], 0),
-                             dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+                             dimstyle="EZDXF", override=dim_style,
+                                 dxfattribs={"layer": "DIMENSIONS"})
     dim.render()
 
     # elevation below the plan: surface line at y0, rods upwards
@@ -157,10 +162,12 @@ def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: 
     for j in (0, len(x) - 1):
         dim = msp.add_linear_dim(base=(x[j] + (-3 if j == 0 else 3) * d.max(), y0),
                                  p1=(x[j], y0), p2=(x[j], y0 + h[j]), angle=90,
-                                 dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+                                 dimstyle="EZDXF", override=dim_style,
+                                 dxfattribs={"layer": "DIMENSIONS"})
         dim.render()
     dim = msp.add_linear_dim(base=(0, y0 - 4 * text_h), p1=(x[0], y0), p2=(x[-1], y0),
-                             dimstyle="EZDXF", dxfattribs={"layer": "DIMENSIONS"})
+                             dimstyle="EZDXF", override=dim_style,
+                                 dxfattribs={"layer": "DIMENSIONS"})
     dim.render()
     msp.add_text(f"ELEVATION  {title}  (mm; resonator index below each labelled rod)",
                  height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(

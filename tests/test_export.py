@@ -69,7 +69,12 @@ def test_dxf_plan_and_elevation_match_layout(tmp_path):
     heights = sorted(np.ptp([p[1] for p in r.get_points()]) for r in rods)
     np.testing.assert_allclose(heights, np.sort(lay.height) * 1e3, rtol=1e-9)
     assert len(msp.query("LWPOLYLINE[layer=='HEAD_MASS']")) == lay.n_resonators
-    assert len(msp.query("DIMENSION")) >= 4
+    dims = msp.query("DIMENSION")
+    assert len(dims) >= 4
+    measured = [d.get_measurement() for d in dims]
+    assert any(m == pytest.approx(s.resonator.row_pitch * 1e3) for m in measured)
+    assert any(m == pytest.approx((lay.x[1] - lay.x[0]) * 1e3) for m in measured)
+    assert all(d.override().get("dimlfac") == 1.0 for d in dims)  # shown in mm as drawn
 
 
 def test_result_json_and_report(tmp_path):
