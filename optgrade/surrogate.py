@@ -158,6 +158,9 @@ class Surrogate:
         self.omega = np.linspace(2 * np.pi * f_lo, 2 * np.pi * f_hi, N_FREQ)
         kr_max = 2 * np.pi * f_hi / substrate.cr
         self.n_main = main_orders(self.spacing_range[1], kr_max, model)
+        # Taylor terms of the disc form factor that the kernel's arguments can need
+        x_max = 1.5 * (self.n_main + 1) * 2 * np.pi / (0.98 * self.spacing_range[0]) * rod.radius
+        self._coef = _COEF[: _n_taylor_terms(x_max)].copy()
         from optgrade.bands import validity_warnings
 
         #: model-validity notes for the whole table range (plain sentences)
@@ -319,7 +322,7 @@ class Surrogate:
             self.row_pitch,
             self.rod.radius,
             {"lattice": 0, "line": 1, "homogenised": 2}[self.model],
-            _COEF,
+            self._coef,
             self.n_main,
             out_k,
             out_sh,
@@ -376,6 +379,11 @@ def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> N
 # Compiled root kernel: the algorithm of optgrade.bands.solve_points, one point at a time.
 # ---------------------------------------------------------------------------------------
 N_SCAN = 16
+#: coarse scan step (in fine scan points) of the real-axis scan
+SCAN_STRIDE = 1
+#: Newton stops at |step| <= NEWTON_TOL |K| (quadratic convergence with a forward-difference
+#: slope of relative error ~1e-6: the iterate's error is then ~1e-6 of the last step)
+NEWTON_TOL = 1e-8
 MAX_ILLINOIS = 60
 N_NEWTON = 4
 N_LOSS_STAGES = 1
@@ -384,6 +392,18 @@ N_LOSS_STAGES = 1
 _COEF = np.array(
     [(-1.0) ** k / (4.0**k * math.factorial(k) * math.factorial(k + 1)) for k in range(22)]
 )
+
+
+def _n_taylor_terms(x_max: float, tol: float = 1e-18) -> int:
+    """Number of Taylor terms of 2 J1(x)/x in x^2 (series of `_COEF`) after which every
+    further term is below ``tol`` for |x| <= ``x_max`` (the terms fall faster than
+    geometrically once they fall, so the tail is of the order of the first dropped term).
+    Abramowitz & Stegun 9.1.10 (ascending series of J1)."""
+    x2 = x_max * x_max
+    for n in range(4, _COEF.size + 1):
+        if abs(_COEF[n - 1]) * x2 ** (n - 1) < tol and x2 / (4.0 * n * (n + 1)) < 0.5:
+            return n
+    return int(_COEF.size)
 
 
 @njit(cache=True)
@@ -570,6 +590,21 @@ def _main_re(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
 
 
 @njit(cache=True)
+def _scan_k(js, lo, hi, br):
+    """Scan point js of N_SCAN on (lo, hi), clustered quadratically at the Rayleigh pole (lo
+    for branch 0, hi for branch 1); the ends are kept 1e-9 of the interval inside."""
+    if js == 0:
+        u = 1e-9
+    elif js == N_SCAN:
+        u = 1.0 - 1e-9
+    else:
+        u = (js / N_SCAN) ** 2
+    if br == 0:
+        return lo + (hi - lo) * u
+    return hi - (hi - lo) * u
+
+
+@njit(cache=True)
 def _rayleigh(q, kl2, kt2):
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
@@ -582,6 +617,25 @@ def _rayleigh(q, kl2, kt2):
 def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
     d = iz - _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main) - (r0 + (K - k_re) * dr0)
     return d * _rayleigh(K * K, kl2, kt2)
+
+
+@njit(cache=True)
+def _newton(
+    kk, n_iter, tol, hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
+):
+    """Newton on the pole-free D(K) R_0(K) (see optgrade.bands) from kk, forward-difference
+    derivative (step hstep); stops when |step| <= tol |K|. Returns (K, last step)."""
+    step = 0j
+    for _ in range(n_iter):
+        f0 = _pole_free(kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0)
+        f1 = _pole_free(
+            kk + hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
+        )
+        step = f0 / ((f1 - f0) / hstep)
+        kk = kk - step
+        if abs(step) <= tol * abs(kk):
+            break
+    return kk, step
 
 
 @njit(cache=True)
@@ -795,19 +849,14 @@ def solve_grid(
                             if (h2 > 0.0) != (h0 > 0.0):
                                 ka, ha, kb, hb = k1, h1, k2, h2
                                 found = True
-                for js in range(0 if not found else N_SCAN + 1, N_SCAN + 1):
-                    if js == 0:
-                        u = 1e-9
-                    elif js == N_SCAN:
-                        u = 1.0 - 1e-9
-                    else:
-                        u = (js / N_SCAN) ** 2
-                    if br == 0:
-                        K = lo + (hi - lo) * u
-                    else:
-                        K = hi - (hi - lo) * u
-                    h = _h(
-                        K,
+                # scan outwards from the Rayleigh pole on the points of `_scan_k`: every
+                # SCAN_STRIDE-th point first; at the first coarse sign change, the fine points
+                # in between locate the first fine sign change (same bracket as the full fine
+                # scan unless two roots lie between two coarse points)
+                if not found:
+                    kprev = _scan_k(0, lo, hi, br)
+                    h_first = _h(
+                        kprev,
                         a,
                         b,
                         radius,
@@ -828,13 +877,66 @@ def solve_grid(
                         pole_lo,
                         pole_hi,
                     )
-                    if js == 0:
-                        h_first = h
-                    elif (h > 0.0) != (h_first > 0.0):
-                        ka, ha, kb, hb = kprev, hprev, K, h
-                        found = True
-                        break
-                    kprev, hprev = K, h
+                    hprev = h_first
+                    jp = 0
+                    while jp < N_SCAN:
+                        jc = min(jp + SCAN_STRIDE, N_SCAN)
+                        K = _scan_k(jc, lo, hi, br)
+                        h = _h(
+                            K,
+                            a,
+                            b,
+                            radius,
+                            model,
+                            kl2_0,
+                            kt2_0,
+                            mu,
+                            coef,
+                            n_main,
+                            iz,
+                            table,
+                            k0,
+                            dk,
+                            wi,
+                            wt,
+                            lo,
+                            hi,
+                            pole_lo,
+                            pole_hi,
+                        )
+                        if (h > 0.0) != (h_first > 0.0):
+                            ka, ha, kb, hb = kprev, hprev, K, h
+                            for jf2 in range(jp + 1, jc):
+                                Kf = _scan_k(jf2, lo, hi, br)
+                                hf = _h(
+                                    Kf,
+                                    a,
+                                    b,
+                                    radius,
+                                    model,
+                                    kl2_0,
+                                    kt2_0,
+                                    mu,
+                                    coef,
+                                    n_main,
+                                    iz,
+                                    table,
+                                    k0,
+                                    dk,
+                                    wi,
+                                    wt,
+                                    lo,
+                                    hi,
+                                    pole_lo,
+                                    pole_hi,
+                                )
+                                if (hf > 0.0) != (h_first > 0.0):
+                                    kb, hb = Kf, hf
+                                    break
+                                ka, ha = Kf, hf
+                            found = True
+                            break
+                        kprev, hprev, jp = K, h, jc
                 if not found:
                     continue
                 for _ in range(MAX_ILLINOIS):
@@ -897,10 +999,12 @@ def solve_grid(
                     kl2_s = (w / (cl * fac)) ** 2
                     kt2_s = (w / (ct * fac)) ** 2
                     mu_s = mu * (1.0 - 1j * eta_s)
-                    for _ in range(n_newton):
-                        # Newton on D(K) R_0(K) (pole-free, see optgrade.bands)
-                        f0 = _pole_free(
+                    if n_newton > 0:
+                        kk, step = _newton(
                             kk,
+                            n_newton,
+                            NEWTON_TOL,
+                            hstep,
                             k_re,
                             a,
                             b,
@@ -915,26 +1019,6 @@ def solve_grid(
                             r0,
                             dr0,
                         )
-                        f1 = _pole_free(
-                            kk + hstep,
-                            k_re,
-                            a,
-                            b,
-                            radius,
-                            model,
-                            kl2_s,
-                            kt2_s,
-                            mu_s,
-                            coef,
-                            n_main,
-                            iz,
-                            r0,
-                            dr0,
-                        )
-                        step = f0 / ((f1 - f0) / hstep)
-                        kk = kk - step
-                        if abs(step) <= 1e-10 * abs(kk):
-                            break
                 ok = (
                     math.isfinite(kk.real)
                     and math.isfinite(kk.imag)
