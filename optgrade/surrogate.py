@@ -384,6 +384,8 @@ SCAN_STRIDE = 1
 #: Newton stops at |step| <= NEWTON_TOL |K| (quadratic convergence with a forward-difference
 #: slope of relative error ~1e-6: the iterate's error is then ~1e-6 of the last step)
 NEWTON_TOL = 1e-8
+#: iterations of the analytic-slope Newton (the difference-slope one keeps N_NEWTON)
+N_NEWTON_D = 4
 MAX_ILLINOIS = 60
 N_NEWTON = 4
 N_LOSS_STAGES = 1
@@ -617,6 +619,127 @@ def _rayleigh(q, kl2, kt2):
 def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
     d = iz - _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main) - (r0 + (K - k_re) * dr0)
     return d * _rayleigh(K * K, kl2, kt2)
+
+
+@njit(cache=True)
+def _ff2_d(q, radius, model, coef):
+    """Form factor F(q) and dF/dq at complex q = xi^2 (see `_ff2`)."""
+    if model == 2:
+        return 1.0 + 0j, 0j
+    r2 = radius * radius
+    x2 = q * r2
+    if model == 0:
+        n = coef.size
+        s = coef[n - 1] + 0j
+        ds = 0j
+        for i in range(n - 2, -1, -1):
+            ds = ds * x2 + s
+            s = s * x2 + coef[i]
+    else:
+        if abs(x2) < 1e-6:
+            s = 1.0 - x2 / 6.0 + x2 * x2 / 120.0
+            ds = -1.0 / 6.0 + x2 / 60.0
+        else:
+            x = cmath.sqrt(x2 + 0j)
+            sn = cmath.sin(x)
+            s = sn / x
+            ds = (x * cmath.cos(x) - sn) / (2.0 * x * x2)
+    return s * s, 2.0 * s * ds * r2
+
+
+@njit(cache=True)
+def _compliance_d(q, kl2, kt2, mu):
+    """G(q) of `_compliance` and dG/dq: G'/G = 1/(2 alpha^2) - R'/R with
+    R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha))."""
+    alpha = _vert(q, kl2)
+    beta = _vert(q, kt2)
+    a = (2.0 * q - kt2) ** 2
+    b = 4.0 * q * alpha * beta
+    den = a + b
+    if abs(den) >= abs(a):
+        num = (
+            16.0 * q**3 * (kl2 - kt2)
+            + 8.0 * q**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
+            - 8.0 * q * kt2**3
+            + kt2**4
+        )
+        r = num / den
+    else:
+        r = a - b
+    gq = -alpha * kt2 / (mu * r)
+    dr = 4.0 * (2.0 * q - kt2) - 4.0 * alpha * beta - 2.0 * q * (beta / alpha + alpha / beta)
+    return gq, gq * (0.5 / (q - kl2) - dr / r)
+
+
+@njit(cache=True)
+def _main_d(K, a, b, radius, model, kl2, kt2, mu, coef, n_main, skip0):
+    """Main harmonics (of `_main`) and their K-derivative at complex K, analytic; the m = 0
+    harmonic is left out when skip0."""
+    g = 2.0 * math.pi / a
+    t = 0j
+    dt = 0j
+    lo = 0 if model == 2 else -n_main
+    hi = 1 if model == 2 else n_main
+    for m in range(lo, hi):
+        if m == 0 and skip0:
+            continue
+        x = K + m * g
+        q = x * x
+        gq, dg = _compliance_d(q, kl2, kt2, mu)
+        f, df = _ff2_d(q, radius, model, coef)
+        t += gq * f
+        dt += (dg * f + gq * df) * 2.0 * x
+    return t / (a * b), dt / (a * b)
+
+
+@njit(cache=True)
+def _pole_free_d(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
+    """D(K) R_0(K) of `_pole_free` and its K-derivative, analytic. The m = 0 harmonic times R_0
+    is -alpha_0 kT^2 F_0 / (mu a b) (R_0 cancels), the rest of D is multiplied out."""
+    q0 = K * K
+    al0 = _vert(q0, kl2)
+    be0 = _vert(q0, kt2)
+    c0 = 2.0 * q0 - kt2
+    rr = c0 * c0 - 4.0 * q0 * al0 * be0
+    drr = 4.0 * c0 - 4.0 * al0 * be0 - 2.0 * q0 * (be0 / al0 + al0 / be0)
+    f0, df0 = _ff2_d(q0, radius, model, coef)
+    sc = -kt2 / (mu * a * b)
+    p0 = sc * al0 * f0
+    dp0 = sc * (0.5 * f0 / al0 + al0 * df0)
+    mo, dmo = _main_d(K, a, b, radius, model, kl2, kt2, mu, coef, n_main, True)
+    dr_ = iz - mo - (r0 + (K - k_re) * dr0)
+    val = dr_ * rr - p0
+    der = (-dmo - dr0) * rr + (dr_ * drr - dp0) * 2.0 * K
+    return val, der
+
+
+@njit(cache=True)
+def _newton_d(kk, n_iter, tol, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
+    """Newton on D(K) R_0(K) with the analytic derivative (`_pole_free_d`) from kk; stops
+    when |step| <= tol |K|. Returns (K, last step)."""
+    step = 0j
+    for _ in range(n_iter):
+        f, df = _pole_free_d(kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0)
+        step = f / df
+        kk = kk - step
+        if abs(step) <= tol * abs(kk):
+            break
+    return kk, step
+
+
+@njit(cache=True)
+def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g):
+    """Acceptance of a Newton root: finite, converged (last step <= 1e-7 |K|), on the same side
+    of every branch point of the main harmonics as the real-axis root, not growing."""
+    ok = math.isfinite(kk.real) and math.isfinite(kk.imag) and abs(step) <= 1e-7 * abs(kk)
+    for m in range(m_lo, m_hi):
+        for e0 in (kt_s, kl_s, -kt_s, -kl_s):
+            e = e0 - m * g
+            if (kk.real > e) != (k_re > e):
+                ok = False
+    if kk.imag < -1e-9 * abs(kk):
+        ok = False
+    return ok
 
 
 @njit(cache=True)
@@ -992,45 +1115,61 @@ def solve_grid(
                 n_newton = N_NEWTON
                 if abs(d0.imag) <= 1e-14 * abs(iz):
                     n_newton = 0  # lossless bound root: already exact on the real axis
-                n_stages = N_LOSS_STAGES if eta_sub > 0.0 else 1
-                for stage in range(1, n_stages + 1):
-                    eta_s = eta_sub * stage / n_stages
-                    fac = cmath.sqrt(1.0 - 1j * eta_s)
-                    kl2_s = (w / (cl * fac)) ** 2
-                    kt2_s = (w / (ct * fac)) ** 2
-                    mu_s = mu * (1.0 - 1j * eta_s)
-                    if n_newton > 0:
-                        kk, step = _newton(
-                            kk,
-                            n_newton,
-                            NEWTON_TOL,
-                            hstep,
-                            k_re,
-                            a,
-                            b,
-                            radius,
-                            model,
-                            kl2_s,
-                            kt2_s,
-                            mu_s,
-                            coef,
-                            n_main,
-                            iz,
-                            r0,
-                            dr0,
-                        )
-                ok = (
-                    math.isfinite(kk.real)
-                    and math.isfinite(kk.imag)
-                    and abs(step) <= 1e-7 * abs(kk)
-                )
-                for m in range(m_lo, m_hi):
-                    for e0 in (kt_s, kl_s, -kt_s, -kl_s):
-                        e = e0 - m * g
-                        if (kk.real > e) != (k_re > e):
-                            ok = False
-                if kk.imag < -1e-9 * abs(kk):
-                    ok = False
+                ok = False
+                if n_newton > 0 and N_LOSS_STAGES == 1:
+                    # Newton with the analytic slope (quadratic convergence); if it is not
+                    # accepted, the difference-slope Newton below decides as before
+                    kk, step = _newton_d(
+                        kk,
+                        N_NEWTON_D,
+                        NEWTON_TOL,
+                        k_re,
+                        a,
+                        b,
+                        radius,
+                        model,
+                        kl2,
+                        kt2,
+                        muc,
+                        coef,
+                        n_main,
+                        iz,
+                        r0,
+                        dr0,
+                    )
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
+                    if not ok:
+                        kk = k_re + 0j
+                        step = 0j
+                if not ok:
+                    n_stages = N_LOSS_STAGES if eta_sub > 0.0 else 1
+                    for stage in range(1, n_stages + 1):
+                        eta_s = eta_sub * stage / n_stages
+                        fac = cmath.sqrt(1.0 - 1j * eta_s)
+                        kl2_s = (w / (cl * fac)) ** 2
+                        kt2_s = (w / (ct * fac)) ** 2
+                        mu_s = mu * (1.0 - 1j * eta_s)
+                        if n_newton > 0:
+                            kk, step = _newton(
+                                kk,
+                                n_newton,
+                                NEWTON_TOL,
+                                hstep,
+                                k_re,
+                                a,
+                                b,
+                                radius,
+                                model,
+                                kl2_s,
+                                kt2_s,
+                                mu_s,
+                                coef,
+                                n_main,
+                                iz,
+                                r0,
+                                dr0,
+                            )
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
                 fo = False
                 if not ok:
                     kk = k_first
