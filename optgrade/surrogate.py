@@ -1102,11 +1102,9 @@ def solve_grid(
                 prev_k[br] = k_re
                 hstep = 1e-6 * pi / a
                 r0, dr0 = _rest(k_re, a, table, k0, dk, wi, wt)
-                m0 = _main(k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
-                dm0 = (
-                    _main(k_re + hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
-                    - _main(k_re - hstep + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main)
-                ) / (2.0 * hstep)
+                m0, dm0 = _main_d(
+                    k_re + 0j, a, b, radius, model, kl2, kt2, muc, coef, n_main, False
+                )
                 d0 = iz - m0 - r0
                 dd0 = -(dm0 + dr0)
                 k_first = k_re + 1j * (-d0.imag / dd0.real)
