@@ -20,8 +20,6 @@ import datetime as _dt
 import json
 import math
 import os
-import tempfile
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -29,39 +27,18 @@ import numpy as np
 
 import objectives
 from optgrade import __version__, fabrication, profiles
+from optgrade._atomic import atomic_write
+from optgrade.propagation import CHANNELS
+from optgrade.study import SITE_CAUTION
 
 __all__ = ["SITE_CAUTION", "export_layout", "export_trial"]
 
-SITE_CAUTION = (
-    "CAUTION: simplified model (adiabatic surrogate on a homogeneous elastic half-space); soil "
-    "layering and soil-structure coupling are not represented. This layout is a starting point "
-    "for design only: it must be verified by a qualified engineer and follow local codes."
-)
 BENDING_NOTE = ("Rods are modelled in axial motion only; their bending modes (coupling to "
                 "horizontal motion) are not represented.")
-CHANNEL_ORDER = ("transmitted_surface", "reflected_surface", "forward_shear",
-                 "forward_compressional", "backward_shear", "backward_compressional", "absorbed")
-
-
-def _atomic_write(path: Path, write: Callable[[Path], None]) -> Path:
-    """Call ``write(tmp)`` on a temporary file next to ``path`` and move it into place."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix, dir=path.parent)
-    os.close(fd)
-    try:
-        write(Path(tmp))
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual mode
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
 
 
 def _write_text(path: Path, text: str) -> Path:
-    return _atomic_write(path, lambda p: p.write_text(text, encoding="utf-8"))
+    return atomic_write(path, lambda p: p.write_text(text, encoding="utf-8"))
 
 
 def _clean(a: Any) -> list:
@@ -73,9 +50,9 @@ def _trace_dict(trace: Any) -> dict[str, Any]:
         return trace.to_dict()
     return {
         "frequency_hz": _clean(trace.frequency),
-        "fractions": {c: _clean(trace.fractions[c]) for c in CHANNEL_ORDER},
-        "position_m": {c: _clean(trace.position[c]) for c in CHANNEL_ORDER},
-        "angle_deg": {c: _clean(trace.angle[c]) for c in CHANNEL_ORDER},
+        "fractions": {c: _clean(trace.fractions[c]) for c in CHANNELS},
+        "position_m": {c: _clean(trace.position[c]) for c in CHANNELS},
+        "angle_deg": {c: _clean(trace.angle[c]) for c in CHANNELS},
         "eps_max": _clean(trace.eps_max),
         "is_adiabatic": [bool(v) for v in trace.is_adiabatic],
     }
@@ -172,7 +149,7 @@ def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: 
     msp.add_text(f"ELEVATION  {title}  (mm; resonator index below each labelled rod)",
                  height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(
         (x[0], y0 - 7 * text_h))
-    return _atomic_write(Path(path), lambda p: doc.saveas(p))
+    return atomic_write(Path(path), lambda p: doc.saveas(p))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -219,7 +196,7 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
         fig.savefig(p, dpi=110, format="png")
 
     try:
-        return _atomic_write(Path(path), save)
+        return atomic_write(Path(path), save)
     finally:
         plt.close(fig)
 

@@ -54,16 +54,9 @@ from typing import Any
 import numpy as np
 
 from optgrade import _fullwave_kernel as _k
+from optgrade.propagation import CHANNELS
+from optgrade.study import SITE_CAUTION
 
-CHANNELS = (
-    "transmitted_surface",
-    "reflected_surface",
-    "forward_shear",
-    "forward_compressional",
-    "backward_shear",
-    "backward_compressional",
-    "absorbed",
-)
 BULK = CHANNELS[2:6]
 
 
@@ -1133,5 +1126,3 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
     )
 
 
-SITE_CAUTION = ("Simplified model: soil layering and coupling are not represented; any design "
-                "must be verified by a qualified engineer and follow local codes.")

@@ -17,12 +17,13 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
-import tempfile
 from dataclasses import dataclass, field
 from decimal import Decimal, InvalidOperation, localcontext
 from pathlib import Path
 
 import numpy as np
+
+from optgrade._atomic import write_text
 
 __all__ = [
     "COLUMNS",
@@ -248,20 +249,6 @@ def _shortest(value: float, scale: Decimal) -> str:
     return text
 
 
-def _write_atomic(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def write_table(
     layout: Layout,
     path: str | os.PathLike,
@@ -319,7 +306,7 @@ def write_table(
     for i in range(layout.n_resonators):
         fields = [str(i)] + [_shortest(float(cols[c][i]), _SCALE[c]) for c in COLUMNS[1:]]
         lines.append(",".join(fields))
-    _write_atomic(path, "\n".join(lines) + "\n")
+    write_text(path, "\n".join(lines) + "\n")
     return path
 
 

@@ -31,6 +31,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 __all__ = [
+    "SITE_CAUTION",
     "CHANNELS",
     "GOAL_NAMES",
     "LIMITS",
@@ -46,6 +47,14 @@ __all__ = [
     "study_from_dict",
     "study_from_text",
 ]
+
+#: Caution carried by every site-scale output (physics.md section 8); one wording everywhere.
+SITE_CAUTION = (
+    "CAUTION (site scale): simplified model (thin axial rods on a homogeneous elastic half-space, "
+    "adiabatic propagation); soil layering and the coupling of the posts to the ground are not "
+    "represented. Treat the result as a starting point only: any design must be verified by a "
+    "qualified engineer and follow local codes."
+)
 
 #: Wanted-channel names accepted by ``[goal] channel``.
 CHANNELS = (

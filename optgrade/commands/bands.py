@@ -21,23 +21,19 @@ import csv
 import io
 import json
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from optgrade._atomic import write_text
 from optgrade.commands import add_study_argument, open_study, quantity_type
 from optgrade.errors import StudyError
+from optgrade.study import SITE_CAUTION
 
 __all__ = ["add_parser", "run", "run_bands", "SITE_CAUTION"]
 
 #: Printed and written for site-scale studies (physics.md section 8).
-SITE_CAUTION = (
-    "CAUTION: simplified model (thin rods on a homogeneous elastic half-space); soil layering "
-    "and soil-structure coupling are not represented. Any site design must be verified by a "
-    "qualified engineer and follow local codes."
-)
 
 RADIATING = ("forward_shear", "forward_compressional", "backward_shear", "backward_compressional")
 SHARES = RADIATING + ("absorbed",)
@@ -213,17 +209,6 @@ def bands_to_csv(bands) -> str:
     return buf.getvalue()
 
 
-def _write_atomic(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
 def run_bands(
     study: Any,
     height: float,
@@ -255,8 +240,8 @@ def run_bands(
     out.mkdir(parents=True, exist_ok=True)
     scale = getattr(study.meta, "scale", None)
     doc = bands_to_json(bands, getattr(study.meta, "name", ""), scale)
-    _write_atomic(out / "bands.json", json.dumps(doc, indent=1))
-    _write_atomic(out / "bands.csv", bands_to_csv(bands))
+    write_text(out / "bands.json", json.dumps(doc, indent=1))
+    write_text(out / "bands.csv", bands_to_csv(bands))
     if figure:
         from optgrade._plot_bands import plot_bands
 

@@ -15,16 +15,11 @@ import sys
 from typing import Any
 
 from optgrade.commands import add_study_argument, open_study
-from optgrade.study import Study, first_resonance_range
+from optgrade.study import SITE_CAUTION, Study, first_resonance_range
 
 __all__ = ["SITE_CAUTION", "add_parser", "derived_figures", "run", "study_warnings"]
 
 #: Caution carried by every site-scale output (physics.md section 8).
-SITE_CAUTION = (
-    "CAUTION (site scale): simplified model; soil layering and the coupling of the posts to the "
-    "ground are not represented. Any design must be verified by a qualified engineer and follow "
-    "local codes."
-)
 
 #: Standard gravity (m/s^2) for self-weight checks.
 GRAVITY = 9.80665

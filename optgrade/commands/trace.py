@@ -14,26 +14,19 @@ section 6) and writes
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from optgrade._atomic import save_figure, write_json
 from optgrade.commands import add_study_argument, open_study
 from optgrade.errors import StudyError
+from optgrade.study import SITE_CAUTION
 
 __all__ = ["SITE_CAUTION", "add_parser", "run", "run_trace"]
 
 #: Printed and written for site-scale studies (physics.md section 8).
-SITE_CAUTION = (
-    "CAUTION: simplified model (thin rods on a homogeneous elastic half-space, adiabatic "
-    "propagation); soil layering and soil-structure coupling are not represented. Any site "
-    "design must be verified by a qualified geotechnical/structural engineer and follow local "
-    "codes."
-)
 
 FIGURES = ("elevation.png", "dispersion.png", "channel_map.png", "fractions.png")
 
@@ -60,34 +53,6 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
     parser.add_argument("--no-figures", action="store_true", help="write trace.json only")
     parser.set_defaults(handler=run)
     return parser
-
-
-def _write_json_atomic(path: Path, payload: dict) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(payload, fh, indent=1, allow_nan=False)
-            fh.write("\n")
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _save_atomic(fig: Any, path: Path) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".png", dir=path.parent)
-    os.close(fd)
-    try:
-        fig.savefig(tmp, dpi=130)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 def _rod_resonances(study: Any, layout: Any) -> np.ndarray | None:
@@ -141,7 +106,7 @@ def run_trace(study: Any, layout: Any, out: Path, *, model: str | None = None,
     if is_site:
         payload["caution"] = SITE_CAUTION
     out.mkdir(parents=True, exist_ok=True)
-    _write_json_atomic(out / "trace.json", payload)
+    write_json(out / "trace.json", payload)
 
     if is_figures:
         import matplotlib
@@ -155,23 +120,23 @@ def run_trace(study: Any, layout: Any, out: Path, *, model: str | None = None,
         note = " (site scale: see caution in trace.json)" if is_site else ""
         fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
         pt.plot_elevation(ax, layout, title=f"{study.meta.name}: layout elevation{note}")
-        _save_atomic(fig, out / "elevation.png")
+        save_figure(fig, out / "elevation.png")
         plt.close(fig)
 
         fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
         pt.plot_local_dispersion(ax, layout, modes, freq, cr=cr,
                                  rod_resonance=_rod_resonances(study, layout), trace=tr)
-        _save_atomic(fig, out / "dispersion.png")
+        save_figure(fig, out / "dispersion.png")
         plt.close(fig)
 
         fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
         pt.plot_channel_map(ax, tr, layout)
-        _save_atomic(fig, out / "channel_map.png")
+        save_figure(fig, out / "channel_map.png")
         plt.close(fig)
 
         fig, ax = plt.subplots(figsize=(9, 4.5), layout="constrained")
         pt.plot_fractions(ax, tr, goal_channel=goal if goal in tr.fractions else None)
-        _save_atomic(fig, out / "fractions.png")
+        save_figure(fig, out / "fractions.png")
         plt.close(fig)
 
     # summary

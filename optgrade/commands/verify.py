@@ -15,14 +15,13 @@ channels and compares them with the surrogate's 2-D line model. Writes
 from __future__ import annotations
 
 import argparse
-import json
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from optgrade._atomic import save_figure, write_json
 from optgrade.commands import add_study_argument, open_study
 from optgrade.errors import StudyError
 
@@ -57,33 +56,6 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
     return parser
 
 
-def _write_json_atomic(path: Path, payload: dict) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(payload, fh, indent=1, allow_nan=False)
-            fh.write("\n")
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _save_atomic(fig: Any, path: Path, dpi: int = 130) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent)
-    os.close(fd)
-    try:
-        fig.savefig(tmp, dpi=dpi)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
                is_animation: bool = True, is_lattice: bool = True, console: Any = None) -> dict:
     """Verify ``layout`` for ``study`` and write verify.json and the figures into ``out``.
@@ -91,7 +63,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     Returns the JSON payload. The same function backs the command line.
     """
     from optgrade import _plot_fullwave as pf
-    from optgrade.fullwave import CHANNELS, SITE_CAUTION, rods_of, verify
+    from optgrade.fullwave import CHANNELS, rods_of, verify
+    from optgrade.study import SITE_CAUTION
 
     say = console.print if console is not None else (lambda *a, **k: None)
     ver = verify(study, layout, quality="fast" if is_fast else "normal",
@@ -116,7 +89,7 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     if is_site:
         payload["caution"] = SITE_CAUTION
     out.mkdir(parents=True, exist_ok=True)
-    _write_json_atomic(out / "verify.json", payload)
+    write_json(out / "verify.json", payload)
 
     import matplotlib
 
@@ -128,7 +101,7 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     pf.plot_comparison(fig, ver, lattice)
     note = " (site scale: see caution in verify.json)" if is_site else ""
     fig.suptitle(f"{study.meta.name}: full-wave 2-D check against the surrogate{note}")
-    _save_atomic(fig, out / "comparison.png")
+    save_figure(fig, out / "comparison.png")
     plt.close(fig)
 
     run_rec, grid = ver.run, ver.grid
@@ -136,7 +109,7 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     fig = plt.figure(figsize=(11, min(14.0, 1.0 + 4 * (10.5 * aspect + 0.6))),
                      layout="constrained")
     pf.plot_snapshots(fig, run_rec.snapshots, run_rec.snapshot_times, grid, rods)
-    _save_atomic(fig, out / "snapshots.png")
+    save_figure(fig, out / "snapshots.png")
     plt.close(fig)
     n_files = 3
     if is_animation:
@@ -169,7 +142,7 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     if ver.agreement is None:
         say(f"[yellow]no surrogate comparison[/]: {ver.info.get('surrogate_error')}")
     if is_site:
-        say(f"[yellow]CAUTION: {SITE_CAUTION}[/]")
+        say(f"[yellow]{SITE_CAUTION}[/]")
     say(f"wrote {out / 'verify.json'} and {n_files - 1} figure files")
     return payload
 
