@@ -1,5 +1,6 @@
 """Goal ``channel``: mean fraction of the incoming power sent into the wanted channel over the
-band (study.goal.channel), with the worst frequency in the details."""
+band (study.goal.channel; ``blocking`` means the insertion blocking of objectives/blocking.py),
+with the worst frequency in the details."""
 
 from __future__ import annotations
 
@@ -15,7 +16,7 @@ class ChannelFraction(Objective):
     direction = "maximize"
 
     def evaluate(self, trace, layout, study, context) -> ObjectiveValue:
-        frac = np.nan_to_num(wanted_fraction(trace, study.goal.channel), nan=0.0)
+        frac = np.nan_to_num(wanted_fraction(trace, study.goal.channel, layout, study), nan=0.0)
         f = np.asarray(trace.frequency, dtype=float)
         i = int(np.argmin(frac))
         return ObjectiveValue(

@@ -1,4 +1,5 @@
-"""Goal ``worst``: the wanted-channel fraction at the worst frequency of the band."""
+"""Goal ``worst``: the wanted-channel fraction at the worst frequency of the band (``blocking``:
+the insertion blocking of objectives/blocking.py)."""
 
 from __future__ import annotations
 
@@ -14,7 +15,7 @@ class WorstChannelFraction(Objective):
     direction = "maximize"
 
     def evaluate(self, trace, layout, study, context) -> ObjectiveValue:
-        frac = np.nan_to_num(wanted_fraction(trace, study.goal.channel), nan=0.0)
+        frac = np.nan_to_num(wanted_fraction(trace, study.goal.channel, layout, study), nan=0.0)
         i = int(np.argmin(frac))
         return ObjectiveValue(
             float(frac[i]),

@@ -57,6 +57,84 @@ def test_channel_worst_blocking_by_hand():
     assert blk.score == pytest.approx(bl.score)
 
 
+def test_lossy_rayleigh_wavenumber_against_correspondence_principle():
+    """Complex Rayleigh wavenumber of a damped half-space. With the same loss factor eta on both
+    Lame moduli every speed scales by (1 - i eta)^(1/2) and the Rayleigh equation depends only
+    on their (real) ratio, so by the elastic-viscoelastic correspondence principle (R. M.
+    Christensen, *Theory of Viscoelasticity*, 1982, ch. 2 -- from memory)
+    kR = kR0 (1 - i eta)^(-1/2), i.e. Im kR ~ (eta / 2) kR0. kR0 from the lossless root of
+    optgrade.halfspace (Achenbach 1973, sec. 5.11); the complex root must also zero the
+    Rayleigh function of optgrade.halfspace taken with the complex speeds."""
+    from objectives._common import lossy_rayleigh_wavenumber
+    from optgrade.halfspace import Substrate, rayleigh_function
+
+    f = np.array([30.0, 55.0, 80.0])
+    for cl, ct, eta in [(6320.0, 3130.0, 0.0), (6320.0, 3130.0, 0.01), (400.0, 200.0, 0.04)]:
+        sub = Substrate(1800.0, cl, ct, eta)
+        k = lossy_rayleigh_wavenumber(f, *sub.complex_speeds)
+        k0 = 2 * np.pi * f / sub.cr
+        assert k == pytest.approx(k0 / np.sqrt(1 - 1j * eta), rel=1e-9)
+        assert k.imag == pytest.approx(eta / 2 * k0, rel=eta + 1e-12, abs=1e-15)
+        w = 2 * np.pi * f
+        scale = np.abs(w / sub.complex_speeds[1]) ** 4
+        assert np.all(np.abs(rayleigh_function(k, w, *sub.complex_speeds)) < 1e-8 * scale)
+
+
+def test_blocking_lossless_is_plain_one_minus_transmitted():
+    """Lossless substrate: T_bare = 1, so the insertion blocking is the old 1 - T_array, in the
+    blocking goal and in the channel/worst goals with channel = "blocking"."""
+    s = fake_study(goal__channel="blocking")
+    assert s.substrate.loss_factor == 0.0
+    tr = _trace(F, backward_shear=[0.2, 0.8, 0.6, 0.4])
+    bl = objectives.get("blocking").evaluate(tr, LAYOUT, s, CTX)
+    assert bl.score == pytest.approx(np.mean([0.2, 0.8, 0.6, 0.4]))
+    assert bl.details["mean_bare_transmitted"] == 1.0
+    assert objectives.get("channel").evaluate(tr, LAYOUT, s, CTX).score == pytest.approx(bl.score)
+    assert objectives.get("worst").evaluate(tr, LAYOUT, s, CTX).score == pytest.approx(0.2)
+
+
+def test_blocking_on_lossy_ground_discounts_the_bare_ground():
+    """Lossy substrate, hand-built traces: a row that transmits exactly what the bare ground
+    does over the same length, T_bare = exp(-2 Im kR L) with Im kR = kR0 Im (1 - i eta)^(-1/2)
+    (correspondence principle, see above), blocks nothing; one that transmits half of it blocks
+    0.5; the plain transmitted fraction stays in the details."""
+    eta = 0.04
+    s = fake_study(substrate__loss_factor=eta, goal__channel="blocking")
+    from optgrade.halfspace import rayleigh_speed
+
+    k0 = 2 * np.pi * F / rayleigh_speed(s.substrate.cl, s.substrate.ct)
+    t_bare = np.exp(-2 * (k0 * (1 - 1j * eta) ** -0.5).imag * LAYOUT.length)
+    assert np.all(t_bare < 0.9)  # the bare ground alone would look like "blocking" > 0.1
+    for factor, expect in [(1.0, 0.0), (0.5, 0.5), (1.5, 0.0)]:
+        tr = _trace(F, absorbed=1.0 - factor * t_bare)
+        v = objectives.get("blocking").evaluate(tr, LAYOUT, s, CTX)
+        assert v.score == pytest.approx(expect, abs=1e-9)
+        assert v.details["mean_transmitted"] == pytest.approx(np.mean(factor * t_bare))
+        ch = objectives.get("channel").evaluate(tr, LAYOUT, s, CTX)
+        assert ch.score == pytest.approx(expect, abs=1e-9)
+
+
+@pytest.mark.slow
+def test_vanishing_resonators_on_lossy_site_ground_block_nothing():
+    """Site example (soil loss factor 0.04, 60 m row): the bare ground alone transmits only a
+    few per cent, so the plain 1 - transmitted is near 1 for any layout. A row of vanishing
+    resonators (1 cm stubs, no head mass: first rod resonance far above the band) traced
+    through the real surrogate and march must score ~0 insertion blocking (within 0.02)."""
+    from pathlib import Path
+
+    from optgrade.propagation import trace_study
+    from optgrade.study import load_study
+    from optgrade.surrogate import surrogate_for_study
+
+    s = load_study(Path(__file__).resolve().parent.parent / "studies" /
+                   "site_ground_barrier.toml")
+    lay = layout_from_cells(np.full(30, 0.01), 2.0, 0.25, 0.0, 0.05)
+    tr = trace_study(s, lay, surrogate_for_study(s))
+    v = objectives.get("blocking").evaluate(tr, lay, s, CTX)
+    assert v.details["mean_blocked_plain"] > 0.9
+    assert v.score < 0.02
+
+
 def test_angle_window_counts_only_power_inside():
     s = fake_study(goal__angle_window_deg=(-60.0, -30.0))
     tr = _trace(F, backward_shear=[0.5, 0.5, 0.5, 0.5])
