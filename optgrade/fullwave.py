@@ -54,6 +54,7 @@ from typing import Any
 import numpy as np
 
 from optgrade import _fullwave_kernel as _k
+from optgrade.halfspace import rayleigh_speed
 from optgrade.propagation import CHANNELS
 from optgrade.study import SITE_CAUTION
 
@@ -63,17 +64,6 @@ BULK = CHANNELS[2:6]
 # --------------------------------------------------------------------------------------------
 # Physics: small pure functions
 # --------------------------------------------------------------------------------------------
-
-
-def rayleigh_speed(cl: float, ct: float) -> float:
-    """Rayleigh-wave speed (m/s) of a half-space with bulk speeds ``cl``, ``ct`` (m/s).
-
-    Uses ``optgrade.halfspace.rayleigh_speed`` (root of the Rayleigh equation; Lord Rayleigh
-    1885, Achenbach 1973).
-    """
-    from optgrade.halfspace import rayleigh_speed as _root
-
-    return float(_root(float(cl), float(ct)))
 
 
 def rayleigh_mode(z: np.ndarray, omega: np.ndarray, cl: float, ct: float, rho: float,
