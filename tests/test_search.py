@@ -3,7 +3,8 @@ owner, Ctrl-C), resume without duplicates or losses, command-line errors.
 
 Most checks use the stand-in physics of tests/search_helpers.py (a quarter-wave conversion
 rule) so that they test the search machinery in seconds; the checks on the real example studies
-are marked slow.
+are marked slow. The planted case with the real pipeline
+(`test_search_finds_planted_band_solver_case`) takes its answer from direct band solves.
 """
 
 from __future__ import annotations
@@ -81,6 +82,129 @@ def test_search_beats_random_on_planted_case(tmp_path):
         best_rnd.append(r.best_score)
     assert np.mean(best_tpe) > np.mean(best_rnd)
     assert np.mean(best_tpe) >= planted_score - 0.06
+
+
+PLANTED_TOML = """
+[study]
+name = "planted_linear_block"
+seed = 5
+description = "Invented test case: aluminium block, one row of 1 mm aluminium pins."
+scale = "bench"
+
+[substrate]
+material = "aluminium_6061"
+loss_factor = 0.0
+
+[resonator]
+material = "aluminium_6061"
+loss_factor = 0.0
+diameter = "1 mm"
+row_pitch = "4 mm"
+
+[layout]
+count = [40, 40]
+height = ["4 mm", "10 mm"]
+height_step = "0.05 mm"
+spacing = "3 mm"
+profile = "linear"
+entry = "short"
+max_length = "130 mm"
+
+[goal]
+band = [{lo}, {hi}]
+n_frequencies = 48
+channel = "blocking"
+required_fraction = 0.9
+model = "lattice"
+
+[goal.weights]
+channel = 1.0
+
+[fabrication]
+min_gap = "1 mm"
+height_tolerance = "0.02 mm"
+slenderness_max = 15
+
+[search]
+trials = 60
+workers = 2
+sampler = "auto"
+"""
+
+#: Allowed shortfall of the blocking score (band mean, 48 frequencies) of the planted case.
+PLANTED_TOL = 0.1
+
+
+def _lower_cutoff(study, height, freq):
+    """Band solver: (last frequency with, first frequency without) the lower branch of a cell,
+    scanning up from the bottom of ``freq``."""
+    from optgrade.bands import Cell, solve_bands
+    from optgrade.halfspace import Substrate
+    from optgrade.resonators import Rod
+
+    sb, rs = study.substrate, study.resonator
+    cell = Cell(Substrate(sb.density, sb.cl, sb.ct, sb.loss_factor),
+                Rod(rs.youngs_modulus, rs.density, rs.diameter, rs.loss_factor),
+                height, study.layout.spacing[0], rs.row_pitch, 0.0)
+    has_lower = np.isfinite(solve_bands(cell, freq, model="lattice").branches[0].k)
+    assert has_lower[0] and not has_lower.all()
+    i = int(np.argmin(has_lower))
+    return float(freq[i - 1]), float(freq[i])
+
+
+def test_search_finds_planted_band_solver_case(tmp_path):
+    """Planted case answered by the band solver, not by the search pipeline.
+
+    Invented study: 40 aluminium pins (1 mm) at 3 mm on an aluminium half-space, wave entering
+    at the short end, goal: block the surface wave. Direct root solves
+    (`optgrade.bands.solve_bands`, no tables, 29 frequencies 100-300 kHz) give where the lower
+    (surface) branch of the 5 mm and of the 8 mm cell ends. Each cut-off must lie below that
+    pin's quarter-wave resonance c_bar / (4 h) of a fixed-free rod (R. D. Blevins, *Formulas for
+    Natural Frequency and Mode Shape*, 1979, axial modes of a fixed-free bar -- from memory): the
+    surface branch bends over below the resonance. Between the two cut-offs every frequency
+    enters the 5 mm end on the lower branch and meets a cell without one before the 8 mm end,
+    so the linear row 5 -> 8 mm turns it back: blocking 1. The goal band is that interval,
+    shrunk by 2 % of its width at each end and kept inside the grid points that bracket the
+    cut-offs.
+
+    Tolerance 0.1 (PLANTED_TOL) of the band-mean blocking: the pipeline uses the tabulated
+    surrogate, whose cut-offs differ slightly from the direct solve, and places turning points at
+    cell resolution, so a few of the 48 frequencies next to the band ends may leak; 0.1 allows
+    about five. Asserted: the planted row scores >= 1 - 0.1 through the real pipeline, and the
+    seeded TPE search (60 trials, 2 workers) finds a layout scoring at least the planted
+    score - 0.1."""
+    import objectives
+    from optgrade.layout import layout_from_cells
+    from optgrade.propagation import trace_study
+    from optgrade.study import study_from_text
+
+    probe = study_from_text(PLANTED_TOML.format(lo='"150 kHz"', hi='"250 kHz"'))
+    freq = np.linspace(100e3, 300e3, 29)
+    h_short, h_tall = 5e-3, 8e-3
+    short = _lower_cutoff(probe, h_short, freq)
+    tall = _lower_cutoff(probe, h_tall, freq)
+    c_bar = np.sqrt(probe.resonator.youngs_modulus / probe.resonator.density)
+    assert short[1] <= c_bar / (4 * h_short) and tall[1] <= c_bar / (4 * h_tall)
+    lo, hi = tall[1], short[0]  # surely past the tall cut-off, surely below the short one
+    assert hi > lo
+    lo, hi = lo + 0.02 * (hi - lo), hi - 0.02 * (hi - lo)
+    study = study_from_text(PLANTED_TOML.format(lo=f'"{lo / 1e3:.4f} kHz"',
+                                                hi=f'"{hi / 1e3:.4f} kHz"'))
+
+    n = study.layout.count[0]
+    h = np.round(np.linspace(h_short, h_tall, n) / study.layout.height_step) * \
+        study.layout.height_step
+    planted_layout = layout_from_cells(h, study.layout.spacing[0], study.resonator.diameter, 0.0,
+                                       study.fabrication.height_tolerance)
+    tr = trace_study(study, planted_layout)
+    planted = objectives.get("channel").evaluate(tr, planted_layout, study,
+                                                 objectives.EvalContext()).score
+    assert planted >= 1.0 - PLANTED_TOL
+
+    out = search.run_search(study, tmp_path / "out", n_trials=60, n_jobs=2,
+                            storage=f"sqlite:///{tmp_path / 'p.db'}", show_progress=False,
+                            do_export=False)
+    assert out.best_score >= planted - PLANTED_TOL
 
 
 def test_existing_study_needs_resume_and_resume_tops_up(tmp_path):
@@ -272,20 +396,32 @@ def _example(name, **changes):
     return s.model_copy(update={"meta": meta})
 
 
+#: Seeds per example for the comparison with random sampling (see the test's docstring).
+EXAMPLE_SEEDS = {"bench_backward_shear.toml": (3,), "site_ground_barrier.toml": (1, 2, 3, 4, 5, 6)}
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("name", ["bench_backward_shear.toml", "site_ground_barrier.toml"])
 def test_examples_search_beats_random(tmp_path, name):
     """Both example studies, real surrogate and propagation: the default sampler's best score
-    after 40 trials beats random sampling's with the same count and seed (2 workers; the
-    search is deterministic for a given seed, worker count and chunk size)."""
-    s = _example(name, seed=3)
-    runs = {}
-    for sampler in ("auto", "random"):
-        url = f"sqlite:///{tmp_path / (sampler + '.db')}"
-        runs[sampler] = search.run_search(s, tmp_path / sampler, n_trials=40, n_jobs=2,
-                                          storage=url, sampler=sampler, show_progress=False,
-                                          do_export=False)
-    assert runs["auto"].best_score > runs["random"].best_score
+    after 40 trials beats random sampling's with the same count and seeds (2 workers; the
+    search is deterministic for a given seed, worker count and chunk size), by at least 0.02
+    on the mean over the seeds.
+
+    Bench example: one seed (3). Site example: mean over seeds 1-6, because with the blocking
+    goal measured against the bare damped ground the sampler's edge there is small against the
+    seed-to-seed spread (measured: TPE better on 4 of 6 seeds, worse on seed 3; figures in
+    docs/search.md)."""
+    best = {"auto": [], "random": []}
+    for seed in EXAMPLE_SEEDS[name]:
+        s = _example(name, seed=seed)
+        for sampler in best:
+            url = f"sqlite:///{tmp_path / f'{sampler}{seed}.db'}"
+            out = search.run_search(s, tmp_path / f"{sampler}{seed}", n_trials=40, n_jobs=2,
+                                    storage=url, sampler=sampler, show_progress=False,
+                                    do_export=False)
+            best[sampler].append(out.best_score)
+    assert np.mean(best["auto"]) > np.mean(best["random"]) + 0.02
 
 
 def test_journal_storage_and_resume(tmp_path):
