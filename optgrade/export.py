@@ -26,6 +26,7 @@ from typing import Any
 import numpy as np
 
 import objectives
+from objectives._common import wanted_fraction
 from optgrade import __version__, fabrication, profiles
 from optgrade._atomic import atomic_write
 from optgrade.propagation import CHANNELS
@@ -292,10 +293,8 @@ def export_layout(
 
 def _report(study, layout, trace, summary, violations, is_site, trial_number) -> str:
     f = np.asarray(trace.frequency, dtype=float)
-    wanted = (1.0 - np.asarray(trace.fractions["transmitted_surface"], float)
-              if study.goal.channel == "blocking"
-              else np.asarray(trace.fractions[study.goal.channel], float))
-    wanted = np.nan_to_num(wanted, nan=0.0)
+    # the same measure the search scored (blocking: insertion effect against bare ground)
+    wanted = np.nan_to_num(wanted_fraction(trace, study.goal.channel, layout, study), nan=0.0)
     meets = wanted >= study.goal.required_fraction
     h = np.asarray(layout.height) * 1e3
     lines = [
