@@ -24,6 +24,8 @@ if TYPE_CHECKING:  # pragma: no cover
     from optgrade.study import Study
 
 __all__ = [
+    "open_layout",
+    "open_output_dir",
     "COMMAND_NAMES",
     "add_study_argument",
     "open_study",
@@ -88,3 +90,26 @@ def open_study(path: str | Path) -> Study:
     from optgrade.study import load_study
 
     return load_study(path)
+
+
+def open_layout(path: str | Path, option_name: str = "--layout"):
+    """Read a machining table (``optgrade.layout.read_table``) for a subcommand.
+
+    Table defects become :class:`StudyError` messages prefixed with the option name (exit 2).
+    """
+    from optgrade.layout import TableError, read_table
+
+    try:
+        return read_table(path)
+    except TableError as exc:
+        raise StudyError([f"{option_name}: {m}" for m in exc.messages]) from None
+    except (OSError, ValueError) as exc:
+        raise StudyError([f"{option_name}: {path}: {exc}"]) from None
+
+
+def open_output_dir(path: str | Path, option_name: str = "--out") -> Path:
+    """Check that an output folder can be used (it may not exist yet; a file there is refused)."""
+    out = Path(path)
+    if out.exists() and not out.is_dir():
+        raise StudyError([f"{option_name}: {out} exists and is not a folder"])
+    return out

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from optgrade._atomic import save_figure, write_json
-from optgrade.commands import add_study_argument, open_study
+from optgrade.commands import add_study_argument, open_layout, open_output_dir, open_study
 from optgrade.errors import StudyError
 from optgrade.study import SITE_CAUTION
 
@@ -162,18 +162,9 @@ def run(args: argparse.Namespace) -> int:
     """Entry point of ``optgrade trace``."""
     from rich.console import Console
 
-    from optgrade.layout import TableError, read_table
-
     study = open_study(args.study)
-    try:
-        layout = read_table(args.layout)
-    except TableError as exc:
-        raise StudyError([f"--layout: {m}" for m in exc.messages]) from None
-    except ValueError as exc:
-        raise StudyError([f"--layout: {args.layout}: {exc}"]) from None
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise StudyError([f"--out: {out} exists and is not a folder"])
+    layout = open_layout(args.layout)
+    out = open_output_dir(args.out)
     a_lo, a_hi = (float(v) for v in study.layout.spacing)
     bad = np.flatnonzero((layout.spacing < a_lo * 0.98) | (layout.spacing > a_hi * 1.02))
     if bad.size:

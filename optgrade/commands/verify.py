@@ -22,8 +22,7 @@ from typing import Any
 import numpy as np
 
 from optgrade._atomic import save_figure, write_json
-from optgrade.commands import add_study_argument, open_study
-from optgrade.errors import StudyError
+from optgrade.commands import add_study_argument, open_layout, open_output_dir, open_study
 
 __all__ = ["add_parser", "run", "run_verify"]
 
@@ -151,18 +150,9 @@ def run(args: argparse.Namespace) -> int:
     """Entry point of ``optgrade verify``."""
     from rich.console import Console
 
-    from optgrade.layout import TableError, read_table
-
     study = open_study(args.study)
-    try:
-        layout = read_table(args.layout)
-    except TableError as exc:
-        raise StudyError([f"--layout: {m}" for m in exc.messages]) from None
-    except (OSError, ValueError) as exc:
-        raise StudyError([f"--layout: {args.layout}: {exc}"]) from None
-    out = Path(args.out)
-    if out.exists() and not out.is_dir():
-        raise StudyError([f"--out: {out} exists and is not a folder"])
+    layout = open_layout(args.layout)
+    out = open_output_dir(args.out)
     console = Console(highlight=False)
     run_verify(study, layout, out, is_fast=args.fast, is_animation=not args.no_animation,
                is_lattice=not args.no_lattice, console=console)
