@@ -22,6 +22,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
+from objectives import BUILTIN as BUILTIN_GOALS
 from optgrade.errors import StudyError
 from optgrade.units import UnitError, format_quantity, parse_quantity
 
@@ -65,16 +66,9 @@ CHANNELS = (
     "blocking",
     "reflected_surface",
 )
-#: Secondary goal names (keys of ``[goal.weights]``, entries of ``[search] objectives``).
-GOAL_NAMES = (
-    "channel",
-    "worst",
-    "blocking",
-    "angle",
-    "compactness",
-    "adiabaticity",
-    "robustness",
-)
+#: Secondary goal names (keys of ``[goal.weights]``, entries of ``[search] objectives``): the
+#: goals registered in ``objectives`` (one list, so a new goal is one file plus one line there).
+GOAL_NAMES = BUILTIN_GOALS
 PROFILES = ("linear", "power", "spline", "free")
 SAMPLERS = ("auto", "tpe", "cmaes", "random", "nsga2")
 
