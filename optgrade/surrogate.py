@@ -388,14 +388,20 @@ def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> N
 # Compiled root kernel: the algorithm of optgrade.bands.solve_points, one point at a time.
 # ---------------------------------------------------------------------------------------
 N_SCAN = 16
-#: coarse scan step (in fine scan points) of the real-axis scan
-SCAN_STRIDE = 1
 #: Newton stops at |step| <= NEWTON_TOL |K| (quadratic convergence with a forward-difference
 #: slope of relative error ~1e-6: the iterate's error is then ~1e-6 of the last step)
 NEWTON_TOL = 1e-8
 #: iterations of the analytic-slope Newton (the difference-slope one keeps N_NEWTON)
 N_NEWTON_D = 4
 MAX_ILLINOIS = 60
+#: Illinois stops when the bracket or the last move is below this fraction of K (the complex
+#: Newton that follows a lossy or leaky root refines K' as well)
+ILLINOIS_TOL = 1e-11
+#: gap continuation: a branch without root stays without root while the closest scan point
+#: keeps this fraction of the margin of the last full scan ...
+GAP_KEEP = 0.5
+#: ... for at most this many frequencies in a row
+GAP_RESCAN = 8
 N_NEWTON = 4
 N_LOSS_STAGES = 1
 
@@ -444,15 +450,15 @@ def _vert(q, k2):
 def _compliance(q, kl2, kt2, mu):
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
-    a = (2.0 * q - kt2) ** 2
+    a = (2.0 * q - kt2) * (2.0 * q - kt2)
     b = 4.0 * q * alpha * beta
     den = a + b
     if abs(den) >= abs(a):
         num = (
-            16.0 * q**3 * (kl2 - kt2)
-            + 8.0 * q**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
-            - 8.0 * q * kt2**3
-            + kt2**4
+            16.0 * q * q * q * (kl2 - kt2)
+            + 8.0 * q * q * kt2 * (3.0 * kt2 - 2.0 * kl2)
+            - 8.0 * q * kt2 * kt2 * kt2
+            + kt2 * kt2 * kt2 * kt2
         )
         r = num / den
     else:
@@ -520,15 +526,42 @@ def _rest(K, a, table, k0, dk, wi, wt):
     d1 = 4.5 * u2 - 5.0 * u
     d2 = -4.5 * u2 + 4.0 * u + 0.5
     d3 = 1.5 * u2 - u
-    val = 0j
-    der = 0j
-    for m in range(4):
-        cm = (c0, c1, c2, c3)[m]
-        dm = (d0, d1, d2, d3)[m]
-        v = (1.0 - wt) * table[j - 1 + m, wi] + wt * table[j - 1 + m, wi + 1]
-        val += cm * v
-        der += dm * v
+    v0 = (1.0 - wt) * table[j - 1, wi] + wt * table[j - 1, wi + 1]
+    v1 = (1.0 - wt) * table[j, wi] + wt * table[j, wi + 1]
+    v2 = (1.0 - wt) * table[j + 1, wi] + wt * table[j + 1, wi + 1]
+    v3 = (1.0 - wt) * table[j + 2, wi] + wt * table[j + 2, wi + 1]
+    val = c0 * v0 + c1 * v1 + c2 * v2 + c3 * v3
+    der = d0 * v0 + d1 * v1 + d2 * v2 + d3 * v3
     return val, sgn * der / dk * a / math.pi
+
+
+@njit(cache=True)
+def _rest_re(K, a, table, k0, dk, wi, wt):
+    """Re Rest at real K (the value of `_rest` only, real part: the real-axis scan's path)."""
+    kap = K * a / math.pi
+    if kap > 1.0:
+        kap = 2.0 - kap
+    t = (kap - k0) / dk
+    j = int(math.floor(t))
+    n = table.shape[0]
+    if j < 1:
+        j = 1
+    if j > n - 3:
+        j = n - 3
+    u = t - j
+    u2 = u * u
+    u3 = u2 * u
+    c0 = -0.5 * u3 + u2 - 0.5 * u
+    c1 = 1.5 * u3 - 2.5 * u2 + 1.0
+    c2 = -1.5 * u3 + 2.0 * u2 + 0.5 * u
+    c3 = 0.5 * u3 - 0.5 * u2
+    w0 = 1.0 - wt
+    return (
+        c0 * (w0 * table[j - 1, wi].real + wt * table[j - 1, wi + 1].real)
+        + c1 * (w0 * table[j, wi].real + wt * table[j, wi + 1].real)
+        + c2 * (w0 * table[j + 1, wi].real + wt * table[j + 1, wi + 1].real)
+        + c3 * (w0 * table[j + 2, wi].real + wt * table[j + 2, wi + 1].real)
+    )
 
 
 @njit(cache=True)
@@ -619,9 +652,20 @@ def _scan_k(js, lo, hi, br):
 def _rayleigh(q, kl2, kt2):
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
-    a = (2.0 * q - kt2) ** 2
+    a = (2.0 * q - kt2) * (2.0 * q - kt2)
     b = 4.0 * q * alpha * beta
     return a - b
+
+
+@njit(cache=True)
+def _rayleigh_d(q, kl2, kt2):
+    """Rayleigh function R(q) of `_rayleigh` and dR/dq (as in `_pole_free_d`)."""
+    alpha = _vert(q, kl2)
+    beta = _vert(q, kt2)
+    c = 2.0 * q - kt2
+    rr = c * c - 4.0 * q * alpha * beta
+    drr = 4.0 * c - 4.0 * alpha * beta - 2.0 * q * (beta / alpha + alpha / beta)
+    return rr, drr
 
 
 @njit(cache=True)
@@ -662,15 +706,15 @@ def _compliance_d(q, kl2, kt2, mu):
     R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha))."""
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
-    a = (2.0 * q - kt2) ** 2
+    a = (2.0 * q - kt2) * (2.0 * q - kt2)
     b = 4.0 * q * alpha * beta
     den = a + b
     if abs(den) >= abs(a):
         num = (
-            16.0 * q**3 * (kl2 - kt2)
-            + 8.0 * q**2 * kt2 * (3.0 * kt2 - 2.0 * kl2)
-            - 8.0 * q * kt2**3
-            + kt2**4
+            16.0 * q * q * q * (kl2 - kt2)
+            + 8.0 * q * q * kt2 * (3.0 * kt2 - 2.0 * kl2)
+            - 8.0 * q * kt2 * kt2 * kt2
+            + kt2 * kt2 * kt2 * kt2
         )
         r = num / den
     else:
@@ -723,24 +767,44 @@ def _pole_free_d(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r
 
 
 @njit(cache=True)
-def _newton_d(kk, n_iter, tol, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
-    """Newton on D(K) R_0(K) with the analytic derivative (`_pole_free_d`) from kk; stops
-    when |step| <= tol |K|. Returns (K, last step)."""
+def _newton_d(
+    kk, n_iter, tol, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0, f0, df0
+):
+    """Newton on D(K) R_0(K) with the analytic derivative (`_pole_free_d`) from kk; the first
+    iteration uses f0, df0 (the function and slope at kk, known to the caller) when df0 != 0.
+    Stops when |step| <= tol |K|, or when the step after the last one, predicted from
+    quadratic convergence (|s_n|^3 / |s_(n-1)|^2), is below tol |K| and the loop would have
+    made that iteration (one evaluation fewer, same acceptance). Returns
+    (K, last step or predicted next step)."""
     step = 0j
-    for _ in range(n_iter):
-        f, df = _pole_free_d(kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0)
+    prev = 0.0
+    for it in range(n_iter):
+        if it == 0 and df0 != 0.0:
+            f, df = f0, df0
+        else:
+            f, df = _pole_free_d(
+                kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
+            )
         step = f / df
         kk = kk - step
-        if abs(step) <= tol * abs(kk):
+        s = abs(step)
+        if s <= tol * abs(kk):
             break
+        # the prediction only stands in for an iteration the loop would still have made,
+        # and only close to the root (|s_n| <= 1e-4 |K|), where convergence is quadratic
+        if it > 0 and it + 1 < n_iter and s < prev and s <= 1e-4 * abs(kk):
+            pred = s * s * s / (prev * prev)
+            if pred <= tol * abs(kk):
+                return kk, pred + 0j
+        prev = s
     return kk, step
 
 
 @njit(cache=True)
-def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g):
-    """Acceptance of a Newton root: finite, converged (last step <= 1e-7 |K|), on the same side
+def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, tol):
+    """Acceptance of a Newton root: finite, converged (last step <= tol |K|), on the same side
     of every branch point of the main harmonics as the real-axis root, not growing."""
-    ok = math.isfinite(kk.real) and math.isfinite(kk.imag) and abs(step) <= 1e-7 * abs(kk)
+    ok = math.isfinite(kk.real) and math.isfinite(kk.imag) and abs(step) <= tol * abs(kk)
     for m in range(m_lo, m_hi):
         for e0 in (kt_s, kl_s, -kt_s, -kl_s):
             e = e0 - m * g
@@ -793,9 +857,8 @@ def _h(
     pole_lo,
     pole_hi,
 ):
-    rv, _ = _rest(K, a, table, k0, dk, wi, wt)
     f = _main_re(K, a, b, radius, model, kl2_0.real, kt2_0.real, mu.real, coef, n_main)
-    f += rv.real - iz.real
+    f += _rest_re(K, a, table, k0, dk, wi, wt) - iz.real
     if pole_lo:
         f *= K - lo
     if pole_hi:
@@ -843,6 +906,10 @@ def solve_grid(
         g = 2.0 * pi / a
         table = slices[ic]
         prev_k = np.zeros(2)
+        pole_sign = np.zeros(2)
+        gap_j = np.full(2, -1, dtype=np.int64)
+        gap_m = np.zeros(2)
+        gap_n = np.zeros(2, dtype=np.int64)
         for jf in range(nf):
             w = w_arr[jf]
             iz = inv_z[ic, jf]
@@ -891,18 +958,22 @@ def solve_grid(
                     pole_lo = p_lo > 0.0
                     pole_hi = True
                 if not hi > lo * (1.0 + 1e-9):
+                    gap_j[br] = -1
                     continue
-                # scan outwards from the Rayleigh pole
-                kprev = 0.0
-                hprev = 0.0
-                h_first = 0.0
+                # the pole-free Re D just off the Rayleigh pole keeps its sign (the sign of the
+                # pole's residue): evaluated once per cell and branch, then reused
+                if pole_sign[br] == 0.0:
+                    u0 = _scan_k(0, lo, hi, br)
+                    h0 = _h(u0, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                    pole_sign[br] = 1.0 if h0 > 0.0 else -1.0
+                s0 = pole_sign[br]
                 found = False
                 ka = 0.0
                 kb = 0.0
                 ha = 0.0
                 hb = 0.0
-                # continuation: bracket around the previous frequency's root, if the pole-side
-                # end keeps the sign found next to the pole (else the full scan below)
+                # continuation: bracket around the previous frequency's root (sign-checked)
                 if jf > 0 and root_real > 0.0:
                     kg = root_real * w / w_arr[jf - 1]
                     dlt = 0.5 * abs(w - w_arr[jf - 1]) / w + 1e-3
@@ -910,202 +981,83 @@ def solve_grid(
                     k2 = kg * (1.0 + dlt) if br == 0 else kg * (1.0 - dlt)
                     inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
                     if inside:
-                        u0 = lo + (hi - lo) * 1e-9 if br == 0 else hi - (hi - lo) * 1e-9
-                        h0 = _h(
-                            u0,
-                            a,
-                            b,
-                            radius,
-                            model,
-                            kl2_0,
-                            kt2_0,
-                            mu,
-                            coef,
-                            n_main,
-                            iz,
-                            table,
-                            k0,
-                            dk,
-                            wi,
-                            wt,
-                            lo,
-                            hi,
-                            pole_lo,
-                            pole_hi,
-                        )
-                        h1 = _h(
-                            k1,
-                            a,
-                            b,
-                            radius,
-                            model,
-                            kl2_0,
-                            kt2_0,
-                            mu,
-                            coef,
-                            n_main,
-                            iz,
-                            table,
-                            k0,
-                            dk,
-                            wi,
-                            wt,
-                            lo,
-                            hi,
-                            pole_lo,
-                            pole_hi,
-                        )
-                        if (h1 > 0.0) == (h0 > 0.0):
-                            h2 = _h(
-                                k2,
-                                a,
-                                b,
-                                radius,
-                                model,
-                                kl2_0,
-                                kt2_0,
-                                mu,
-                                coef,
-                                n_main,
-                                iz,
-                                table,
-                                k0,
-                                dk,
-                                wi,
-                                wt,
-                                lo,
-                                hi,
-                                pole_lo,
-                                pole_hi,
-                            )
-                            if (h2 > 0.0) != (h0 > 0.0):
+                        h1 = _h(k1, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                                table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        if (h1 > 0.0) == (s0 > 0.0):
+                            h2 = _h(k2, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main,
+                                    iz, table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                            if (h2 > 0.0) != (s0 > 0.0):
                                 ka, ha, kb, hb = k1, h1, k2, h2
                                 found = True
-                # scan outwards from the Rayleigh pole on the points of `_scan_k`: every
-                # SCAN_STRIDE-th point first; at the first coarse sign change, the fine points
-                # in between locate the first fine sign change (same bracket as the full fine
-                # scan unless two roots lie between two coarse points)
+                # gap continuation: the branch had no root at the previous frequency, and the
+                # scan point that came closest to a sign change (gap_j) still keeps more than
+                # GAP_KEEP of the margin the last full scan measured there: still no root.
+                # A full scan is forced every GAP_RESCAN frequencies.
+                if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0:
+                    if gap_n[br] < GAP_RESCAN:
+                        kq = _scan_k(gap_j[br], lo, hi, br)
+                        hq = _h(kq, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                                table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        pf = (kq - lo) if pole_lo else 1.0
+                        if pole_hi:
+                            pf *= hi - kq
+                        if s0 * hq / pf > GAP_KEEP * gap_m[br]:
+                            gap_n[br] += 1
+                            continue
+                # full scan outwards from the Rayleigh pole (points clustered at the pole):
+                # the first sign change brackets the root; with none the branch is absent,
+                # and the point closest to a sign change is kept for the gap continuation
                 if not found:
                     kprev = _scan_k(0, lo, hi, br)
-                    h_first = _h(
-                        kprev,
-                        a,
-                        b,
-                        radius,
-                        model,
-                        kl2_0,
-                        kt2_0,
-                        mu,
-                        coef,
-                        n_main,
-                        iz,
-                        table,
-                        k0,
-                        dk,
-                        wi,
-                        wt,
-                        lo,
-                        hi,
-                        pole_lo,
-                        pole_hi,
-                    )
-                    hprev = h_first
-                    jp = 0
-                    while jp < N_SCAN:
-                        jc = min(jp + SCAN_STRIDE, N_SCAN)
-                        K = _scan_k(jc, lo, hi, br)
-                        h = _h(
-                            K,
-                            a,
-                            b,
-                            radius,
-                            model,
-                            kl2_0,
-                            kt2_0,
-                            mu,
-                            coef,
-                            n_main,
-                            iz,
-                            table,
-                            k0,
-                            dk,
-                            wi,
-                            wt,
-                            lo,
-                            hi,
-                            pole_lo,
-                            pole_hi,
-                        )
-                        if (h > 0.0) != (h_first > 0.0):
+                    hprev = s0
+                    jbest = -1
+                    mbest = 0.0
+                    for jp in range(1, N_SCAN + 1):
+                        K = _scan_k(jp, lo, hi, br)
+                        h = _h(K, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                               table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        if (h > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = kprev, hprev, K, h
-                            for jf2 in range(jp + 1, jc):
-                                Kf = _scan_k(jf2, lo, hi, br)
-                                hf = _h(
-                                    Kf,
-                                    a,
-                                    b,
-                                    radius,
-                                    model,
-                                    kl2_0,
-                                    kt2_0,
-                                    mu,
-                                    coef,
-                                    n_main,
-                                    iz,
-                                    table,
-                                    k0,
-                                    dk,
-                                    wi,
-                                    wt,
-                                    lo,
-                                    hi,
-                                    pole_lo,
-                                    pole_hi,
-                                )
-                                if (hf > 0.0) != (h_first > 0.0):
-                                    kb, hb = Kf, hf
-                                    break
-                                ka, ha = Kf, hf
                             found = True
                             break
-                        kprev, hprev, jp = K, h, jc
+                        pf = (K - lo) if pole_lo else 1.0
+                        if pole_hi:
+                            pf *= hi - K
+                        marg = s0 * h / pf
+                        if jbest < 0 or marg < mbest:
+                            jbest = jp
+                            mbest = marg
+                        kprev, hprev = K, h
+                    if not found:
+                        gap_j[br] = jbest
+                        gap_m[br] = mbest
+                        gap_n[br] = 0
                 if not found:
                     continue
+                gap_j[br] = -1
+                # Illinois (regula falsi); the first bracket end may carry only the pole sign
+                if ka == _scan_k(0, lo, hi, br):
+                    ha = _h(ka, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
                 for _ in range(MAX_ILLINOIS):
                     den = hb - ha
                     if den != 0.0:
                         kc = (ka * hb - kb * ha) / den
                     else:
                         kc = 0.5 * (ka + kb)
-                    hc = _h(
-                        kc,
-                        a,
-                        b,
-                        radius,
-                        model,
-                        kl2_0,
-                        kt2_0,
-                        mu,
-                        coef,
-                        n_main,
-                        iz,
-                        table,
-                        k0,
-                        dk,
-                        wi,
-                        wt,
-                        lo,
-                        hi,
-                        pole_lo,
-                        pole_hi,
-                    )
+                    hc = _h(kc, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
+                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
                     if (hc > 0.0) != (hb > 0.0):
                         ka, ha = kb, hb
                     else:
                         ha = 0.5 * ha
                     moved = abs(kc - kb)
                     kb, hb = kc, hc
-                    if abs(kb - ka) <= 1e-13 * abs(kc) or hc == 0.0 or moved <= 1e-13 * abs(kc):
+                    if (
+                        abs(kb - ka) <= ILLINOIS_TOL * abs(kc)
+                        or hc == 0.0
+                        or moved <= ILLINOIS_TOL * abs(kc)
+                    ):
                         break
                 k_re = kb
                 prev_k[br] = k_re
@@ -1124,8 +1076,11 @@ def solve_grid(
                     n_newton = 0  # lossless bound root: already exact on the real axis
                 ok = False
                 if n_newton > 0 and N_LOSS_STAGES == 1:
-                    # Newton with the analytic slope (quadratic convergence); if it is not
-                    # accepted, the difference-slope Newton below decides as before
+                    # Newton with the analytic slope (quadratic convergence) from the real-axis
+                    # root, as the direct solver; if it is not accepted, the difference-slope
+                    # Newton below decides as before
+                    # the first step's D R_0 and slope at k_re from d0, dd0 (computed above)
+                    rr0, drr0 = _rayleigh_d(k_re * k_re + 0j, kl2, kt2)
                     kk, step = _newton_d(
                         kk,
                         N_NEWTON_D,
@@ -1143,8 +1098,10 @@ def solve_grid(
                         iz,
                         r0,
                         dr0,
+                        d0 * rr0,
+                        dd0 * rr0 + d0 * drr0 * 2.0 * k_re,
                     )
-                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, 1e-7)
                     if not ok:
                         kk = k_re + 0j
                         step = 0j
@@ -1176,7 +1133,7 @@ def solve_grid(
                                 r0,
                                 dr0,
                             )
-                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, 1e-7)
                 fo = False
                 if not ok:
                     kk = k_first
