@@ -396,7 +396,7 @@ N_NEWTON_D = 4
 MAX_ILLINOIS = 60
 #: Illinois stops when the bracket or the last move is below this fraction of K (the complex
 #: Newton that follows a lossy or leaky root refines K' as well)
-ILLINOIS_TOL = 1e-11
+ILLINOIS_TOL = 1e-9
 #: gap continuation: a branch without root stays without root while the closest scan point
 #: keeps this fraction of the margin of the last full scan ...
 GAP_KEEP = 0.5
@@ -411,7 +411,7 @@ _COEF = np.array(
 )
 
 
-def _n_taylor_terms(x_max: float, tol: float = 1e-18) -> int:
+def _n_taylor_terms(x_max: float, tol: float = 1e-16) -> int:
     """Number of Taylor terms of 2 J1(x)/x in x^2 (series of `_COEF`) after which every
     further term is below ``tol`` for |x| <= ``x_max`` (the terms fall faster than
     geometrically once they fall, so the tail is of the order of the first dropped term).
@@ -703,11 +703,15 @@ def _ff2_d(q, radius, model, coef):
 @njit(cache=True)
 def _compliance_d(q, kl2, kt2, mu):
     """G(q) of `_compliance` and dG/dq: G'/G = 1/(2 alpha^2) - R'/R with
-    R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha))."""
+    R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha)),
+    where beta/alpha + alpha/beta = (2q - kL^2 - kT^2)/(alpha beta) (alpha^2 = q - kL^2,
+    beta^2 = q - kT^2): three complex divisions in all."""
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
-    a = (2.0 * q - kt2) * (2.0 * q - kt2)
-    b = 4.0 * q * alpha * beta
+    c = 2.0 * q - kt2
+    a = c * c
+    ab = alpha * beta
+    b = 4.0 * q * ab
     den = a + b
     if abs(den) >= abs(a):
         num = (
@@ -720,8 +724,11 @@ def _compliance_d(q, kl2, kt2, mu):
     else:
         r = a - b
     gq = -alpha * kt2 / (mu * r)
-    dr = 4.0 * (2.0 * q - kt2) - 4.0 * alpha * beta - 2.0 * q * (beta / alpha + alpha / beta)
-    return gq, gq * (0.5 / (q - kl2) - dr / r)
+    al2 = q - kl2
+    # dR times alpha beta, and G'/G = (r ab - 2 dR_ab al2) / (2 al2 r ab)
+    dr_ab = (4.0 * c - 4.0 * ab) * ab - 2.0 * q * (2.0 * q - kl2 - kt2)
+    rab = r * ab
+    return gq, gq * (rab - 2.0 * dr_ab * al2) / (2.0 * al2 * rab)
 
 
 @njit(cache=True)
@@ -753,8 +760,9 @@ def _pole_free_d(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r
     al0 = _vert(q0, kl2)
     be0 = _vert(q0, kt2)
     c0 = 2.0 * q0 - kt2
-    rr = c0 * c0 - 4.0 * q0 * al0 * be0
-    drr = 4.0 * c0 - 4.0 * al0 * be0 - 2.0 * q0 * (be0 / al0 + al0 / be0)
+    ab0 = al0 * be0
+    rr = c0 * c0 - 4.0 * q0 * ab0
+    drr = 4.0 * c0 - 4.0 * ab0 - 2.0 * q0 * (2.0 * q0 - kl2 - kt2) / ab0
     f0, df0 = _ff2_d(q0, radius, model, coef)
     sc = -kt2 / (mu * a * b)
     p0 = sc * al0 * f0
@@ -906,6 +914,8 @@ def solve_grid(
         g = 2.0 * pi / a
         table = slices[ic]
         prev_k = np.zeros(2)
+        prev2_k = np.zeros(2)
+        prev3_k = np.zeros(2)
         pole_sign = np.zeros(2)
         gap_j = np.full(2, -1, dtype=np.int64)
         gap_m = np.zeros(2)
@@ -946,6 +956,10 @@ def solve_grid(
                 continue
             for br in range(2):
                 root_real = prev_k[br]
+                root_prev2 = prev2_k[br]
+                root_prev3 = prev3_k[br]
+                prev3_k[br] = root_prev2
+                prev2_k[br] = root_real
                 prev_k[br] = 0.0
                 if br == 0:
                     lo = kr
@@ -973,22 +987,47 @@ def solve_grid(
                 kb = 0.0
                 ha = 0.0
                 hb = 0.0
-                # continuation: bracket around the previous frequency's root (sign-checked)
+                # continuation: bracket around the previous frequency's root (sign-checked).
+                # First a narrow bracket about the linear extrapolation of the last two roots,
+                # half-width three times the error the same extrapolation made one step back
+                # (needs three previous roots), then the wide bracket about the proportional
+                # guess K w / w_prev
                 if jf > 0 and root_real > 0.0:
                     kg = root_real * w / w_arr[jf - 1]
                     dlt = 0.5 * abs(w - w_arr[jf - 1]) / w + 1e-3
-                    k1 = kg * (1.0 - dlt) if br == 0 else kg * (1.0 + dlt)
-                    k2 = kg * (1.0 + dlt) if br == 0 else kg * (1.0 - dlt)
-                    inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
-                    if inside:
+                    n_try = 1
+                    kg_n = kg
+                    dlt_n = dlt
+                    if jf > 2 and root_prev2 > 0.0 and root_prev3 > 0.0:
+                        w1, w2, w3 = w_arr[jf - 1], w_arr[jf - 2], w_arr[jf - 3]
+                        kl = root_real + (root_real - root_prev2) * (w - w1) / (w1 - w2)
+                        e1 = root_real - (
+                            root_prev2 + (root_prev2 - root_prev3) * (w1 - w2) / (w2 - w3)
+                        )
+                        dlt_n = (3.0 * abs(e1) * ((w - w1) / (w1 - w2)) ** 2) / kl + 1e-8
+                        if kl > 0.0 and dlt_n < 0.25 * dlt:
+                            kg_n = kl
+                            n_try = 2
+                    for attempt in range(n_try):
+                        kc_ = kg_n if attempt + 1 < n_try else kg
+                        dl_ = dlt_n if attempt + 1 < n_try else dlt
+                        k1 = kc_ * (1.0 - dl_) if br == 0 else kc_ * (1.0 + dl_)
+                        k2 = kc_ * (1.0 + dl_) if br == 0 else kc_ * (1.0 - dl_)
+                        inside = (min(k1, k2) > lo + 1e-9 * lo) and (
+                            max(k1, k2) < hi - 1e-9 * hi
+                        )
+                        if not inside:
+                            continue
                         h1 = _h(k1, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
                                 table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
-                        if (h1 > 0.0) == (s0 > 0.0):
-                            h2 = _h(k2, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main,
-                                    iz, table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
-                            if (h2 > 0.0) != (s0 > 0.0):
-                                ka, ha, kb, hb = k1, h1, k2, h2
-                                found = True
+                        if (h1 > 0.0) != (s0 > 0.0):
+                            continue
+                        h2 = _h(k2, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main,
+                                iz, table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        if (h2 > 0.0) != (s0 > 0.0):
+                            ka, ha, kb, hb = k1, h1, k2, h2
+                            found = True
+                            break
                 # gap continuation: the branch had no root at the previous frequency, and the
                 # scan point that came closest to a sign change (gap_j) still keeps more than
                 # GAP_KEEP of the margin the last full scan measured there: still no root.
