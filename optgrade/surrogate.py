@@ -19,14 +19,21 @@ algorithm as `optgrade.bands.solve_points`, exact closed-form T_0 and T_-1 at co
 tables only have to carry the smooth part). Accuracy against the direct solver is measured in
 tests/test_surrogate.py (|dK'|/K' < 1e-3 on bound branches, K'' within 5 %).
 
-Kernel speed (benchmarks/bench_dispersion.py): the real-axis bracket is continued from the
-previous frequency's root (sign-checked, else the full scan); the complex Newton steps on
-D R_0 use the analytic slope (`_pole_free_d`) with the iteration count and acceptance test of
-the difference-slope Newton of `optgrade.bands`, which remains the fallback; the main terms'
-slope at the real-axis root is analytic; the disc form-factor series keeps only the terms the
-call's arguments can need. Against the difference-slope kernel on 60 random cells x 256
-frequencies of both example studies: the same roots and first-order points, Newton roots equal
-within 3e-10 (relative), one first-order point within 1e-4.
+Kernel speed (benchmarks/bench_dispersion.py). Real axis: the pole-side sign of the pole-free
+Re D is kept per cell and branch; the bracket is continued from the previous frequencies' roots
+(first a narrow one about their linear extrapolation, then the wide one about K w / w_prev,
+sign-checked, else the full scan); a branch that had no root stays without root while the scan
+point that came closest to a sign change keeps GAP_KEEP of its margin (one evaluation instead
+of the scan; a full scan at least every GAP_RESCAN frequencies); Illinois stops at ILLINOIS_TOL.
+Complex Newton on D R_0: analytic slope (`_pole_free_d`), iteration count and acceptance of the
+difference-slope Newton of `optgrade.bands`, whose first step reuses D and its slope at the
+real-axis root and whose last iteration is skipped where quadratic convergence predicts it below
+the stop (never the final one, so acceptance is unchanged); the difference-slope Newton remains
+the fallback where the analytic one came within FD_RETRY. The disc form-factor series stops as
+early as each argument allows. Checked against the earlier kernel of this file (full scans,
+plain Newton from the real-axis root) on 8 x 60 random cells x 256 frequencies of each example
+study: no branch appears or vanishes, the same first-order points, K' within 1.1e-8 and K''
+within 1.1e-5 (relative).
 
 Disk cache: one memory-mappable ``<key>.npy`` (complex table) plus ``<key>.json`` (key, format
 version, grids, SHA-256 of the table bytes) under ``cache_dir`` (default: environment variable
@@ -169,7 +176,7 @@ class Surrogate:
         self.n_main = main_orders(self.spacing_range[1], kr_max, model)
         # Taylor terms of the disc form factor that the kernel's arguments can need
         x_max = 1.5 * (self.n_main + 1) * 2 * np.pi / (0.98 * self.spacing_range[0]) * rod.radius
-        self._coef = _COEF[: _n_taylor_terms(x_max)].copy()
+        self._coef = _series_table(_n_taylor_terms(x_max))
         from optgrade.bands import validity_warnings
 
         #: model-validity notes for the whole table range (plain sentences)
@@ -394,6 +401,9 @@ NEWTON_TOL = 1e-8
 #: iterations of the analytic-slope Newton (the difference-slope one keeps N_NEWTON)
 N_NEWTON_D = 4
 MAX_ILLINOIS = 60
+#: the difference-slope Newton runs when the analytic-slope one is not accepted but its last
+#: step was below this fraction of |K| (see solve_grid)
+FD_RETRY = 1e-5
 #: Illinois stops when the bracket or the last move is below this fraction of K (the complex
 #: Newton that follows a lossy or leaky root refines K' as well)
 ILLINOIS_TOL = 1e-9
@@ -421,6 +431,29 @@ def _n_taylor_terms(x_max: float, tol: float = 1e-16) -> int:
         if abs(_COEF[n - 1]) * x2 ** (n - 1) < tol and x2 / (4.0 * n * (n + 1)) < 0.5:
             return n
     return int(_COEF.size)
+
+
+def _series_table(n_max: int, tol: float = 1e-16) -> np.ndarray:
+    """Coefficients of 2 J1(x)/x in x^2 (first n_max of `_COEF`) followed by, for n = 1 ..
+    n_max terms, the largest |x^2| for which n terms meet the criterion of `_n_taylor_terms`
+    (the kernel's series then stop as early as each argument allows; the last is inf)."""
+    thr = np.empty(n_max)
+    for n in range(1, n_max + 1):
+        c = abs(_COEF[n - 1])
+        lim = (tol / c) ** (1.0 / (n - 1)) if n > 1 else 0.0
+        thr[n - 1] = min(lim, 2.0 * n * (n + 1))
+    thr[-1] = np.inf
+    return np.concatenate([_COEF[:n_max], thr])
+
+
+@njit(cache=True)
+def _n_used(coef, ax2):
+    """Number of series terms needed at |x^2| = ax2 (see `_series_table`)."""
+    n_max = coef.size // 2
+    n = 4 if n_max > 4 else n_max
+    while n < n_max and coef[n_max + n - 1] < ax2:
+        n += 1
+    return n
 
 
 @njit(cache=True)
@@ -473,8 +506,9 @@ def _ff2(q, radius, model, coef):
         return 1.0 + 0j
     x2 = q * radius * radius
     if model == 0:
-        s = coef[coef.size - 1] * x2 + coef[coef.size - 2]
-        for i in range(coef.size - 3, -1, -1):
+        n = _n_used(coef, abs(x2))
+        s = coef[n - 1] * x2 + coef[n - 2]
+        for i in range(n - 3, -1, -1):
             s = s * x2 + coef[i]
     else:
         if abs(x2) < 1e-12:
@@ -606,8 +640,9 @@ def _ff2_re(q, radius, model, coef):
         return 1.0
     x2 = q * radius * radius
     if model == 0:
-        s = coef[coef.size - 1] * x2 + coef[coef.size - 2]
-        for i in range(coef.size - 3, -1, -1):
+        n = _n_used(coef, abs(x2))
+        s = coef[n - 1] * x2 + coef[n - 2]
+        for i in range(n - 3, -1, -1):
             s = s * x2 + coef[i]
     else:
         if x2 < 1e-12:
@@ -682,7 +717,7 @@ def _ff2_d(q, radius, model, coef):
     r2 = radius * radius
     x2 = q * r2
     if model == 0:
-        n = coef.size
+        n = _n_used(coef, abs(x2))
         s = coef[n - 1] + 0j
         ds = 0j
         for i in range(n - 2, -1, -1):
@@ -1114,6 +1149,7 @@ def solve_grid(
                 if abs(d0.imag) <= 1e-14 * abs(iz):
                     n_newton = 0  # lossless bound root: already exact on the real axis
                 ok = False
+                tried_d = False
                 if n_newton > 0 and N_LOSS_STAGES == 1:
                     # Newton with the analytic slope (quadratic convergence) from the real-axis
                     # root, as the direct solver; if it is not accepted, the difference-slope
@@ -1142,9 +1178,12 @@ def solve_grid(
                     )
                     ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, 1e-7)
                     if not ok:
+                        # the difference-slope Newton below decides only where the analytic one
+                        # came close (last step below FD_RETRY |K|): elsewhere both fail alike
+                        tried_d = not (abs(step) <= FD_RETRY * abs(kk))
                         kk = k_re + 0j
                         step = 0j
-                if not ok:
+                if not ok and not tried_d:
                     n_stages = N_LOSS_STAGES if eta_sub > 0.0 else 1
                     for stage in range(1, n_stages + 1):
                         eta_s = eta_sub * stage / n_stages
