@@ -546,8 +546,9 @@ def _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
 
 
 @njit(cache=True)
-def _rest(K, a, table, k0, dk, wi, wt):
-    """Rest and dRest/dK at real K from one cell's table slice (n_kappa, n_w)."""
+def _kappa_cell(K, a, n, k0, dk):
+    """Catmull-Rom stencil start j, offset u and mirror sign of real K on the kappa grid (Rest is
+    symmetric about the zone edge kappa = 1)."""
     kap = K * a / math.pi
     sgn = 1.0
     if kap > 1.0:
@@ -555,19 +556,32 @@ def _rest(K, a, table, k0, dk, wi, wt):
         sgn = -1.0
     t = (kap - k0) / dk
     j = int(math.floor(t))
-    n = table.shape[0]
     if j < 1:
         j = 1
     if j > n - 3:
         j = n - 3
-    u = t - j
-    # Catmull-Rom weights and derivatives
+    return j, t - j, sgn
+
+
+@njit(cache=True)
+def _cr_weights(u):
+    """Catmull-Rom weights of the four stencil points at offset u."""
     u2 = u * u
     u3 = u2 * u
-    c0 = -0.5 * u3 + u2 - 0.5 * u
-    c1 = 1.5 * u3 - 2.5 * u2 + 1.0
-    c2 = -1.5 * u3 + 2.0 * u2 + 0.5 * u
-    c3 = 0.5 * u3 - 0.5 * u2
+    return (
+        -0.5 * u3 + u2 - 0.5 * u,
+        1.5 * u3 - 2.5 * u2 + 1.0,
+        -1.5 * u3 + 2.0 * u2 + 0.5 * u,
+        0.5 * u3 - 0.5 * u2,
+    )
+
+
+@njit(cache=True)
+def _rest(K, a, table, k0, dk, wi, wt):
+    """Rest and dRest/dK at real K from one cell's table slice (n_kappa, n_w)."""
+    j, u, sgn = _kappa_cell(K, a, table.shape[0], k0, dk)
+    c0, c1, c2, c3 = _cr_weights(u)
+    u2 = u * u
     d0 = -1.5 * u2 + 2.0 * u - 0.5
     d1 = 4.5 * u2 - 5.0 * u
     d2 = -4.5 * u2 + 4.0 * u + 0.5
@@ -584,23 +598,8 @@ def _rest(K, a, table, k0, dk, wi, wt):
 @njit(cache=True)
 def _rest_re(K, a, table, k0, dk, wi, wt):
     """Re Rest at real K (the value of `_rest` only, real part: the real-axis scan's path)."""
-    kap = K * a / math.pi
-    if kap > 1.0:
-        kap = 2.0 - kap
-    t = (kap - k0) / dk
-    j = int(math.floor(t))
-    n = table.shape[0]
-    if j < 1:
-        j = 1
-    if j > n - 3:
-        j = n - 3
-    u = t - j
-    u2 = u * u
-    u3 = u2 * u
-    c0 = -0.5 * u3 + u2 - 0.5 * u
-    c1 = 1.5 * u3 - 2.5 * u2 + 1.0
-    c2 = -1.5 * u3 + 2.0 * u2 + 0.5 * u
-    c3 = 0.5 * u3 - 0.5 * u2
+    j, u, _ = _kappa_cell(K, a, table.shape[0], k0, dk)
+    c0, c1, c2, c3 = _cr_weights(u)
     w0 = 1.0 - wt
     return (
         c0 * (w0 * table[j - 1, wi].real + wt * table[j - 1, wi + 1].real)
@@ -922,6 +921,12 @@ def _h(
 
 
 @njit(cache=True)
+def _hx(K, hx):
+    """`_h` at K with the other arguments packed in the tuple hx (as built in `solve_grid`)."""
+    return _h(K, *hx)
+
+
+@njit(cache=True)
 def solve_grid(
     w_arr,
     inv_z,
@@ -1021,12 +1026,33 @@ def solve_grid(
                 if not hi > lo * (1.0 + 1e-9):
                     gap_j[br] = -1
                     continue
+                # everything the real-axis function needs besides K, for `_hx`
+                hx = (
+                    a,
+                    b,
+                    radius,
+                    model,
+                    kl2_0,
+                    kt2_0,
+                    mu,
+                    coef,
+                    n_main,
+                    iz,
+                    table,
+                    k0,
+                    dk,
+                    wi,
+                    wt,
+                    lo,
+                    hi,
+                    pole_lo,
+                    pole_hi,
+                )
                 # the pole-free Re D just off the Rayleigh pole keeps its sign (the sign of the
                 # pole's residue): evaluated once per cell and branch, then reused
                 if pole_sign[br] == 0.0:
                     u0 = _scan_k(0, lo, hi, br)
-                    h0 = _h(u0, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                    h0 = _hx(u0, hx)
                     pole_sign[br] = 1.0 if h0 > 0.0 else -1.0
                 s0 = pole_sign[br]
                 found = False
@@ -1060,17 +1086,13 @@ def solve_grid(
                         dl_ = dlt_n if attempt + 1 < n_try else dlt
                         k1 = kc_ * (1.0 - dl_) if br == 0 else kc_ * (1.0 + dl_)
                         k2 = kc_ * (1.0 + dl_) if br == 0 else kc_ * (1.0 - dl_)
-                        inside = (min(k1, k2) > lo + 1e-9 * lo) and (
-                            max(k1, k2) < hi - 1e-9 * hi
-                        )
+                        inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
                         if not inside:
                             continue
-                        h1 = _h(k1, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                                table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        h1 = _hx(k1, hx)
                         if (h1 > 0.0) != (s0 > 0.0):
                             continue
-                        h2 = _h(k2, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main,
-                                iz, table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        h2 = _hx(k2, hx)
                         if (h2 > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = k1, h1, k2, h2
                             found = True
@@ -1082,8 +1104,7 @@ def solve_grid(
                 if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0:
                     if gap_n[br] < GAP_RESCAN:
                         kq = _scan_k(gap_j[br], lo, hi, br)
-                        hq = _h(kq, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                                table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        hq = _hx(kq, hx)
                         pf = (kq - lo) if pole_lo else 1.0
                         if pole_hi:
                             pf *= hi - kq
@@ -1100,8 +1121,7 @@ def solve_grid(
                     mbest = 0.0
                     for jp in range(1, N_SCAN + 1):
                         K = _scan_k(jp, lo, hi, br)
-                        h = _h(K, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                               table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                        h = _hx(K, hx)
                         if (h > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = kprev, hprev, K, h
                             found = True
@@ -1123,16 +1143,14 @@ def solve_grid(
                 gap_j[br] = -1
                 # Illinois (regula falsi); the first bracket end may carry only the pole sign
                 if ka == _scan_k(0, lo, hi, br):
-                    ha = _h(ka, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                    ha = _hx(ka, hx)
                 for _ in range(MAX_ILLINOIS):
                     den = hb - ha
                     if den != 0.0:
                         kc = (ka * hb - kb * ha) / den
                     else:
                         kc = 0.5 * (ka + kb)
-                    hc = _h(kc, a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz,
-                            table, k0, dk, wi, wt, lo, hi, pole_lo, pole_hi)
+                    hc = _hx(kc, hx)
                     if (hc > 0.0) != (hb > 0.0):
                         ka, ha = kb, hb
                     else:
