@@ -24,7 +24,8 @@ Re D is kept per cell and branch; the bracket is continued from the previous fre
 (first a narrow one about their linear extrapolation, then the wide one about K w / w_prev,
 sign-checked, else the full scan); a branch that had no root stays without root while the scan
 point that came closest to a sign change keeps GAP_KEEP of its margin (one evaluation instead
-of the scan; a full scan at least every GAP_RESCAN frequencies); Illinois stops at ILLINOIS_TOL.
+of the scan; a full scan at least every GAP_RESCAN frequencies, and always after a frequency
+step above GAP_STEP); Illinois stops at ILLINOIS_TOL.
 Complex Newton on D R_0: analytic slope (`_pole_free_d`), iteration count and acceptance of the
 difference-slope Newton of `optgrade.bands`, whose first step reuses D and its slope at the
 real-axis root and whose last iteration is skipped where quadratic convergence predicts it below
@@ -410,8 +411,10 @@ ILLINOIS_TOL = 1e-9
 #: gap continuation: a branch without root stays without root while the closest scan point
 #: keeps this fraction of the margin of the last full scan ...
 GAP_KEEP = 0.5
-#: ... for at most this many frequencies in a row
+#: ... for at most this many frequencies in a row, and only across frequency steps of at most
+#: this fraction of the frequency
 GAP_RESCAN = 8
+GAP_STEP = 0.01
 N_NEWTON = 4
 N_LOSS_STAGES = 1
 
@@ -1006,6 +1009,8 @@ def solve_grid(
             zone = 0.5 * g if model == 2 else g
             if kr >= zone:
                 continue
+            # the gap continuation below trusts only fine frequency steps
+            small_step = jf > 0 and abs(w - w_arr[jf - 1]) <= GAP_STEP * w
             for br in range(2):
                 root_real = prev_k[br]
                 root_prev2 = prev2_k[br]
@@ -1101,7 +1106,7 @@ def solve_grid(
                 # scan point that came closest to a sign change (gap_j) still keeps more than
                 # GAP_KEEP of the margin the last full scan measured there: still no root.
                 # A full scan is forced every GAP_RESCAN frequencies.
-                if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0:
+                if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0 and small_step:
                     if gap_n[br] < GAP_RESCAN:
                         kq = _scan_k(gap_j[br], lo, hi, br)
                         hq = _hx(kq, hx)
