@@ -964,6 +964,8 @@ def solve_grid(
     pi = math.pi
     m_lo = 0 if model == 2 else -n_main
     m_hi = 1 if model == 2 else n_main
+    parts = np.zeros(4)  # channel parts and their best harmonic, reset per root
+    best = np.zeros(4)
     for ic in range(nc):
         a = a_arr[ic]
         g = 2.0 * pi / a
@@ -1263,8 +1265,9 @@ def solve_grid(
                 kp = kk.real
                 kl2r = (w / cl) ** 2
                 kt2r = (w / ct) ** 2
-                parts = np.zeros(4)
-                best = np.zeros(4)
+                for ch in range(4):
+                    parts[ch] = 0.0
+                    best[ch] = 0.0
                 for m in range(m_lo, m_hi):
                     kx = kp + m * g
                     xi2 = kx * kx
