@@ -311,7 +311,6 @@ class Surrogate:
         w = 2 * np.pi * freq
         iz = rod_compliance(w[None, :], self.rod, h[:, None], m[:, None])
         idx, wts = _lagrange_weights(self.levels, a)
-        slices = _blend_levels(np.asarray(self.table), idx, wts)
         n_c, n_f = a.size, freq.size
         out_k = np.full((2, n_c, n_f), np.nan + 0j)
         out_sh = np.zeros((2, 5, n_c, n_f))
@@ -323,7 +322,9 @@ class Surrogate:
             w,
             np.ascontiguousarray(iz, dtype=complex),
             a,
-            np.ascontiguousarray(slices),
+            np.asarray(self.table),
+            idx,
+            wts,
             float(self.kappa[0]),
             float(self.dk),
             float(self.omega[0]),
@@ -460,18 +461,15 @@ def _n_used(coef, ax2):
 
 
 @njit(cache=True)
-def _blend_levels(table, idx, wts):
-    """Per-cell table slices: sum_k wts[c, k] table[idx[c, k]] (spacing interpolation)."""
-    nc = idx.shape[0]
-    out = np.zeros((nc, table.shape[1], table.shape[2]), dtype=np.complex128)
-    for c in range(nc):
-        for k in range(idx.shape[1]):
-            wk = wts[c, k]
-            src = table[idx[c, k]]
-            for i in range(table.shape[1]):
-                for j in range(table.shape[2]):
-                    out[c, i, j] += wk * src[i, j]
-    return out
+def _blend_levels(table, idx, wts, c, out):
+    """Cell c's table slice into out: sum_k wts[c, k] table[idx[c, k]] (spacing interpolation)."""
+    out[:, :] = 0.0
+    for k in range(idx.shape[1]):
+        wk = wts[c, k]
+        src = table[idx[c, k]]
+        for i in range(table.shape[1]):
+            for j in range(table.shape[2]):
+                out[i, j] += wk * src[i, j]
 
 
 @njit(cache=True)
@@ -934,7 +932,9 @@ def solve_grid(
     w_arr,
     inv_z,
     a_arr,
-    slices,
+    levels_table,
+    idx,
+    wts,
     k0,
     dk,
     w0,
@@ -960,7 +960,8 @@ def solve_grid(
     """Fill out_k (2, nc, nf), out_sh (2, 5, nc, nf), out_an (2, 4, nc, nf), out_fo (2, nc, nf)."""
     nc = a_arr.size
     nf = w_arr.size
-    nw = slices.shape[2]
+    nw = levels_table.shape[2]
+    table = np.empty((levels_table.shape[1], nw), dtype=np.complex128)  # this cell's Rest
     pi = math.pi
     m_lo = 0 if model == 2 else -n_main
     m_hi = 1 if model == 2 else n_main
@@ -969,7 +970,7 @@ def solve_grid(
     for ic in range(nc):
         a = a_arr[ic]
         g = 2.0 * pi / a
-        table = slices[ic]
+        _blend_levels(levels_table, idx, wts, ic, table)
         prev_k = np.zeros(2)
         prev2_k = np.zeros(2)
         prev3_k = np.zeros(2)
@@ -989,8 +990,8 @@ def solve_grid(
             wt = min(max(t - wi, 0.0), 1.0)
             kl2_0 = (w / cl) ** 2 + 0j
             kt2_0 = (w / ct) ** 2 + 0j
-            kl2 = (w / clc) ** 2
-            kt2 = (w / ctc) ** 2
+            kl2 = (w / clc) * (w / clc)  # complex: a product, not the general power
+            kt2 = (w / ctc) * (w / ctc)
             kr = w / cr
             kt_s = w / ct
             kl_s = w / cl
@@ -1225,8 +1226,8 @@ def solve_grid(
                     for stage in range(1, n_stages + 1):
                         eta_s = eta_sub * stage / n_stages
                         fac = cmath.sqrt(1.0 - 1j * eta_s)
-                        kl2_s = (w / (cl * fac)) ** 2
-                        kt2_s = (w / (ct * fac)) ** 2
+                        kl2_s = (w / (cl * fac)) * (w / (cl * fac))
+                        kt2_s = (w / (ct * fac)) * (w / (ct * fac))
                         mu_s = mu * (1.0 - 1j * eta_s)
                         if n_newton > 0:
                             kk, step = _newton(
