@@ -1079,16 +1079,20 @@ def solve_grid(
                     n_try = 1
                     kg_n = kg
                     dlt_n = dlt
-                    if jf > 2 and root_prev2 > 0.0 and root_prev3 > 0.0:
-                        w1, w2, w3 = w_arr[jf - 1], w_arr[jf - 2], w_arr[jf - 3]
+                    w1 = w_arr[jf - 1]
+                    w2 = w_arr[jf - 2] if jf > 1 else w1
+                    w3 = w_arr[jf - 3] if jf > 2 else w2
+                    # (any frequency order is allowed: repeated frequencies skip this guess)
+                    if root_prev2 > 0.0 and root_prev3 > 0.0 and w1 != w2 and w2 != w3:
                         kl = root_real + (root_real - root_prev2) * (w - w1) / (w1 - w2)
                         e1 = root_real - (
                             root_prev2 + (root_prev2 - root_prev3) * (w1 - w2) / (w2 - w3)
                         )
-                        dlt_n = (3.0 * abs(e1) * ((w - w1) / (w1 - w2)) ** 2) / kl + 1e-8
-                        if kl > 0.0 and dlt_n < 0.25 * dlt:
-                            kg_n = kl
-                            n_try = 2
+                        if kl > 0.0:
+                            dlt_n = (3.0 * abs(e1) * ((w - w1) / (w1 - w2)) ** 2) / kl + 1e-8
+                            if dlt_n < 0.25 * dlt:
+                                kg_n = kl
+                                n_try = 2
                     for attempt in range(n_try):
                         kc_ = kg_n if attempt + 1 < n_try else kg
                         dl_ = dlt_n if attempt + 1 < n_try else dlt
