@@ -1013,7 +1013,7 @@ def solve_grid(
             if kr >= zone:
                 continue
             # the gap continuation below trusts only fine frequency steps
-            small_step = jf > 0 and abs(w - w_arr[jf - 1]) <= GAP_STEP * w
+            is_fine_step = jf > 0 and abs(w - w_arr[jf - 1]) <= GAP_STEP * w
             for br in range(2):
                 root_real = prev_k[br]
                 root_prev2 = prev2_k[br]
@@ -1113,7 +1113,7 @@ def solve_grid(
                 # scan point that came closest to a sign change (gap_j) still keeps more than
                 # GAP_KEEP of the margin the last full scan measured there: still no root.
                 # A full scan is forced every GAP_RESCAN frequencies.
-                if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0 and small_step:
+                if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0 and is_fine_step:
                     if gap_n[br] < GAP_RESCAN:
                         kq = _scan_k(gap_j[br], lo, hi, br)
                         hq = _hx(kq, hx)
@@ -1191,7 +1191,7 @@ def solve_grid(
                 if abs(d0.imag) <= 1e-14 * abs(iz):
                     n_newton = 0  # lossless bound root: already exact on the real axis
                 ok = False
-                tried_d = False
+                skip_fd = False
                 if n_newton > 0 and N_LOSS_STAGES == 1:
                     # Newton with the analytic slope (quadratic convergence) from the real-axis
                     # root, as the direct solver; if it is not accepted, the difference-slope
@@ -1222,10 +1222,10 @@ def solve_grid(
                     if not ok:
                         # the difference-slope Newton below decides only where the analytic one
                         # came close (last step below FD_RETRY |K|): elsewhere both fail alike
-                        tried_d = not (abs(step) <= FD_RETRY * abs(kk))
+                        skip_fd = not (abs(step) <= FD_RETRY * abs(kk))
                         kk = k_re + 0j
                         step = 0j
-                if not ok and not tried_d:
+                if not ok and not skip_fd:
                     n_stages = N_LOSS_STAGES if eta_sub > 0.0 else 1
                     for stage in range(1, n_stages + 1):
                         eta_s = eta_sub * stage / n_stages
