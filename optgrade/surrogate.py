@@ -649,6 +649,21 @@ def _re_compliance(q, kl2, kt2, mu):
 
 
 @njit(cache=True)
+def _im_compliance(q, kl2, kt2, mu):
+    """Im G at real xi^2 = q below kT^2 for a lossless solid, in real arithmetic (the radiating
+    harmonics of the channel split): with p = sqrt(kL^2 - q), s = sqrt(kT^2 - q), c = 2q - kT^2,
+    Im G = p kT^2 / (mu (c^2 + 4 q p s)) below kL^2, and with p = sqrt(q - kL^2) above it
+    Im G = 4 q p^2 s kT^2 / (mu (c^4 + 16 q^2 p^2 s^2)) (same branches as `_vert`)."""
+    c = 2.0 * q - kt2
+    s = math.sqrt(max(kt2 - q, 0.0))
+    if q < kl2:
+        p = math.sqrt(kl2 - q)
+        return p * kt2 / (mu * (c * c + 4.0 * q * p * s))
+    p2 = q - kl2
+    return 4.0 * q * p2 * s * kt2 / (mu * (c * c * c * c + 16.0 * q * q * p2 * s * s))
+
+
+@njit(cache=True)
 def _ff2_re(q, radius, model, coef):
     if model == 2:
         return 1.0
@@ -889,6 +904,18 @@ def _newton(
         if abs(step) <= tol * abs(kk):
             break
     return kk, step
+
+
+@njit(cache=True)
+def _inverse_quadratic(ka, ha, kb, hb, kc, hc):
+    """Root estimate of inverse quadratic interpolation through three points (K, h) with distinct
+    h (kc when two h coincide)."""
+    dab = ha - hb
+    dac = ha - hc
+    dbc = hb - hc
+    if dab == 0.0 or dac == 0.0 or dbc == 0.0:
+        return kc
+    return ka * hb * hc / (dab * dac) - kb * ha * hc / (dab * dbc) + kc * ha * hb / (dac * dbc)
 
 
 @njit(cache=True)
@@ -1158,13 +1185,22 @@ def solve_grid(
                 # Illinois (regula falsi); the first bracket end may carry only the pole sign
                 if ka == _scan_k(0, lo, hi, br):
                     ha = _hx(ka, hx)
-                for _ in range(MAX_ILLINOIS):
+                for it in range(MAX_ILLINOIS):
                     den = hb - ha
                     if den != 0.0:
                         kc = (ka * hb - kb * ha) / den
                     else:
                         kc = 0.5 * (ka + kb)
                     hc = _hx(kc, hx)
+                    if it == 0 and hc != 0.0:
+                        # after the first secant step: if inverse quadratic interpolation through
+                        # the three points moves less than ILLINOIS_TOL, its value is the root
+                        kq = _inverse_quadratic(ka, ha, kb, hb, kc, hc)
+                        if abs(kq - kc) <= ILLINOIS_TOL * abs(kc) and min(ka, kb) < kq < max(
+                            ka, kb
+                        ):
+                            kb = kq
+                            break
                     if (hc > 0.0) != (hb > 0.0):
                         ka, ha = kb, hb
                     else:
@@ -1283,9 +1319,8 @@ def solve_grid(
                     xi2 = kx * kx
                     if xi2 >= kt2r:
                         continue
-                    qq = xi2 + 0j
-                    im = (_compliance(qq, kl2_0, kt2_0, mu) * _ff2(qq, radius, model, coef)).imag
-                    im = max(im / (a * b), 0.0)
+                    im = _im_compliance(xi2, kl2r, kt2r, mu.real)
+                    im = max(im * _ff2_re(xi2, radius, model, coef) / (a * b), 0.0)
                     sh = _split_shear(xi2, kl2r, kt2r)
                     base = 0 if kx > 0.0 else 2
                     for typ in range(2):

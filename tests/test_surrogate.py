@@ -233,3 +233,16 @@ def test_no_nan_in_shares_property(height, mass):
 
 
 _PROP_SUR = Surrogate(**SMALL, cache_dir=False)
+
+
+def test_real_arithmetic_imaginary_compliance_matches_complex():
+    """The kernel's real-arithmetic Im G below kT (channel split) equals Im of the complex
+    surface compliance on both sides of kL, to 1e-12 relative (same formula, two arithmetics;
+    steel-like speeds, values recalled from memory, only their ratio matters here)."""
+    from optgrade.surrogate import _compliance, _im_compliance
+
+    w, cl, ct, mu = 2 * np.pi * 150e3, 5900.0, 3200.0, 80e9
+    kl2, kt2 = (w / cl) ** 2, (w / ct) ** 2
+    for q in np.linspace(1e-3, 0.999, 41) * kt2:
+        ref = _compliance(q + 0j, kl2 + 0j, kt2 + 0j, mu + 0j).imag
+        assert _im_compliance(q, kl2, kt2, mu) == pytest.approx(ref, rel=1e-12, abs=0.0)
