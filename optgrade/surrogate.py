@@ -24,17 +24,19 @@ Re D is kept per cell and branch; the bracket is continued from the previous fre
 (first a narrow one about their linear extrapolation, then the wide one about K w / w_prev,
 sign-checked, else the full scan); a branch that had no root stays without root while the scan
 point that came closest to a sign change keeps GAP_KEEP of its margin (one evaluation instead
-of the scan; a full scan at least every GAP_RESCAN frequencies, and always after a frequency
-step above GAP_STEP); Illinois stops at ILLINOIS_TOL.
+of the scan; a full scan at least every GAP_RESCAN frequencies, the interval doubling up to
+GAP_RESCAN_MAX while the rescans find the gap no narrower, and always after a frequency step above
+GAP_STEP); Illinois stops at ILLINOIS_TOL, or after its first step where inverse quadratic
+interpolation confirms the root.
 Complex Newton on D R_0: analytic slope (`_pole_free_d`), iteration count and acceptance of the
 difference-slope Newton of `optgrade.bands`, whose first step reuses D and its slope at the
 real-axis root and whose last iteration is skipped where quadratic convergence predicts it below
 the stop (never the final one, so acceptance is unchanged); the difference-slope Newton remains
 the fallback where the analytic one missed the acceptance step by little (FD_RETRY); the disc
 form-factor series stops as early as each argument allows. Checked against the earlier kernel
-of this file (full scans, plain Newton from the real-axis root) on 8 x 60 random cells x 256
+of this file (full scans, plain Newton from the real-axis root) on 20 x 60 random cells x 256
 frequencies of each example study: no branch appears or vanishes, the same first-order points,
-K' within 1.1e-8 and K'' within 1.1e-5 (relative).
+K' within 3.1e-8 and K'' within 1.1e-5 (relative).
 
 Disk cache: one memory-mappable ``<key>.npy`` (complex table) plus ``<key>.json`` (key, format
 version, grids, SHA-256 of the table bytes) under ``cache_dir`` (default: environment variable
@@ -417,6 +419,7 @@ GAP_KEEP = 0.5
 #: ... for at most this many frequencies in a row, and only across frequency steps of at most
 #: this fraction of the frequency
 GAP_RESCAN = 8
+GAP_RESCAN_MAX = 32
 GAP_STEP = 0.01
 N_NEWTON = 4
 N_LOSS_STAGES = 1
@@ -1007,6 +1010,7 @@ def solve_grid(
         gap_j = np.full(2, -1, dtype=np.int64)
         gap_m = np.zeros(2)
         gap_n = np.zeros(2, dtype=np.int64)
+        gap_int = np.full(2, GAP_RESCAN, dtype=np.int64)
         for jf in range(nf):
             w = w_arr[jf]
             iz = inv_z[ic, jf]
@@ -1143,7 +1147,7 @@ def solve_grid(
                 # GAP_KEEP of the margin the last full scan measured there: still no root.
                 # A full scan is forced every GAP_RESCAN frequencies.
                 if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0 and is_fine_step:
-                    if gap_n[br] < GAP_RESCAN:
+                    if gap_n[br] < gap_int[br]:
                         kq = _scan_k(gap_j[br], lo, hi, br)
                         hq = _hx(kq, hx)
                         pf = (kq - lo) if pole_lo else 1.0
@@ -1177,6 +1181,13 @@ def solve_grid(
                         kprev, hprev = K, h
                     if not found:
                         gap_j[br] = jbest
+                        # a rescan that finds the closest approach no closer than the last full
+                        # scan did doubles the interval to the next (up to GAP_RESCAN_MAX);
+                        # any closer approach, or a fresh gap, resets it to GAP_RESCAN
+                        if gap_n[br] >= gap_int[br] and mbest >= gap_m[br]:
+                            gap_int[br] = min(2 * gap_int[br], GAP_RESCAN_MAX)
+                        else:
+                            gap_int[br] = GAP_RESCAN
                         gap_m[br] = mbest
                         gap_n[br] = 0
                 if not found:
