@@ -224,6 +224,10 @@ def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None) -> Ax
     ax.set_xlabel(f"position where the power leaves x ({unit}); row shaded")
     ax.set_ylabel(f"frequency ({funit})")
     ax.set_title("channel map (marker area ~ fraction)")
+    if not ax.collections:
+        ax.text(0.5, 0.5, "no channel takes more than 0.5 % at a known position",
+                transform=ax.transAxes, ha="center", va="center", fontsize=9, color="0.3")
+        return ax
     leg = ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False,
                     markerscale=1.0)
     for h in leg.legend_handles:

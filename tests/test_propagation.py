@@ -219,3 +219,32 @@ def test_backward_wave_root_decays_at_abs_kpp():
         np.testing.assert_array_equal(a.fractions[c], b.fractions[c])
     np.testing.assert_allclose(b.fractions["transmitted_surface"],
                                np.exp(-2 * 0.7 * lay.length), rtol=1e-12)
+
+
+def test_channel_map_with_nothing_to_show_says_so():
+    """A trace in which no channel takes more than 0.5 % at a known position draws a note
+    instead of an empty legend (matplotlib warns about an empty legend)."""
+    import warnings
+    from types import SimpleNamespace
+
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from optgrade._plot_trace import plot_channel_map
+    from optgrade.propagation import CHANNELS
+
+    freq = np.linspace(100e3, 200e3, 8)
+    empty = SimpleNamespace(
+        frequency=freq,
+        fractions={c: np.zeros(freq.size) for c in CHANNELS},
+        position={c: np.full(freq.size, np.nan) for c in CHANNELS},
+    )
+    fig, ax = plt.subplots()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        plot_channel_map(ax, empty, SimpleNamespace(length=0.5))
+    assert ax.get_legend() is None
+    assert any("no channel" in t.get_text() for t in ax.texts)
+    plt.close(fig)
