@@ -402,11 +402,13 @@ N_SCAN = 16
 #: Newton stops at |step| <= NEWTON_TOL |K| (quadratic convergence with a forward-difference
 #: slope of relative error ~1e-6: the iterate's error is then ~1e-6 of the last step)
 NEWTON_TOL = 1e-8
+#: a Newton root is accepted when its last step is at most this fraction of |K|
+NEWTON_ACCEPT = 1e-7
 #: iterations of the analytic-slope Newton (the difference-slope one keeps N_NEWTON)
 N_NEWTON_D = 4
 MAX_ILLINOIS = 60
 #: the difference-slope Newton runs when the analytic-slope one is not accepted and its last step
-#: was between 1e-7 (the acceptance step) and this fraction of |K|: on 4 x 60 random cells x 256
+#: was between NEWTON_ACCEPT and this fraction of |K|: on 4 x 60 random cells x 256
 #: frequencies of the site example it rescued 14 of 4793 retries, all at 1.00-1.01e-7 (see
 #: solve_grid); elsewhere both Newtons follow the same path
 FD_RETRY = 2e-7
@@ -726,13 +728,15 @@ def _rayleigh(q, kl2, kt2):
 
 @njit(cache=True)
 def _rayleigh_d(q, kl2, kt2):
-    """Rayleigh function R(q) of `_rayleigh` and dR/dq (as in `_pole_free_d`)."""
+    """Rayleigh function R(q) of `_rayleigh`, dR/dq and alpha (the m = 0 vertical wavenumber):
+    R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (2q - kL^2 - kT^2)/(alpha beta)."""
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
     c = 2.0 * q - kt2
-    rr = c * c - 4.0 * q * alpha * beta
-    drr = 4.0 * c - 4.0 * alpha * beta - 2.0 * q * (beta / alpha + alpha / beta)
-    return rr, drr
+    ab = alpha * beta
+    rr = c * c - 4.0 * q * ab
+    drr = 4.0 * c - 4.0 * ab - 2.0 * q * (2.0 * q - kl2 - kt2) / ab
+    return rr, drr, alpha
 
 
 @njit(cache=True)
@@ -824,12 +828,7 @@ def _pole_free_d(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r
     """D(K) R_0(K) of `_pole_free` and its K-derivative, analytic. The m = 0 harmonic times R_0
     is -alpha_0 kT^2 F_0 / (mu a b) (R_0 cancels), the rest of D is multiplied out."""
     q0 = K * K
-    al0 = _vert(q0, kl2)
-    be0 = _vert(q0, kt2)
-    c0 = 2.0 * q0 - kt2
-    ab0 = al0 * be0
-    rr = c0 * c0 - 4.0 * q0 * ab0
-    drr = 4.0 * c0 - 4.0 * ab0 - 2.0 * q0 * (2.0 * q0 - kl2 - kt2) / ab0
+    rr, drr, al0 = _rayleigh_d(q0, kl2, kt2)
     f0, df0 = _ff2_d(q0, radius, model, coef)
     sc = -kt2 / (mu * a * b)
     p0 = sc * al0 * f0
@@ -876,10 +875,10 @@ def _newton_d(
 
 
 @njit(cache=True)
-def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, tol):
-    """Acceptance of a Newton root: finite, converged (last step <= tol |K|), on the same side
-    of every branch point of the main harmonics as the real-axis root, not growing."""
-    ok = math.isfinite(kk.real) and math.isfinite(kk.imag) and abs(step) <= tol * abs(kk)
+def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g):
+    """Acceptance of a Newton root: finite, converged (last step <= NEWTON_ACCEPT |K|), on the
+    same side of every branch point of the main harmonics as the real-axis root, not growing."""
+    ok = math.isfinite(kk.real) and math.isfinite(kk.imag) and abs(step) <= NEWTON_ACCEPT * abs(kk)
     for m in range(m_lo, m_hi):
         for e0 in (kt_s, kl_s, -kt_s, -kl_s):
             e = e0 - m * g
@@ -922,41 +921,24 @@ def _inverse_quadratic(ka, ha, kb, hb, kc, hc):
 
 
 @njit(cache=True)
-def _h(
-    K,
-    a,
-    b,
-    radius,
-    model,
-    kl2_0,
-    kt2_0,
-    mu,
-    coef,
-    n_main,
-    iz,
-    table,
-    k0,
-    dk,
-    wi,
-    wt,
-    lo,
-    hi,
-    pole_lo,
-    pole_hi,
-):
-    f = _main_re(K, a, b, radius, model, kl2_0.real, kt2_0.real, mu.real, coef, n_main)
-    f += _rest_re(K, a, table, k0, dk, wi, wt) - iz.real
-    if pole_lo:
-        f *= K - lo
+def _pole_factor(K, lo, hi, pole_lo, pole_hi):
+    """(K - lo)(hi - K), each factor only where that end of the bracket is a pole: multiplied
+    into Re D it removes the poles (positive inside the bracket)."""
+    f = (K - lo) if pole_lo else 1.0
     if pole_hi:
         f *= hi - K
     return f
 
 
 @njit(cache=True)
-def _hx(K, hx):
-    """`_h` at K with the other arguments packed in the tuple hx (as built in `solve_grid`)."""
-    return _h(K, *hx)
+def _h(K, hx):
+    """Pole-free -Re D at real K on the real-axis bracket: (Re Sigma - Re 1/Z) times
+    `_pole_factor`, lossless main terms; hx packs the fixed arguments (built in `solve_grid`)."""
+    a, b, radius, model, kl2_0, kt2_0, mu, coef, n_main, iz, table, k0, dk, wi, wt = hx[:15]
+    lo, hi, pole_lo, pole_hi = hx[15:]
+    f = _main_re(K, a, b, radius, model, kl2_0.real, kt2_0.real, mu.real, coef, n_main)
+    f += _rest_re(K, a, table, k0, dk, wi, wt) - iz.real
+    return f * _pole_factor(K, lo, hi, pole_lo, pole_hi)
 
 
 @njit(cache=True)
@@ -1067,7 +1049,7 @@ def solve_grid(
                 if not hi > lo * (1.0 + 1e-9):
                     gap_j[br] = -1
                     continue
-                # everything the real-axis function needs besides K, for `_hx`
+                # everything the real-axis function needs besides K, for `_h`
                 hx = (
                     a,
                     b,
@@ -1093,7 +1075,7 @@ def solve_grid(
                 # pole's residue): evaluated once per cell and branch, then reused
                 if pole_sign[br] == 0.0:
                     u0 = _scan_k(0, lo, hi, br)
-                    h0 = _hx(u0, hx)
+                    h0 = _h(u0, hx)
                     pole_sign[br] = 1.0 if h0 > 0.0 else -1.0
                 s0 = pole_sign[br]
                 found = False
@@ -1134,10 +1116,10 @@ def solve_grid(
                         inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
                         if not inside:
                             continue
-                        h1 = _hx(k1, hx)
+                        h1 = _h(k1, hx)
                         if (h1 > 0.0) != (s0 > 0.0):
                             continue
-                        h2 = _hx(k2, hx)
+                        h2 = _h(k2, hx)
                         if (h2 > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = k1, h1, k2, h2
                             found = True
@@ -1145,15 +1127,14 @@ def solve_grid(
                 # gap continuation: the branch had no root at the previous frequency, and the
                 # scan point that came closest to a sign change (gap_j) still keeps more than
                 # GAP_KEEP of the margin the last full scan measured there: still no root.
-                # A full scan is forced every GAP_RESCAN frequencies.
+                # A full scan is forced every gap_int[br] frequencies (see below).
                 if not found and jf > 0 and root_real == 0.0 and gap_j[br] > 0 and is_fine_step:
                     if gap_n[br] < gap_int[br]:
                         kq = _scan_k(gap_j[br], lo, hi, br)
-                        hq = _hx(kq, hx)
-                        pf = (kq - lo) if pole_lo else 1.0
-                        if pole_hi:
-                            pf *= hi - kq
-                        if s0 * hq / pf > GAP_KEEP * gap_m[br]:
+                        hq = _h(kq, hx)
+                        if s0 * hq / _pole_factor(kq, lo, hi, pole_lo, pole_hi) > (
+                            GAP_KEEP * gap_m[br]
+                        ):
                             gap_n[br] += 1
                             continue
                 # full scan outwards from the Rayleigh pole (points clustered at the pole):
@@ -1166,15 +1147,12 @@ def solve_grid(
                     mbest = 0.0
                     for jp in range(1, N_SCAN + 1):
                         K = _scan_k(jp, lo, hi, br)
-                        h = _hx(K, hx)
+                        h = _h(K, hx)
                         if (h > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = kprev, hprev, K, h
                             found = True
                             break
-                        pf = (K - lo) if pole_lo else 1.0
-                        if pole_hi:
-                            pf *= hi - K
-                        marg = s0 * h / pf
+                        marg = s0 * h / _pole_factor(K, lo, hi, pole_lo, pole_hi)
                         if jbest < 0 or marg < mbest:
                             jbest = jp
                             mbest = marg
@@ -1195,14 +1173,14 @@ def solve_grid(
                 gap_j[br] = -1
                 # Illinois (regula falsi); the first bracket end may carry only the pole sign
                 if ka == _scan_k(0, lo, hi, br):
-                    ha = _hx(ka, hx)
+                    ha = _h(ka, hx)
                 for it in range(MAX_ILLINOIS):
                     den = hb - ha
                     if den != 0.0:
                         kc = (ka * hb - kb * ha) / den
                     else:
                         kc = 0.5 * (ka + kb)
-                    hc = _hx(kc, hx)
+                    hc = _h(kc, hx)
                     if it == 0 and hc != 0.0:
                         # after the first secant step: if inverse quadratic interpolation through
                         # the three points moves less than ILLINOIS_TOL, its value is the root
@@ -1246,7 +1224,7 @@ def solve_grid(
                     # root, as the direct solver; if it is not accepted, the difference-slope
                     # Newton below decides as before
                     # the first step's D R_0 and slope at k_re from d0, dd0 (computed above)
-                    rr0, drr0 = _rayleigh_d(k_re * k_re + 0j, kl2, kt2)
+                    rr0, drr0, _ = _rayleigh_d(k_re * k_re + 0j, kl2, kt2)
                     kk, step = _newton_d(
                         kk,
                         N_NEWTON_D,
@@ -1267,14 +1245,15 @@ def solve_grid(
                         d0 * rr0,
                         dd0 * rr0 + d0 * drr0 * 2.0 * k_re,
                     )
-                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, 1e-7)
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
                     if not ok:
                         # the difference-slope Newton below decides only where the analytic one
-                        # missed the acceptance step by little (1e-7 < |step|/|K| <= FD_RETRY):
+                        # missed the acceptance step by little (NEWTON_ACCEPT < |step|/|K| <=
+                        # FD_RETRY):
                         # elsewhere both follow the same path and fail alike (a converged root on
                         # the wrong side of a branch point, or too few iterations)
                         s_rel = abs(step) / abs(kk)
-                        skip_fd = not (1e-7 < s_rel <= FD_RETRY)
+                        skip_fd = not (NEWTON_ACCEPT < s_rel <= FD_RETRY)
                         kk = k_re + 0j
                         step = 0j
                 if not ok and not skip_fd:
@@ -1305,7 +1284,7 @@ def solve_grid(
                                 r0,
                                 dr0,
                             )
-                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g, 1e-7)
+                    ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
                 fo = False
                 if not ok:
                     kk = k_first
