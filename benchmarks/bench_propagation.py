@@ -4,8 +4,10 @@ Measures, on one core (the machine is shared, so figures are noisy; the best of 
 repeats is reported, with the median beside it):
 
 - the WKB march alone (``optgrade.propagation.march``) on precomputed local modes;
-- the surrogate call ``local_modes`` for the same cells (tables built beforehand);
-- the total ``trace`` (surrogate + march);
+- the surrogate call ``local_modes`` for the same cells (tables built beforehand), all points
+  and ``path_only`` (the points the march reads);
+- the total ``trace`` (``optgrade.propagation.trace``: path-only surrogate call + march), and the
+  same with every point solved (``path_only=False``);
 - memory: tracemalloc peak and retained size after scoring N layouts in a row, to show it is
   flat in N (nothing accumulates).
 
@@ -30,7 +32,7 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from optgrade.layout import layout_from_cells  # noqa: E402
-from optgrade.propagation import march  # noqa: E402
+from optgrade.propagation import march, trace  # noqa: E402
 
 N_CELLS, N_FREQ = 60, 256
 
@@ -103,16 +105,19 @@ def main() -> None:
     if surrogate is not None:
         call = lambda: surrogate.local_modes(lay.height, lay.spacing, lay.head_mass, freq)  # noqa: E731
         best_s, med_s = _timeit(call, repeat=15, number=2)
-        print(f"surrogate local_modes:          best {best_s * 1e3:.2f} ms, "
+        print(f"surrogate local_modes, all points: best {best_s * 1e3:.2f} ms, "
               f"median {med_s * 1e3:.2f} ms")
-
-        def total():
-            m = surrogate.local_modes(lay.height, lay.spacing, lay.head_mass, freq)
-            return march(m, lay.x, lay.spacing, freq, cr)
-
-        best_t, med_t = _timeit(total, repeat=15, number=2)
-        print(f"total trace (surrogate + march): best {best_t * 1e3:.2f} ms, "
-              f"median {med_t * 1e3:.2f} ms")
+        call = lambda: surrogate.local_modes(lay.height, lay.spacing, lay.head_mass, freq,  # noqa: E731
+                                             path_only=True)
+        best_s, med_s = _timeit(call, repeat=15, number=2)
+        print(f"surrogate local_modes, path only:  best {best_s * 1e3:.2f} ms, "
+              f"median {med_s * 1e3:.2f} ms")
+        for path_only in (True, False):
+            best_t, med_t = _timeit(lambda: trace(lay, surrogate, freq, cr=cr, path_only=path_only),
+                                    repeat=15, number=2)
+            what = "path-only modes" if path_only else "all points     "
+            print(f"total trace, {what} (surrogate + march): best {best_t * 1e3:.2f} ms, "
+                  f"median {med_t * 1e3:.2f} ms")
 
     # memory: score many different layouts, keep only a scalar per layout
     rng = np.random.default_rng(0)
@@ -122,10 +127,9 @@ def main() -> None:
             h = np.sort(rng.uniform(lay.height.min(), lay.height.max(), N_CELLS))
             one = layout_from_cells(h, lay.spacing, lay.diameter, head_mass=lay.head_mass)
             if surrogate is not None:
-                m = surrogate.local_modes(one.height, one.spacing, one.head_mass, freq)
+                tr = trace(one, surrogate, freq, cr=cr)
             else:
-                m = _toy_modes(one, freq, cr)
-            tr = march(m, one.x, one.spacing, freq, cr)
+                tr = march(_toy_modes(one, freq, cr), one.x, one.spacing, freq, cr)
             float(np.mean(tr.fractions["backward_shear"]))
 
     score_many(5)  # warm caches

@@ -53,6 +53,7 @@ in tests. It is vectorised over frequencies and cells (cumulative sums, no Pytho
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -349,12 +350,22 @@ def _rayleigh_speed_of(surrogate: Any) -> float:
     raise AttributeError("surrogate does not expose the substrate's Rayleigh speed (cr)")
 
 
+def accepts_path_only(surrogate: Any) -> bool:
+    """Whether ``surrogate.local_modes`` accepts the ``path_only`` keyword."""
+    try:
+        params = inspect.signature(surrogate.local_modes).parameters
+    except (TypeError, ValueError):
+        return False
+    return "path_only" in params
+
+
 def trace(
     layout: Layout,
     surrogate: Any,
     freq: ArrayLike,
     *,
     cr: float | None = None,
+    path_only: bool = True,
 ) -> Trace:
     """Channel fractions of a layout over frequency (the propagation stage's main entry).
 
@@ -369,13 +380,20 @@ def trace(
         Frequencies (Hz).
     cr : float, optional
         Rayleigh speed of the substrate (m/s); read from the surrogate when omitted.
+    path_only : bool
+        Ask the surrogate for the points the march reads only (``local_modes(...,
+        path_only=True)``, where its ``local_modes`` takes that keyword); the trace is the same.
 
     Returns
     -------
     Trace
     """
     freq = np.atleast_1d(np.asarray(freq, dtype=float))
-    modes = surrogate.local_modes(layout.height, layout.spacing, layout.head_mass, freq)
+    args = (layout.height, layout.spacing, layout.head_mass, freq)
+    if path_only and accepts_path_only(surrogate):
+        modes = surrogate.local_modes(*args, path_only=True)
+    else:
+        modes = surrogate.local_modes(*args)
     speed = _rayleigh_speed_of(surrogate) if cr is None else float(cr)
     return march(modes, layout.x, layout.spacing, freq, speed)
 
@@ -386,10 +404,18 @@ def study_frequencies(study: Any) -> np.ndarray:
     return np.linspace(lo, hi, int(study.goal.n_frequencies))
 
 
-def trace_study(study: Any, layout: Layout, surrogate: Any = None) -> Trace:
+def trace_study(
+    study: Any, layout: Layout, surrogate: Any = None, *, path_only: bool = True
+) -> Trace:
     """Trace a layout over the study's goal band, building the study's surrogate if needed."""
     if surrogate is None:
         from optgrade.surrogate import surrogate_for_study
 
         surrogate = surrogate_for_study(study)
-    return trace(layout, surrogate, study_frequencies(study), cr=float(study.substrate.cr))
+    return trace(
+        layout,
+        surrogate,
+        study_frequencies(study),
+        cr=float(study.substrate.cr),
+        path_only=path_only,
+    )

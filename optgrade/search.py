@@ -46,7 +46,7 @@ import optuna
 from optuna.trial import TrialState
 
 import objectives
-from optgrade import __version__, fabrication, profiles
+from optgrade import __version__, fabrication, profiles, propagation
 
 __all__ = [
     "DEFAULT_SAMPLER",
@@ -118,19 +118,29 @@ def file_hash(study: Any) -> str | None:
 
 class _LastModes:
     """Surrogate proxy that remembers the last ``local_modes`` call (the nominal trace and the
-    robustness goal ask for the same cells); every other attribute is the surrogate's."""
+    robustness goal ask for the same cells); every other attribute is the surrogate's.
+
+    A ``path_only`` call (the points the march reads) is served from a remembered full call of
+    the same cells; a full call is never served from a path-only one."""
 
     def __init__(self, surrogate: Any) -> None:
         self._surrogate = surrogate
-        self._last: tuple[bytes, Any] | None = None
+        self._last: tuple[bytes, bool, Any] | None = None
 
-    def local_modes(self, height, spacing, head_mass, freq):
+    def local_modes(self, height, spacing, head_mass, freq, *, path_only: bool = False):
         arrays = [np.ascontiguousarray(v, dtype=float) for v in (height, spacing, head_mass,
                                                                   freq)]
         key = b"|".join(a.tobytes() for a in arrays)
-        if self._last is None or self._last[0] != key:
-            self._last = (key, self._surrogate.local_modes(height, spacing, head_mass, freq))
-        return self._last[1]
+        last = self._last
+        if last is not None and last[0] == key and (path_only or not last[1]):
+            return last[2]
+        args = (height, spacing, head_mass, freq)
+        if path_only and propagation.accepts_path_only(self._surrogate):
+            modes = self._surrogate.local_modes(*args, path_only=True)
+        else:
+            modes, path_only = self._surrogate.local_modes(*args), False
+        self._last = (key, path_only, modes)
+        return modes
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self._surrogate, name)
@@ -145,9 +155,11 @@ def _real_pipeline(study: Any) -> tuple[Any, Callable[[Any], Any]]:
     else:
         sur = surrogate.Surrogate.from_study(study)
     sur = _LastModes(sur)
+    # the robustness goal reads the nominal cells' full modes: trace from those then
+    path_only = "robustness" not in goal_names(study)
 
     def trace_fn(layout: Any) -> Any:
-        return propagation.trace_study(study, layout, sur)
+        return propagation.trace_study(study, layout, sur, path_only=path_only)
 
     return sur, trace_fn
 

@@ -449,3 +449,24 @@ def test_multi_objective_pareto_and_export(tmp_path):
     res = json.loads((tmp_path / "mo" / "result.json").read_text())
     assert res["trial"] == out.best_number
     assert set(res["objectives"]) >= {"channel", "compactness"}
+
+
+def test_remembered_modes_serve_path_only_calls_but_not_the_reverse():
+    """The search's surrogate proxy: a full ``local_modes`` call of the same cells serves a
+    later ``path_only`` one (the nominal trace of a study with the robustness goal), a path-only
+    result never serves a full call, and other cells are solved anew."""
+    calls = []
+
+    class Counting:
+        def local_modes(self, height, spacing, head_mass, freq, *, path_only=False):
+            calls.append(path_only)
+            return ("path" if path_only else "full", float(np.sum(height)))
+
+    proxy = search._LastModes(Counting())
+    h, a, m, f = np.array([1.0, 2.0]), np.array([0.1, 0.1]), np.zeros(2), np.array([5.0])
+    assert proxy.local_modes(h, a, m, f) == ("full", 3.0)
+    assert proxy.local_modes(h, a, m, f, path_only=True) == ("full", 3.0)
+    assert calls == [False]
+    assert proxy.local_modes(h + 1, a, m, f, path_only=True) == ("path", 5.0)
+    assert proxy.local_modes(h + 1, a, m, f) == ("full", 5.0)
+    assert calls == [False, True, False]

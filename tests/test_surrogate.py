@@ -119,6 +119,83 @@ def test_frequency_continuation_changes_nothing(which, bench_sur, site_sur):
     assert (rel > 1e-6).sum() <= budget
 
 
+def _rows(study, rng, n=60):
+    """A linear grading over the study's ranges (constant spacing) and three random rows:
+    sorted heights from the study's entry side with random spacings, and unsorted heights."""
+    from optgrade.layout import layout_from_cells
+
+    (h_lo, h_hi), (a_lo, a_hi) = study.layout.height, study.layout.spacing
+    m_lo, m_hi = study.resonator.head_mass
+    d = study.resonator.diameter
+    h = np.linspace(h_lo, h_hi, n)
+    rows = [layout_from_cells(h, np.full(n, 0.5 * (a_lo + a_hi)), d,
+                              head_mass=np.linspace(m_lo, m_hi, n))]
+    for i in range(3):
+        h = np.sort(rng.uniform(h_lo, h_hi, n))
+        if study.layout.entry == "long":
+            h = h[::-1]
+        if i == 2:
+            h = rng.permutation(h)
+        rows.append(layout_from_cells(h, rng.uniform(a_lo, a_hi, n), d,
+                                      head_mass=rng.uniform(m_lo, m_hi, n)))
+    return rows
+
+
+@pytest.mark.parametrize("which", ["bench", "site"])
+def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
+    """``path_only`` solves only the points the WKB march reads (the branch chosen at the entry
+    cell, up to the first cell without a root). On a linear grading and three random rows of
+    60 cells x 128 frequencies of each example study: the march gives the same branches and
+    turning points and fractions within 1e-8; every point the march reads is solved, equal to
+    the full solve within 1e-6 (relative; frequency continuation runs over fewer frequencies
+    per cell); and far fewer roots are solved (self-consistency of a shortcut; the accuracy
+    references are the direct-solve and full-wave checks)."""
+    from optgrade.propagation import CHANNELS, march
+
+    study, sur = bench_sur if which == "bench" else site_sur
+    freq = np.linspace(*study.goal.band, 128)
+    n_full = n_path = 0
+    for lay in _rows(study, np.random.default_rng(3)):
+        args = (lay.height, lay.spacing, lay.head_mass, freq)
+        full, part = sur.local_modes(*args), sur.local_modes(*args, path_only=True)
+        t_full = march(full, lay.x, lay.spacing, freq, study.substrate.cr)
+        t_part = march(part, lay.x, lay.spacing, freq, study.substrate.cr)
+        assert np.array_equal(t_full.branch, t_part.branch)
+        assert np.array_equal(t_full.turning_position, t_part.turning_position, equal_nan=True)
+        for c in CHANNELS:
+            assert np.allclose(t_full.fractions[c], t_part.fractions[c], rtol=0, atol=1e-8), c
+        # the points the march reads: the followed branch on the path, turning cell included
+        br = np.maximum(t_full.branch, 0)
+        kb = np.take_along_axis(full.k, br[None, None, :].repeat(60, axis=1), axis=0)[0]
+        kp = np.take_along_axis(part.k, br[None, None, :].repeat(60, axis=1), axis=0)[0]
+        ok = np.isfinite(kb)
+        on_path = (np.cumprod(ok, axis=0) > 0) & (t_full.branch >= 0)[None, :]
+        assert np.all(np.isfinite(kp[on_path]))
+        assert np.max(np.abs(kp[on_path] - kb[on_path]) / np.abs(kb[on_path])) < 1e-6
+        # and nothing else: the other branch only at the entry cell, nothing past the turn
+        read = np.zeros(full.k.shape, dtype=bool)
+        read[br, :, np.arange(freq.size)] = on_path.T
+        read[:, 0, :] = True
+        assert not (np.isfinite(part.k) & ~read).any()
+        n_full += int(np.isfinite(full.k).sum())
+        n_path += int(np.isfinite(part.k).sum())
+    assert n_path < 0.7 * n_full
+
+
+def test_cells_do_not_share_state(bench_sur):
+    """Each cell is solved on its own: a cell's modes are the same alone and inside a row of
+    cells with the same spacing (its Rest slice is reused) or other spacings (rebuilt)."""
+    study, sur = bench_sur
+    freq = np.linspace(*study.goal.band, 96)
+    h = np.array([5e-3, 7e-3, 9e-3, 11e-3, 6e-3])
+    a = np.array([8e-3, 8e-3, 12e-3, 12e-3, 8e-3])
+    row = sur.local_modes(h, a, 0.0, freq)
+    for j in range(h.size):
+        alone = sur.local_modes(h[j], a[j], 0.0, freq)
+        assert np.array_equal(alone.k[:, 0], row.k[:, j], equal_nan=True)
+        assert np.array_equal(alone.shares[:, :, 0], row.shares[:, :, j])
+
+
 def test_frequency_order_and_repeats_do_not_matter(bench_sur):
     """Continuation must not depend on the frequencies being ascending or distinct: the same
     cell at 64 frequencies, in reverse and with each frequency repeated three times, gives the
