@@ -68,9 +68,8 @@ def main() -> None:
     study = None
     if Path(args.study).exists():
         try:
-            from optgrade.surrogate import surrogate_for_study
-
             from optgrade.study import load_study
+            from optgrade.surrogate import surrogate_for_study
 
             study = load_study(args.study)
             t0 = time.perf_counter()
@@ -113,8 +112,10 @@ def main() -> None:
         print(f"surrogate local_modes, path only:  best {best_s * 1e3:.2f} ms, "
               f"median {med_s * 1e3:.2f} ms")
         for path_only in (True, False):
-            best_t, med_t = _timeit(lambda: trace(lay, surrogate, freq, cr=cr, path_only=path_only),
-                                    repeat=15, number=2)
+            def run(p=path_only):
+                return trace(lay, surrogate, freq, cr=cr, path_only=p)
+
+            best_t, med_t = _timeit(run, repeat=15, number=2)
             what = "path-only modes" if path_only else "all points     "
             print(f"total trace, {what} (surrogate + march): best {best_t * 1e3:.2f} ms, "
                   f"median {med_t * 1e3:.2f} ms")
