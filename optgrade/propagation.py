@@ -48,16 +48,19 @@ show a comb with one tooth per cell where a row stops a band of frequencies; a f
 
 The march (:func:`march`) only needs the arrays of a ``LocalModes`` (contract in DEVELOPERS.md),
 however they were produced: the fast surrogate, direct root solves, or hand-built toy dispersion
-in tests. It is vectorised over frequencies and cells (cumulative sums, no Python loops).
+in tests. It runs as one compiled loop over frequencies and, per frequency, over the cells of
+its path only (cells past the turning point are never read).
 """
 
 from __future__ import annotations
 
 import inspect
+import math
 from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
+from numba import njit
 from numpy.typing import ArrayLike
 
 from optgrade.layout import Layout
@@ -94,8 +97,6 @@ RADIATING: tuple[str, ...] = (
 #: eps above this marks a result outside the adiabatic model's validity (physics.md s. 6).
 ADIABATIC_LIMIT = 0.1
 
-# a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
-_SWAP = np.array([2, 3, 0, 1, 4])
 
 
 class _Modes(Protocol):
@@ -215,113 +216,11 @@ def march(
             f"{(2, 5, n_cells, n_freq)}/{(2, 4, n_cells, n_freq)}"
         )
 
-    # 1. branch chosen at the entry cell, then followed
-    exists = np.isfinite(k)  # complex isfinite: both parts finite
-    branch = np.where(exists[0, 0], 0, np.where(exists[1, 0], 1, -1))
-    is_upper = branch == 1
-    if is_upper.any():
-        kb = np.where(is_upper, k[1], k[0])  # (n_cells, n_freq)
-        sh = np.where(is_upper, shares[1], shares[0])  # (5, n_cells, n_freq)
-        ang = np.where(is_upper, angle[1], angle[0])  # (4, n_cells, n_freq)
-        is_valid = np.where(is_upper, exists[1], exists[0])
-    else:
-        kb, sh, ang, is_valid = k[0], shares[0], angle[0], exists[0]
-    is_valid = is_valid & (branch >= 0)
-    n_path = np.where(is_valid.all(axis=0), n_cells, np.argmin(is_valid, axis=0))
-    in_path = np.arange(n_cells)[:, None] < n_path[None, :]  # cells the wave crosses
-    is_turning = n_path < n_cells
-
-    # 2. entry step
-    kr = 2.0 * np.pi * freq / cr
-    k1 = np.where(branch >= 0, kb[0].real, kr)
-    entry = np.where(branch >= 0, ((k1 - kr) / (k1 + kr)) ** 2, 1.0)
-    p_in = 1.0 - entry
-
-    # 3. forward march: power lost in each cell, as a fraction of p_in
-    kim = np.abs(np.where(in_path, kb.imag, 0.0))  # K'' < 0: backward-wave root, see above
-    tau = kim * (2.0 * a[:, None])  # power decay exponent per cell
-    cum = np.cumsum(tau, axis=0)
-    total_tau = cum[-1]
-    gone = -np.expm1(-tau)  # 1 - exp(-tau), accurate for small tau
-    loss_fwd = np.exp(tau - cum) * gone
-    # 4. return path from the turning point (same cells, reverse order)
-    p_turn = np.where(is_turning, np.exp(-total_tau), 0.0)
-    with np.errstate(invalid="ignore"):
-        loss_ret = np.exp(cum - total_tau) * gone
-    loss_ret = np.where(in_path & (p_turn > 0), loss_ret * p_turn, 0.0)
-    back_out = p_turn * np.exp(-total_tau)
-    through = np.where(is_turning, 0.0, np.exp(-total_tau))
-
-    # split of the lost power among the five leaking channels: shares renormalised per cell
-    # (the division is applied to the (n_cells, n_freq) losses, not to the shares)
-    sh = np.where(sh > 0.0, sh, 0.0)  # nan and negatives -> 0
-    sh[np.isinf(sh)] = 0.0
-    sh_sum = sh.sum(axis=0)
-    is_unsplit = sh_sum <= 0
-    if is_unsplit.any():  # decay without a split: book it to absorbed
-        sh[4] += is_unsplit
-        sh_sum = sh_sum + is_unsplit
-    scale = p_in / sh_sum
-    w_f = loss_fwd * scale  # (n_cells, n_freq)
-    w_r = loss_ret * scale
-    centre = (x + 0.5 * a)[:, None]
-    lf, lr = np.einsum("cjf,jf->cf", sh, w_f), np.einsum("cjf,jf->cf", sh, w_r)
-    leaked = lf + lr[_SWAP]  # (5, n_freq)
-    xf = np.einsum("cjf,jf->cf", sh, w_f * centre)
-    xr = np.einsum("cjf,jf->cf", sh, w_r * centre)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pos_leak = np.where(leaked > 0, (xf + xr[_SWAP]) / leaked, np.nan)
-    # angles: a return-path contribution to channel c has the mirrored angle of channel SWAP[c]
-    is_angle = np.isfinite(ang)
-    sh4 = np.where(is_angle, sh[:4], 0.0)
-    sha = sh4 * np.where(is_angle, ang, 0.0)
-    af, ar = np.einsum("cjf,jf->cf", sha, w_f), np.einsum("cjf,jf->cf", sha, w_r)
-    df, dr = np.einsum("cjf,jf->cf", sh4, w_f), np.einsum("cjf,jf->cf", sh4, w_r)
-    swap4 = _SWAP[:4]
-    den = df + dr[swap4]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ang_leak = np.where(den > 0, np.degrees((af - ar[swap4]) / den), np.nan)
-
-    x_end = x[-1] + a[-1]
-    x_turn = np.where(is_turning, np.append(x, x_end)[n_path], np.nan)
-    reflected = entry + p_in * back_out
-    transmitted = p_in * through
-    with np.errstate(invalid="ignore", divide="ignore"):
-        pos_refl = np.where(
-            reflected > 0,
-            np.nan_to_num(x_turn) * p_in * back_out / np.where(reflected > 0, reflected, 1.0),
-            np.nan,
-        )
-
-    fractions = {"transmitted_surface": transmitted, "reflected_surface": reflected}
-    position = {
-        "transmitted_surface": np.where(transmitted > 0, x_end, np.nan),
-        "reflected_surface": pos_refl,
-    }
-    angles = {
-        "transmitted_surface": np.where(transmitted > 0, 90.0, np.nan),
-        "reflected_surface": np.where(reflected > 0, -90.0, np.nan),
-    }
-    for c, name in enumerate((*RADIATING, "absorbed")):
-        fractions[name] = leaked[c]
-        position[name] = pos_leak[c]
-        angles[name] = ang_leak[c] if c < 4 else np.full(n_freq, np.nan)
-    fractions = {c: fractions[c] for c in CHANNELS}
-    position = {c: position[c] for c in CHANNELS}
-    angles = {c: angles[c] for c in CHANNELS}
-
-    # adiabaticity on the forward path
-    if n_cells >= 2:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            eps = np.abs(np.diff(kb, axis=0)) / (a[:-1, None] * np.abs(kb[:-1]) ** 2)
-        is_pair = in_path[1:] & np.isfinite(eps)
-        eps_max = np.max(np.where(is_pair, eps, 0.0), axis=0)
-    else:
-        eps_max = np.zeros(n_freq)
-
-    phase = np.where(
-        is_turning, np.nan, np.sum(np.where(in_path, np.nan_to_num(kb.real), 0.0) * a[:, None], 0)
-    )
+    out = _march_kernel(k, shares, angle, x, a, freq, float(cr))
+    fr, pos, ang, eps_max, branch, x_turn, entry, phase = out
+    fractions = {c: fr[i] for i, c in enumerate(CHANNELS)}
+    position = {c: pos[i] for i, c in enumerate(CHANNELS)}
+    angles = {c: ang[i] for i, c in enumerate(CHANNELS)}
     return Trace(
         frequency=freq,
         fractions=fractions,
@@ -334,6 +233,132 @@ def march(
         entry_reflection=entry,
         phase=phase,
     )
+
+
+@njit(cache=True)
+def _march_kernel(k, shares, angle, x, a, freq, cr):
+    """The march of `march`, one frequency at a time over the cells of its path. Returns
+    fractions, positions and angles (7, n_freq) in the order of CHANNELS, eps_max, branch,
+    turning position (nan where not turned), entry reflection and phase (n_freq each)."""
+    n_cells = x.size
+    n_freq = freq.size
+    fr = np.zeros((7, n_freq))
+    pos = np.full((7, n_freq), np.nan)
+    ang = np.full((7, n_freq), np.nan)
+    eps_max = np.zeros(n_freq)
+    branch = np.full(n_freq, -1, dtype=np.int8)
+    x_turn = np.full(n_freq, np.nan)
+    entry = np.ones(n_freq)
+    phase = np.full(n_freq, np.nan)
+    x_end = x[n_cells - 1] + a[n_cells - 1]
+    # a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
+    swap = np.array([2, 3, 0, 1, 4])
+    tau = np.zeros(n_cells)
+    cum = np.zeros(n_cells)
+    sh = np.zeros((5, n_cells))
+    w_f = np.zeros(n_cells)
+    w_r = np.zeros(n_cells)
+    for f in range(n_freq):
+        # 1. branch chosen at the entry cell, then followed up to the first cell without root
+        k00 = k[0, 0, f]
+        k10 = k[1, 0, f]
+        if math.isfinite(k00.real) and math.isfinite(k00.imag):
+            br = 0
+        elif math.isfinite(k10.real) and math.isfinite(k10.imag):
+            br = 1
+        else:
+            br = -1
+        n_path = 0
+        if br >= 0:
+            branch[f] = br
+            while n_path < n_cells:
+                kj = k[br, n_path, f]
+                if not (math.isfinite(kj.real) and math.isfinite(kj.imag)):
+                    break
+                n_path += 1
+        is_turning = n_path < n_cells
+        # 2. entry step
+        kr = 2.0 * math.pi * freq[f] / cr
+        if br >= 0:
+            k1 = k[br, 0, f].real
+            entry[f] = ((k1 - kr) / (k1 + kr)) ** 2
+        p_in = 1.0 - entry[f]
+        # 3. forward march and 4. return path
+        total = 0.0
+        for j in range(n_path):
+            tau[j] = abs(k[br, j, f].imag) * (2.0 * a[j])
+            total += tau[j]
+            cum[j] = total
+        p_turn = math.exp(-total) if is_turning else 0.0
+        back_out = p_turn * math.exp(-total)
+        through = 0.0 if is_turning else math.exp(-total)
+        for j in range(n_path):
+            gone = -math.expm1(-tau[j])
+            # shares renormalised per cell (nan, inf and negatives -> 0; none: absorbed)
+            s_sum = 0.0
+            for c in range(5):
+                v = shares[br, c, j, f]
+                v = v if (v > 0.0 and not math.isinf(v)) else 0.0
+                sh[c, j] = v
+                s_sum += v
+            if s_sum <= 0.0:
+                sh[4, j] += 1.0
+                s_sum += 1.0
+            scale = p_in / s_sum
+            w_f[j] = math.exp(tau[j] - cum[j]) * gone * scale
+            w_r[j] = math.exp(cum[j] - total) * gone * p_turn * scale if p_turn > 0.0 else 0.0
+        for c in range(5):
+            cs = swap[c]
+            leak = 0.0
+            xs = 0.0
+            for j in range(n_path):
+                centre = x[j] + 0.5 * a[j]
+                leak += sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]
+                xs += (sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]) * centre
+            fr[2 + c, f] = leak
+            if leak > 0.0:
+                pos[2 + c, f] = xs / leak
+            if c < 4:
+                # a return-path part of channel c has the mirrored angle of channel swap[c]
+                num = 0.0
+                den = 0.0
+                for j in range(n_path):
+                    af = angle[br, c, j, f]
+                    ar = angle[br, cs, j, f]
+                    if math.isfinite(af):
+                        num += sh[c, j] * af * w_f[j]
+                        den += sh[c, j] * w_f[j]
+                    if math.isfinite(ar):
+                        num -= sh[cs, j] * ar * w_r[j]
+                        den += sh[cs, j] * w_r[j]
+                if den > 0.0:
+                    ang[2 + c, f] = math.degrees(num / den)
+        # 5. exit
+        reflected = entry[f] + p_in * back_out
+        transmitted = p_in * through
+        fr[0, f] = transmitted
+        fr[1, f] = reflected
+        if transmitted > 0.0:
+            pos[0, f] = x_end
+            ang[0, f] = 90.0
+        if is_turning:
+            x_turn[f] = x[n_path]
+        if reflected > 0.0:
+            xt = x_turn[f] if is_turning else 0.0
+            pos[1, f] = xt * p_in * back_out / reflected
+            ang[1, f] = -90.0
+        # adiabaticity between cells that both carry the wave; phase of the transmitted wave
+        for j in range(n_path - 1):
+            kj = k[br, j, f]
+            e = abs(k[br, j + 1, f] - kj) / (a[j] * abs(kj) ** 2)
+            if math.isfinite(e) and e > eps_max[f]:
+                eps_max[f] = e
+        if not is_turning:
+            ph = 0.0
+            for j in range(n_path):
+                ph += k[br, j, f].real * a[j]
+            phase[f] = ph
+    return fr, pos, ang, eps_max, branch, x_turn, entry, phase
 
 
 def _rayleigh_speed_of(surrogate: Any) -> float:

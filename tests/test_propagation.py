@@ -248,3 +248,40 @@ def test_channel_map_with_nothing_to_show_says_so():
     assert ax.get_legend() is None
     assert any("no channel" in t.get_text() for t in ax.texts)
     plt.close(fig)
+
+
+def test_nothing_past_the_turning_point_or_on_the_other_branch_is_read():
+    """The march reads the followed branch up to its first cell without a root and the other
+    branch only at the entry cell (what ``local_modes(..., path_only=True)`` relies on):
+    filling every other point with other values changes nothing."""
+    rng = np.random.default_rng(5)
+    n, nf = 30, 9
+    freq = np.linspace(20e3, 90e3, nf)
+    lay = layout_from_cells(rng.uniform(3e-3, 9e-3, n), rng.uniform(2e-3, 4e-3, n), 1e-3)
+    kr = 2 * np.pi * freq / CR
+    k = (1.0 + rng.uniform(0, 0.5, (2, n, nf))) * kr + 1j * rng.uniform(0, 5, (2, n, nf))
+    turn = rng.integers(1, n + 1, nf)  # first cell without a root (n: none)
+    k[0, 0, :3] = np.nan  # three frequencies enter on the upper branch
+    br = np.where(np.isfinite(k[0, 0]), 0, 1)
+    for f in range(nf):
+        if turn[f] < n:
+            k[br[f], turn[f], f] = np.nan
+    shares = rng.uniform(0, 1, (2, 5, n, nf))
+    angle = rng.uniform(-1.5, 1.5, (2, 4, n, nf))
+    ref = march(SimpleNamespace(k=k, shares=shares, angle=angle), lay.x, lay.spacing, freq, CR)
+    unread = np.ones((2, n, nf), dtype=bool)
+    for f in range(nf):
+        unread[br[f], : turn[f] + 1, f] = False  # the turning cell is read (no root)
+        unread[:, 0, f] = False
+    k2, sh2, an2 = k.copy(), shares.copy(), angle.copy()
+    k2[unread] = rng.uniform(1, 2, unread.sum()) * 7e3 + 3e2j
+    sh2.transpose(0, 2, 3, 1)[unread] = 0.3
+    an2.transpose(0, 2, 3, 1)[unread] = 0.2
+    other = march(SimpleNamespace(k=k2, shares=sh2, angle=an2), lay.x, lay.spacing, freq, CR)
+    assert np.array_equal(ref.branch, other.branch) and (ref.branch[:3] == 1).all()
+    for c in CHANNELS:
+        np.testing.assert_array_equal(ref.fractions[c], other.fractions[c])
+        np.testing.assert_array_equal(ref.position[c], other.position[c])
+        np.testing.assert_array_equal(ref.angle[c], other.angle[c])
+    np.testing.assert_array_equal(ref.eps_max, other.eps_max)
+    np.testing.assert_array_equal(ref.phase, other.phase)
