@@ -1136,6 +1136,7 @@ def solve_grid(
                     pole_sign[br] = 1.0 if h0 > 0.0 else -1.0
                 s0 = pole_sign[br]
                 found = False
+                is_continued = False  # the bracket comes from continuation, not from a scan
                 ka = 0.0
                 kb = 0.0
                 ha = 0.0
@@ -1177,6 +1178,7 @@ def solve_grid(
                         if (h2 > 0.0) != (s0 > 0.0):
                             ka, ha, kb, hb = k1, h1, k2, h2
                             found = True
+                            is_continued = True
                             break
                 # gap continuation: the branch had no root at the previous frequency, and the
                 # scan point that came closest to a sign change (gap_j) still keeps more than
@@ -1225,27 +1227,36 @@ def solve_grid(
                 if not found:
                     continue
                 gap_j[br] = -1
-                # Illinois (regula falsi); the first bracket end may carry only the pole sign
+                # Illinois (regula falsi) sped up by inverse quadratic interpolation: after each
+                # evaluation, the inverse quadratic through the bracket ends and the new point
+                # (true values, ha_t: ha is halved by the Illinois rule) is the root if it moves
+                # less than ILLINOIS_TOL; in a continued bracket it is also the next point where
+                # it lies inside (the Illinois secant where not). A scan bracket is wide and may
+                # hold more roots: there the Illinois steps alone pick one, as in the direct
+                # solver. The first bracket end may carry only the pole sign
                 if ka == _scan_k(0, lo, hi, br):
                     ha = _h(ka, hx)
+                ha_t = ha
+                kq = 0.0
                 for it in range(MAX_ILLINOIS):
-                    den = hb - ha
-                    if den != 0.0:
-                        kc = (ka * hb - kb * ha) / den
+                    if it > 0 and is_continued and min(ka, kb) < kq < max(ka, kb):
+                        kc = kq
                     else:
-                        kc = 0.5 * (ka + kb)
+                        den = hb - ha
+                        if den != 0.0:
+                            kc = (ka * hb - kb * ha) / den
+                        else:
+                            kc = 0.5 * (ka + kb)
                     hc = _h(kc, hx)
-                    if it == 0 and hc != 0.0:
-                        # after the first secant step: if inverse quadratic interpolation through
-                        # the three points moves less than ILLINOIS_TOL, its value is the root
-                        kq = _inverse_quadratic(ka, ha, kb, hb, kc, hc)
+                    if hc != 0.0:
+                        kq = _inverse_quadratic(ka, ha_t, kb, hb, kc, hc)
                         if abs(kq - kc) <= ILLINOIS_TOL * abs(kc) and min(ka, kb) < kq < max(
                             ka, kb
                         ):
                             kb = kq
                             break
                     if (hc > 0.0) != (hb > 0.0):
-                        ka, ha = kb, hb
+                        ka, ha, ha_t = kb, hb, hb
                     else:
                         ha = 0.5 * ha
                     moved = abs(kc - kb)
