@@ -14,9 +14,11 @@ Thin-rod (axial) theory only: valid while the rod diameter is small against the 
 
 from __future__ import annotations
 
+import cmath
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 from numpy.typing import ArrayLike
 from scipy.optimize import brentq
 
@@ -74,20 +76,51 @@ class Rod:
         return 0.5 * self.diameter
 
 
-def _rod_parts(w, rod: Rod, height, head_mass):
-    """Return numerator and denominator of Z = EAk (sin + q cos) / (cos - q sin)."""
-    w = np.asarray(w, dtype=float)
-    height = np.asarray(height, dtype=float)
-    head_mass = np.asarray(head_mass, dtype=float)
-    e_c = rod.youngs_modulus * complex(1.0, -rod.loss_factor)
+@njit(cache=True)
+def rod_parts_at(w, height, head_mass, area, e_c, density):
+    """Numerator and denominator of Z = E A k_r (sin + q cos) / (cos - q sin) at one point:
+    angular frequency w (rad/s), rod height (m), head mass (kg), cross-section area (m^2),
+    complex Young's modulus e_c = E (1 - i eta) (Pa) and density (kg/m^3). Compiled, so that
+    the surrogate's kernel evaluates the rod only where it solves; `rod_stiffness` and
+    `rod_compliance` use the same function."""
+    root = cmath.sqrt(e_c * density)
     # E A k_r = A sqrt(E rho) w  (impedance-like factor, N/m)
-    eak = rod.area * np.sqrt(e_c * rod.density) * w
-    kr = w * np.sqrt(rod.density / e_c)
-    phase = kr * height
-    s, c = np.sin(phase), np.cos(phase)
+    eak = area * root * w
+    phase = w * cmath.sqrt(density / e_c) * height
+    s, c = cmath.sin(phase), cmath.cos(phase)
     # q = M w^2 / (E A k_r) = M w / (A sqrt(E rho)), finite at w = 0
-    qq = head_mass * w / (rod.area * np.sqrt(e_c * rod.density))
+    qq = head_mass * w / (area * root)
     return eak * (s + qq * c), c - qq * s
+
+
+@njit(cache=True)
+def _rod_parts_flat(w, height, head_mass, area, e_c, density, num, den):
+    for i in range(w.size):
+        num[i], den[i] = rod_parts_at(w[i], height[i], head_mass[i], area, e_c, density)
+
+
+def _rod_parts(w, rod: Rod, height, head_mass):
+    """Return numerator and denominator of Z = EAk (sin + q cos) / (cos - q sin), arrays
+    broadcast together."""
+    w, height, head_mass = np.broadcast_arrays(
+        np.asarray(w, dtype=float),
+        np.asarray(height, dtype=float),
+        np.asarray(head_mass, dtype=float),
+    )
+    num = np.empty(w.shape, dtype=complex)
+    den = np.empty(w.shape, dtype=complex)
+    e_c = rod.youngs_modulus * complex(1.0, -rod.loss_factor)
+    _rod_parts_flat(
+        np.ravel(w),
+        np.ravel(height),
+        np.ravel(head_mass),
+        rod.area,
+        e_c,
+        float(rod.density),
+        num.reshape(-1),
+        den.reshape(-1),
+    )
+    return num, den
 
 
 def rod_stiffness(

@@ -63,7 +63,7 @@ from numpy.typing import ArrayLike
 
 from optgrade.halfspace import Substrate
 from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum, main_orders
-from optgrade.resonators import Rod, rod_compliance
+from optgrade.resonators import Rod, rod_parts_at
 
 __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 
@@ -319,7 +319,6 @@ class Surrogate:
                 f"got [{a.min():.6g}, {a.max():.6g}]"
             )
         w = 2 * np.pi * freq
-        iz = rod_compliance(w[None, :], self.rod, h[:, None], m[:, None])
         idx, wts = _lagrange_weights(self.levels, a)
         n_c, n_f = a.size, freq.size
         out_k = np.full((2, n_c, n_f), np.nan + 0j)
@@ -328,9 +327,14 @@ class Surrogate:
         out_fo = np.zeros((2, n_c, n_f), dtype=np.bool_)
         s = self.substrate
         clc, ctc = s.complex_speeds
+        rod = self.rod
         solve_grid(
             w,
-            np.ascontiguousarray(iz, dtype=complex),
+            h,
+            m,
+            rod.area,
+            rod.youngs_modulus * complex(1.0, -rod.loss_factor),
+            float(rod.density),
             a,
             np.asarray(self.table),
             idx,
@@ -963,7 +967,11 @@ def _h(K, hx):
 @njit(cache=True)
 def solve_grid(
     w_arr,
-    inv_z,
+    h_arr,
+    m_arr,
+    rod_area,
+    rod_e,
+    rod_rho,
     a_arr,
     levels_table,
     idx,
@@ -1033,7 +1041,9 @@ def solve_grid(
             if path_only and ic > 0 and not path_on[jf]:
                 continue
             w = w_arr[jf]
-            iz = inv_z[ic, jf]
+            # the rod's compliance 1/Z (optgrade.resonators), only where the kernel solves
+            z_num, z_den = rod_parts_at(w, h_arr[ic], m_arr[ic], rod_area, rod_e, rod_rho)
+            iz = z_den / z_num if z_num != 0.0 else complex(math.inf, 0.0)
             t = (w - w0) / dw
             wi = int(math.floor(t))
             if wi < 0:
