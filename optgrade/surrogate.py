@@ -776,12 +776,24 @@ def _ff2_d(q, radius, model, coef):
     r2 = radius * radius
     x2 = q * r2
     if model == 0:
+        # the real-coefficient series and its derivative at complex x2 by the second-order
+        # Horner scheme (Knuth, TAOCP vol. 2, 4.6.4): x2^2 = r x2 - t with r = 2 Re x2,
+        # t = |x2|^2, so each term costs two real multiply-adds instead of a complex product
         n = _n_used(coef, abs(x2))
-        s = coef[n - 1] + 0j
-        ds = 0j
-        for i in range(n - 2, -1, -1):
-            ds = ds * x2 + s
-            s = s * x2 + coef[i]
+        xr = x2.real
+        xi = x2.imag
+        rr = 2.0 * xr
+        tt = xr * xr + xi * xi
+        a = coef[n - 1]
+        b = coef[n - 2]
+        da = (n - 1) * coef[n - 1]
+        db = (n - 2) * coef[n - 2]
+        for k in range(n - 3, -1, -1):
+            a, b = b + rr * a, coef[k] - tt * a
+            if k > 0:
+                da, db = db + rr * da, k * coef[k] - tt * da
+        s = complex(a * xr + b, a * xi)
+        ds = complex(da * xr + db, da * xi)
     else:
         if abs(x2) < 1e-6:
             s = 1.0 - x2 / 6.0 + x2 * x2 / 120.0
