@@ -15,6 +15,7 @@ Thin-rod (axial) theory only: valid while the rod diameter is small against the 
 from __future__ import annotations
 
 import cmath
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -76,27 +77,38 @@ class Rod:
         return 0.5 * self.diameter
 
 
+def rod_constants(rod: Rod) -> tuple[complex, complex]:
+    """(A sqrt(E rho), sqrt(rho / E)) of a rod with complex modulus E (1 - i eta): the
+    constants `rod_parts_at` takes (kg/s, s/m)."""
+    e_c = rod.youngs_modulus * complex(1.0, -rod.loss_factor)
+    return rod.area * cmath.sqrt(e_c * rod.density), cmath.sqrt(rod.density / e_c)
+
+
 @njit(cache=True)
-def rod_parts_at(w, height, head_mass, area, e_c, density):
+def rod_parts_at(w, height, head_mass, a_root, slowness):
     """Numerator and denominator of Z = E A k_r (sin + q cos) / (cos - q sin) at one point:
-    angular frequency w (rad/s), rod height (m), head mass (kg), cross-section area (m^2),
-    complex Young's modulus e_c = E (1 - i eta) (Pa) and density (kg/m^3). Compiled, so that
-    the surrogate's kernel evaluates the rod only where it solves; `rod_stiffness` and
-    `rod_compliance` use the same function."""
-    root = cmath.sqrt(e_c * density)
+    angular frequency w (rad/s), rod height (m), head mass (kg) and the rod's constants from
+    `rod_constants`. Compiled, so that the surrogate's kernel evaluates the rod only where it
+    solves; `rod_stiffness` and `rod_compliance` use the same function."""
     # E A k_r = A sqrt(E rho) w  (impedance-like factor, N/m)
-    eak = area * root * w
-    phase = w * cmath.sqrt(density / e_c) * height
-    s, c = cmath.sin(phase), cmath.cos(phase)
+    eak = a_root * w
+    phase = w * slowness * height
+    # sin and cos of the complex phase from one set of real sin, cos, sinh, cosh
+    x = phase.real
+    y = phase.imag
+    sx, cx = math.sin(x), math.cos(x)
+    ch, sh = math.cosh(y), math.sinh(y)
+    s = complex(sx * ch, cx * sh)
+    c = complex(cx * ch, -sx * sh)
     # q = M w^2 / (E A k_r) = M w / (A sqrt(E rho)), finite at w = 0
-    qq = head_mass * w / (area * root)
+    qq = head_mass * w / a_root
     return eak * (s + qq * c), c - qq * s
 
 
 @njit(cache=True)
-def _rod_parts_flat(w, height, head_mass, area, e_c, density, num, den):
+def _rod_parts_flat(w, height, head_mass, a_root, slowness, num, den):
     for i in range(w.size):
-        num[i], den[i] = rod_parts_at(w[i], height[i], head_mass[i], area, e_c, density)
+        num[i], den[i] = rod_parts_at(w[i], height[i], head_mass[i], a_root, slowness)
 
 
 def _rod_parts(w, rod: Rod, height, head_mass):
@@ -109,14 +121,11 @@ def _rod_parts(w, rod: Rod, height, head_mass):
     )
     num = np.empty(w.shape, dtype=complex)
     den = np.empty(w.shape, dtype=complex)
-    e_c = rod.youngs_modulus * complex(1.0, -rod.loss_factor)
     _rod_parts_flat(
         np.ravel(w),
         np.ravel(height),
         np.ravel(head_mass),
-        rod.area,
-        e_c,
-        float(rod.density),
+        *rod_constants(rod),
         num.reshape(-1),
         den.reshape(-1),
     )

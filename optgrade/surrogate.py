@@ -63,7 +63,7 @@ from numpy.typing import ArrayLike
 
 from optgrade.halfspace import Substrate
 from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum, main_orders
-from optgrade.resonators import Rod, rod_parts_at
+from optgrade.resonators import Rod, rod_constants, rod_parts_at
 
 __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 
@@ -327,14 +327,11 @@ class Surrogate:
         out_fo = np.zeros((2, n_c, n_f), dtype=np.bool_)
         s = self.substrate
         clc, ctc = s.complex_speeds
-        rod = self.rod
         solve_grid(
             w,
             h,
             m,
-            rod.area,
-            rod.youngs_modulus * complex(1.0, -rod.loss_factor),
-            float(rod.density),
+            *rod_constants(self.rod),
             a,
             np.asarray(self.table),
             idx,
@@ -981,9 +978,8 @@ def solve_grid(
     w_arr,
     h_arr,
     m_arr,
-    rod_area,
-    rod_e,
-    rod_rho,
+    rod_root,
+    rod_slowness,
     a_arr,
     levels_table,
     idx,
@@ -1028,6 +1024,13 @@ def solve_grid(
     m_hi = 1 if model == 2 else n_main
     parts = np.zeros(4)  # channel parts and their best harmonic, reset per root
     best = np.zeros(4)
+    # the lossy substrate's squared wavenumbers at each frequency (complex: a product, not the
+    # general power)
+    kl2_arr = np.empty(nf, dtype=np.complex128)
+    kt2_arr = np.empty(nf, dtype=np.complex128)
+    for jf in range(nf):
+        kl2_arr[jf] = (w_arr[jf] / clc) * (w_arr[jf] / clc)
+        kt2_arr[jf] = (w_arr[jf] / ctc) * (w_arr[jf] / ctc)
     # path_only: branch followed per frequency (-1 none) and whether the wave still travels
     path_br = np.zeros(nf, dtype=np.int64)
     path_on = np.ones(nf, dtype=np.bool_)
@@ -1054,7 +1057,7 @@ def solve_grid(
                 continue
             w = w_arr[jf]
             # the rod's compliance 1/Z (optgrade.resonators), only where the kernel solves
-            z_num, z_den = rod_parts_at(w, h_arr[ic], m_arr[ic], rod_area, rod_e, rod_rho)
+            z_num, z_den = rod_parts_at(w, h_arr[ic], m_arr[ic], rod_root, rod_slowness)
             iz = z_den / z_num if z_num != 0.0 else complex(math.inf, 0.0)
             t = (w - w0) / dw
             wi = int(math.floor(t))
@@ -1069,8 +1072,8 @@ def solve_grid(
                     is_blended[jw] = True
             kl2_0 = (w / cl) ** 2 + 0j
             kt2_0 = (w / ct) ** 2 + 0j
-            kl2 = (w / clc) * (w / clc)  # complex: a product, not the general power
-            kt2 = (w / ctc) * (w / ctc)
+            kl2 = kl2_arr[jf]
+            kt2 = kt2_arr[jf]
             kr = w / cr
             kt_s = w / ct
             kl_s = w / cl
