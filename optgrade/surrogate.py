@@ -808,7 +808,9 @@ def _compliance_d(q, kl2, kt2, mu):
     """G(q) of `_compliance` and dG/dq: G'/G = 1/(2 alpha^2) - R'/R with
     R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha)),
     where beta/alpha + alpha/beta = (2q - kL^2 - kT^2)/(alpha beta) (alpha^2 = q - kL^2,
-    beta^2 = q - kT^2): three complex divisions in all."""
+    beta^2 = q - kT^2). With R = N / M (the rationalised form N = num, M = den where it is
+    the better conditioned one, else N = R, M = 1), G = -alpha kT^2 M / (mu N) and
+    G'/G = (N ab - 2 dR_ab al2 M) / (2 al2 N ab): one complex division in all."""
     alpha = _vert(q, kl2)
     beta = _vert(q, kt2)
     c = 2.0 * q - kt2
@@ -817,21 +819,23 @@ def _compliance_d(q, kl2, kt2, mu):
     b = 4.0 * q * ab
     den = a + b
     if abs(den) >= abs(a):
-        num = (
+        rn = (
             16.0 * q * q * q * (kl2 - kt2)
             + 8.0 * q * q * kt2 * (3.0 * kt2 - 2.0 * kl2)
             - 8.0 * q * kt2 * kt2 * kt2
             + kt2 * kt2 * kt2 * kt2
         )
-        r = num / den
+        rm = den
     else:
-        r = a - b
-    gq = -alpha * kt2 / (mu * r)
+        rn = a - b
+        rm = 1.0 + 0j
     al2 = q - kl2
-    # dR times alpha beta, and G'/G = (r ab - 2 dR_ab al2) / (2 al2 r ab)
+    # dR times alpha beta
     dr_ab = (4.0 * c - 4.0 * ab) * ab - 2.0 * q * (2.0 * q - kl2 - kt2)
-    rab = r * ab
-    return gq, gq * (rab - 2.0 * dr_ab * al2) / (2.0 * al2 * rab)
+    nab = rn * ab
+    two_al2_nab = 2.0 * al2 * nab
+    scale = -alpha * kt2 * rm / (mu * rn * two_al2_nab)
+    return scale * two_al2_nab, scale * (nab - 2.0 * dr_ab * al2 * rm)
 
 
 @njit(cache=True)
