@@ -467,7 +467,7 @@ def _series_table(n_max: int, tol: float = 1e-16) -> np.ndarray:
     return np.concatenate([_COEF[:n_max], thr])
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _n_used(coef, ax2):
     """Number of series terms needed at |x^2| = ax2 (see `_series_table`)."""
     n_max = coef.size // 2
@@ -499,7 +499,7 @@ def _same_blend(idx, wts, c):
     return True
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _sqrt_right(z):
     """Principal square root of z with Re z >= 0 (the only half-plane `_vert` needs): two
     real roots and a division, half the time of cmath.sqrt in the compiled kernel."""
@@ -511,7 +511,7 @@ def _sqrt_right(z):
     return complex(t, 0.5 * y / t)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _vert(q, k2):
     d = q - k2
     if d.real < 0.0:
@@ -573,7 +573,7 @@ def _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
     return t / (a * b)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _kappa_cell(K, a, n, k0, dk):
     """Catmull-Rom stencil start j, offset u and mirror sign of real K on the kappa grid (Rest is
     symmetric about the zone edge kappa = 1)."""
@@ -591,7 +591,7 @@ def _kappa_cell(K, a, n, k0, dk):
     return j, t - j, sgn
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _cr_weights(u):
     """Catmull-Rom weights of the four stencil points at offset u."""
     u2 = u * u
@@ -623,7 +623,7 @@ def _rest(K, a, table, k0, dk, wi, wt):
     return val, sgn * der / dk * a / math.pi
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _rest_re(K, a, table, k0, dk, wi, wt):
     """Re Rest at real K (the value of `_rest` only, real part: the real-axis scan's path)."""
     j, u, _ = _kappa_cell(K, a, table.shape[0], k0, dk)
@@ -649,7 +649,7 @@ def _split_shear(xi2, kl2, kt2):
     return ratio / (1.0 + ratio)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _re_compliance(q, kl2, kt2, mu):
     """Re G at real xi^2 = q for a lossless solid (real arithmetic, same branches as _vert)."""
     c = (2.0 * q - kt2) ** 2
@@ -688,7 +688,7 @@ def _im_compliance(q, kl2, kt2, mu):
     return 4.0 * q * p2 * s * kt2 / (mu * (c * c * c * c + 16.0 * q * q * p2 * s * s))
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _ff2_re(q, radius, model, coef):
     if model == 2:
         return 1.0
@@ -707,7 +707,7 @@ def _ff2_re(q, radius, model, coef):
     return s * s
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _main_re(K, a, b, radius, model, kl2, kt2, mu, coef, n_main):
     """Re of the main harmonics at real K, lossless (fast path of the real-axis scan)."""
     g = 2.0 * math.pi / a
@@ -746,7 +746,7 @@ def _rayleigh(q, kl2, kt2):
     return a - b
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _rayleigh_d(q, kl2, kt2):
     """Rayleigh function R(q) of `_rayleigh`, dR/dq and alpha (the m = 0 vertical wavenumber):
     R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (2q - kL^2 - kT^2)/(alpha beta)."""
@@ -765,7 +765,7 @@ def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0,
     return d * _rayleigh(K * K, kl2, kt2)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _ff2_d(q, radius, model, coef):
     """Form factor F(q) and dF/dq at complex q = xi^2 (see `_ff2`)."""
     if model == 2:
@@ -803,7 +803,7 @@ def _ff2_d(q, radius, model, coef):
     return s * s, 2.0 * s * ds * r2
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _compliance_d(q, kl2, kt2, mu):
     """G(q) of `_compliance` and dG/dq: G'/G = 1/(2 alpha^2) - R'/R with
     R' = 4 (2q - kT^2) - 4 alpha beta - 2 q (beta/alpha + alpha/beta) (alpha' = 1/(2 alpha)),
@@ -956,7 +956,7 @@ def _inverse_quadratic(ka, ha, kb, hb, kc, hc):
     return ka * hb * hc / (dab * dac) - kb * ha * hc / (dab * dbc) + kc * ha * hb / (dac * dbc)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _pole_factor(K, lo, hi, pole_lo, pole_hi):
     """(K - lo)(hi - K), each factor only where that end of the bracket is a pole: multiplied
     into Re D it removes the poles (positive inside the bracket)."""
