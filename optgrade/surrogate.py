@@ -19,24 +19,27 @@ algorithm as `optgrade.bands.solve_points`, exact closed-form T_0 and T_-1 at co
 tables only have to carry the smooth part). Accuracy against the direct solver is measured in
 tests/test_surrogate.py (|dK'|/K' < 1e-3 on bound branches, K'' within 5 %).
 
-Kernel speed (benchmarks/bench_dispersion.py). Real axis: the pole-side sign of the pole-free
-Re D is kept per cell and branch; the bracket is continued from the previous frequencies' roots
+Kernel speed (benchmarks/bench_dispersion.py, benchmarks/bench_propagation.py; method, checks
+and figures in docs/surrogate-speed.md). Real axis: the pole-side sign of the pole-free Re D is
+kept per cell and branch; the bracket is continued from the roots of the branch's last visits
 (first a narrow one about their linear extrapolation, then the wide one about K w / w_prev,
-sign-checked, else the full scan); a branch that had no root stays without root while the scan
-point that came closest to a sign change keeps GAP_KEEP of its margin (one evaluation instead
-of the scan; a full scan at least every GAP_RESCAN frequencies, the interval doubling up to
-GAP_RESCAN_MAX while the rescans find the gap no narrower, and always after a frequency step above
-GAP_STEP); Illinois stops at ILLINOIS_TOL, or after its first step where inverse quadratic
-interpolation confirms the root.
+sign-checked; where both fail but their failed ends enclose the root, those; else the full
+scan); a branch that had no root stays without root while the scan point that came closest to a
+sign change keeps GAP_KEEP of its margin (one evaluation instead of the scan; a full scan at
+least every GAP_RESCAN frequencies, the interval doubling up to GAP_RESCAN_MAX while the rescans
+find the gap no narrower, and always after a frequency step above GAP_STEP); Illinois stops at
+ILLINOIS_TOL, or where inverse quadratic interpolation through the bracket ends and the newest
+point confirms the root, and in a continued bracket takes that interpolation as its next point.
 Complex Newton on D R_0: analytic slope (`_pole_free_d`), iteration count and acceptance of the
 difference-slope Newton of `optgrade.bands`, whose first step reuses D and its slope at the
 real-axis root and whose last iteration is skipped where quadratic convergence predicts it below
 the stop (never the final one, so acceptance is unchanged); the difference-slope Newton remains
 the fallback where the analytic one missed the acceptance step by little (FD_RETRY); the disc
-form-factor series stops as early as each argument allows. Checked against the earlier kernel
-of this file (full scans, plain Newton from the real-axis root) on 20 x 60 random cells x 256
-frequencies of each example study: no branch appears or vanishes, the same first-order points,
-K' within 3.1e-8 and K'' within 1.1e-5 (relative).
+form-factor series stops as early as each argument allows. The rod's compliance is evaluated
+only at the points solved, and `path_only` solves only the points the WKB march reads. Checked
+against the earlier kernels of this file on 20 x 60 random cells x 256 frequencies of each
+example study: no branch appears or vanishes, the same first-order points, K within 1e-8 at
+Newton roots and 1.6e-7 at first-order ones (relative).
 
 Disk cache: one memory-mappable ``<key>.npy`` (complex table) plus ``<key>.json`` (key, format
 version, grids, SHA-256 of the table bytes) under ``cache_dir`` (default: environment variable
