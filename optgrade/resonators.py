@@ -93,11 +93,16 @@ def rod_parts_at(w, height, head_mass, a_root, slowness):
     # E A k_r = A sqrt(E rho) w  (impedance-like factor, N/m)
     eak = a_root * w
     phase = w * slowness * height
-    # sin and cos of the complex phase from one set of real sin, cos, sinh, cosh
+    # sin and cos of the complex phase from one real sin and cos and one expm1 (cosh and sinh
+    # of y from em = e^|y| - 1 without cancellation: sinh |y| = em (2 + em) / (2 (1 + em)),
+    # cosh y = 1 + em^2 / (2 (1 + em)))
     x = phase.real
     y = phase.imag
     sx, cx = math.sin(x), math.cos(x)
-    ch, sh = math.cosh(y), math.sinh(y)
+    em = math.expm1(abs(y))
+    half = 0.5 / (1.0 + em)
+    sh = math.copysign(em * ((2.0 + em) * half), y)
+    ch = 1.0 + em * (em * half)
     s = complex(sx * ch, cx * sh)
     c = complex(cx * ch, -sx * sh)
     # q = M w^2 / (E A k_r) = M w / (A sqrt(E rho)), finite at w = 0
