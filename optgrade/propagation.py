@@ -98,7 +98,6 @@ RADIATING: tuple[str, ...] = (
 ADIABATIC_LIMIT = 0.1
 
 
-
 class _Modes(Protocol):
     k: np.ndarray
     shares: np.ndarray
@@ -289,9 +288,10 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
             tau[j] = abs(k[br, j, f].imag) * (2.0 * a[j])
             total += tau[j]
             cum[j] = total
-        p_turn = math.exp(-total) if is_turning else 0.0
-        back_out = p_turn * math.exp(-total)
-        through = 0.0 if is_turning else math.exp(-total)
+        e_total = math.exp(-total)
+        p_turn = e_total if is_turning else 0.0
+        back_out = p_turn * e_total
+        through = 0.0 if is_turning else e_total
         for j in range(n_path):
             gone = -math.expm1(-tau[j])
             # shares renormalised per cell (nan, inf and negatives -> 0; none: absorbed)
@@ -312,9 +312,9 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
             leak = 0.0
             xs = 0.0
             for j in range(n_path):
-                centre = x[j] + 0.5 * a[j]
-                leak += sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]
-                xs += (sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]) * centre
+                part = sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]
+                leak += part
+                xs += part * (x[j] + 0.5 * a[j])
             fr[2 + c, f] = leak
             if leak > 0.0:
                 pos[2 + c, f] = xs / leak

@@ -1216,8 +1216,8 @@ def solve_grid(
                     for attempt in range(n_try):
                         kc_ = kg_n if attempt + 1 < n_try else kg
                         dl_ = dlt_n if attempt + 1 < n_try else dlt
-                        k1 = kc_ * (1.0 - dl_) if br == 0 else kc_ * (1.0 + dl_)
-                        k2 = kc_ * (1.0 + dl_) if br == 0 else kc_ * (1.0 - dl_)
+                        k1 = kc_ * (1.0 - dirn * dl_)  # the end on the pole's side
+                        k2 = kc_ * (1.0 + dirn * dl_)
                         inside = (min(k1, k2) > lo + 1e-9 * lo) and (max(k1, k2) < hi - 1e-9 * hi)
                         if not inside:
                             continue
