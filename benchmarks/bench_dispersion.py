@@ -29,9 +29,9 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
 
-from optgrade.bands import direct_local_modes  # noqa: E402
+from optgrade.dispersion._direct import direct_local_modes  # noqa: E402
+from optgrade.dispersion._surrogate import Surrogate  # noqa: E402
 from optgrade.study import load_study  # noqa: E402
-from optgrade.surrogate import Surrogate  # noqa: E402
 
 
 def _times(fn, repeats):

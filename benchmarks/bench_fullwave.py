@@ -56,7 +56,7 @@ def memory_bandwidth(n: int = 1 << 25, repeat: int = 5) -> dict[str, float]:
 
 def kernel_rate(grid, medium, n_steps: int = 400) -> float:
     """Cell updates per second of the two stencil kernels alone (no rods, no recording)."""
-    from optgrade import _fullwave_kernel as k
+    from optgrade.fullwave import _kernel as k
 
     nx, nz = grid.nx, grid.nz
     f = [np.zeros((nx, nz)) for _ in range(5)]
@@ -89,8 +89,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
     args = parser.parse_args(argv)
 
-    from optgrade import _fullwave_kernel
-    from optgrade import fullwave as fw
+    from optgrade.fullwave import _kernel as _fullwave_kernel
+    from optgrade.fullwave import _solver as fw
     from optgrade.layout import layout_from_cells
     from optgrade.study import load_study
 

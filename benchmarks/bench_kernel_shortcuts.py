@@ -28,8 +28,8 @@ from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
 
+from optgrade.dispersion._surrogate import Surrogate  # noqa: E402
 from optgrade.study import load_study  # noqa: E402
-from optgrade.surrogate import Surrogate  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 

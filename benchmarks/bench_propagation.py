@@ -3,10 +3,10 @@
 Measures, on one core (the machine is shared, so figures are noisy; the best of several
 repeats is reported, with the median beside it):
 
-- the WKB march alone (``optgrade.propagation.march``) on precomputed local modes;
+- the WKB march alone (``optgrade.propagation._wkb.march``) on precomputed local modes;
 - the surrogate call ``local_modes`` for the same cells (tables built beforehand), all points
   and ``path_only`` (the points the march reads);
-- the total ``trace`` (``optgrade.propagation.trace``: path-only surrogate call + march), and the
+- the total ``trace`` (``optgrade.propagation._wkb.trace``: path-only surrogate call + march), and the
   same with every point solved (``path_only=False``);
 - memory: tracemalloc peak and retained size after scoring N layouts in a row, to show it is
   flat in N (nothing accumulates).
@@ -32,7 +32,7 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from optgrade.layout import layout_from_cells  # noqa: E402
-from optgrade.propagation import march, trace  # noqa: E402
+from optgrade.propagation._wkb import march, trace  # noqa: E402
 
 N_CELLS, N_FREQ = 60, 256
 
@@ -68,8 +68,8 @@ def main() -> None:
     study = None
     if Path(args.study).exists():
         try:
+            from optgrade.dispersion._surrogate import surrogate_for_study
             from optgrade.study import load_study
-            from optgrade.surrogate import surrogate_for_study
 
             study = load_study(args.study)
             t0 = time.perf_counter()

@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from optgrade import search
+from optgrade.search import _owner as search
 from optgrade.study import load_study
 
 REPO = Path(__file__).resolve().parent.parent

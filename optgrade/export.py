@@ -25,11 +25,10 @@ from typing import Any
 
 import numpy as np
 
-import objectives
-from objectives._common import wanted_fraction
-from optgrade import __version__, fabrication, profiles
+from optgrade import __version__, fabrication, objectives, profiles
 from optgrade._atomic import atomic_write
-from optgrade.propagation import CHANNELS
+from optgrade.objectives._common import wanted_fraction
+from optgrade.propagation._wkb import CHANNELS
 from optgrade.study import SITE_CAUTION
 
 __all__ = ["SITE_CAUTION", "export_layout", "export_trial"]
@@ -165,7 +164,8 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from optgrade import _plot_search, _plot_trace
+    from optgrade.plotting import search as _plot_search
+    from optgrade.plotting import trace as _plot_trace
 
     fig, axes = plt.subplots(3, 2, figsize=_plot_search.figure_size(6))
     ax = axes.ravel()
@@ -233,8 +233,8 @@ def export_layout(
     extra: dict[str, Any] | None = None,
 ) -> dict[str, Path]:
     """Trace ``layout`` and write all export files into ``out_dir``; returns their paths."""
-    from optgrade import search
     from optgrade.layout import write_table
+    from optgrade.search import _owner as search
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -366,12 +366,12 @@ def export_trial(
 
     Raises
     ------
-    optgrade.search.SearchError
+    optgrade.search._owner.SearchError
         Unknown trial, or a trial without parameters.
     """
     import optuna
 
-    from optgrade import search
+    from optgrade.search import _owner as search
 
     if isinstance(source, str):
         source = optuna.load_study(study_name=study.meta.name,

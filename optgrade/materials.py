@@ -7,7 +7,7 @@ category and a source string per entry. Wave speeds are derived here, never stor
 - shear speed                 cT = sqrt(E / (2 rho (1 + nu)))
 - bar (thin-rod) speed        c_bar = sqrt(E / rho)
 - Rayleigh speed              cR = exact root of the Rayleigh equation,
-                              :func:`optgrade.halfspace.rayleigh_speed`
+                              :func:`optgrade.ground._halfspace.rayleigh_speed`
 
 (isotropic linear elasticity; e.g. J. D. Achenbach, *Wave Propagation in Elastic Solids*, 1973,
 chapter 4; K. F. Graff, *Wave Motion in Elastic Solids*, 1975, for the bar speed).
@@ -128,7 +128,7 @@ def bar_speed(youngs_modulus: ArrayLike, density: ArrayLike) -> np.ndarray:
 
 def derived_speeds(material: Material) -> dict[str, float]:
     """Derived speeds of a library material (m/s): ``cl``, ``ct``, ``bar``, ``cr``."""
-    from optgrade.halfspace import rayleigh_speed
+    from optgrade.ground._halfspace import rayleigh_speed
 
     cl, ct = bulk_speeds(material.youngs_modulus, material.density, material.poisson)
     return {

@@ -22,8 +22,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
-from objectives import BUILTIN as BUILTIN_GOALS
 from optgrade.errors import StudyError
+from optgrade.objectives import BUILTIN as BUILTIN_GOALS
 from optgrade.units import UnitError, format_quantity, parse_quantity
 
 if sys.version_info >= (3, 11):
@@ -551,7 +551,7 @@ def _pydantic_messages(exc: ValidationError, out: _Collector) -> None:
 
 
 def _resolve_substrate(raw: _SubstrateIn, out: _Collector) -> dict[str, Any] | None:
-    from optgrade.halfspace import rayleigh_speed
+    from optgrade.ground._halfspace import rayleigh_speed
     from optgrade.materials import bulk_speeds, elastic_from_speeds, get_material
 
     section = ("substrate",)
@@ -658,9 +658,9 @@ def first_resonance_range(resonator: ResonatorSpec, height: tuple[float, float])
 
     The first resonance falls with height and with head mass (Blevins 1979, axial bar with tip
     mass), so the extremes are (tallest, heaviest) and (shortest, lightest). Computed with
-    :func:`optgrade.resonators.rod_resonances`.
+    :func:`optgrade.resonators._rod.rod_resonances`.
     """
-    from optgrade.resonators import rod_resonances
+    from optgrade.resonators._rod import rod_resonances
 
     args = (resonator.diameter, resonator.youngs_modulus, resonator.density)
     f_low = float(rod_resonances(height[1], *args, head_mass=resonator.head_mass[1])[0])

@@ -56,7 +56,7 @@ def clone(study, **over):
 
 
 def fake_trace(study, layout, surrogate=None):
-    """Stand-in for optgrade.propagation.trace_study with a simple, known answer.
+    """Stand-in for optgrade.propagation._wkb.trace_study with a simple, known answer.
 
     Each resonator of height h is taken to convert the surface wave to backward shear in a
     band around f_r = c / (4 h) (quarter-wave rod, c = 5000 m/s invented); a frequency is
@@ -80,7 +80,7 @@ def fake_trace(study, layout, surrogate=None):
 
 
 def fake_pipeline(study):
-    """Stand-in for the (surrogate, trace_fn) pair of optgrade.search.make_context."""
+    """Stand-in for the (surrogate, trace_fn) pair of optgrade.search._owner.make_context."""
     return None, lambda layout: fake_trace(study, layout)
 
 

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from optgrade.cli import main
-from optgrade.propagation import CHANNELS
+from optgrade.propagation._wkb import CHANNELS
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH = ROOT / "studies" / "bench_backward_shear.toml"
@@ -26,7 +26,7 @@ SITE_TABLE = ROOT / "studies" / "layouts" / "site_ground_barrier.csv"
 
 def _has_surrogate() -> bool:
     try:
-        from optgrade.surrogate import surrogate_for_study  # noqa: F401
+        from optgrade.dispersion._surrogate import surrogate_for_study  # noqa: F401
     except ImportError:
         return False
     return True

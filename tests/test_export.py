@@ -14,8 +14,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from search_helpers import CHANNELS, fake_pipeline, fake_study, fake_trace
 
-from optgrade import export, fabrication, profiles, search
+from optgrade import export, fabrication, profiles
 from optgrade.layout import read_header, read_table
+from optgrade.search import _owner as search
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -125,7 +126,7 @@ def test_real_search_export_cli_round_trip(tmp_path):
     """Command line on the bench example: a short search exports the best trial; `optgrade
     export` re-exports it; the table read back and traced gives the exported fractions."""
     from optgrade.cli import main
-    from optgrade.propagation import trace_study
+    from optgrade.propagation._wkb import trace_study
     from optgrade.study import load_study
 
     study_path = REPO / "studies" / "bench_backward_shear.toml"

@@ -1,4 +1,4 @@
-"""Checks of the 2-D full-wave solver (optgrade.fullwave) against outside references.
+"""Checks of the 2-D full-wave solver (optgrade.fullwave._solver) against outside references.
 
 Small, coarse configurations so that the whole file runs in about a minute on two cores. The
 invented test substrate is aluminium (cL 6320 m/s, cT 3130 m/s, 2700 kg/m^3: handbook
@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from optgrade import _fullwave_kernel as kernel
-from optgrade import fullwave as fw
+from optgrade.fullwave import _kernel as kernel
+from optgrade.fullwave import _solver as fw
 
 ALU = fw.Medium(rho=2700.0, cl=6320.0, ct=3130.0)
 BAND = (125e3, 250e3)
@@ -65,7 +65,7 @@ def test_rayleigh_speed_nu_quarter_matches_exact_root():
 
 
 def test_rayleigh_speed_aluminium_matches_halfspace_root():
-    """Aluminium: measured speed within 1 % of optgrade.halfspace.rayleigh_speed (the Rayleigh
+    """Aluminium: measured speed within 1 % of optgrade.ground._halfspace.rayleigh_speed (the Rayleigh
     equation root, Achenbach 1973); handbook cR ~ 2900 m/s (physics.md, from memory)."""
     c, cr = _incident_phase_speed(ALU, "fast")
     assert np.all(np.abs(c / cr - 1.0) < 0.01), c

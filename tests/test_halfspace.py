@@ -1,11 +1,11 @@
-"""Checks of optgrade.halfspace against published values and independent limits."""
+"""Checks of optgrade.ground._halfspace against published values and independent limits."""
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from optgrade.halfspace import (
+from optgrade.ground._halfspace import (
     Substrate,
     rayleigh_function,
     rayleigh_speed,

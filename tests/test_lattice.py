@@ -1,16 +1,16 @@
-"""Checks of optgrade.lattice: symmetry, truncation convergence, brute-force sums, energy split."""
+"""Checks of optgrade.dispersion._lattice: symmetry, truncation convergence, brute-force sums, energy split."""
 
 import numpy as np
 import pytest
 
-from optgrade.halfspace import Substrate, surface_compliance
-from optgrade.lattice import (
+from optgrade.dispersion._lattice import (
     default_harmonics,
     form_factor_sq,
     harmonic_term,
     lattice_sum,
     radiation_parts,
 )
+from optgrade.ground._halfspace import Substrate, surface_compliance
 
 ALU = Substrate(2700.0, 6320.0, 3130.0)  # handbook aluminium speeds (from memory, physics.md)
 SOIL = Substrate(1800.0, 400.0, 200.0)  # invented soil

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from search_helpers import CHANNELS, clone, fake_study, fake_trace
 
-import objectives
+from optgrade import objectives
 from optgrade.layout import layout_from_cells
 
 
@@ -63,10 +63,10 @@ def test_lossy_rayleigh_wavenumber_against_correspondence_principle():
     on their (real) ratio, so by the elastic-viscoelastic correspondence principle (R. M.
     Christensen, *Theory of Viscoelasticity*, 1982, ch. 2 -- from memory)
     kR = kR0 (1 - i eta)^(-1/2), i.e. Im kR ~ (eta / 2) kR0. kR0 from the lossless root of
-    optgrade.halfspace (Achenbach 1973, sec. 5.11); the complex root must also zero the
-    Rayleigh function of optgrade.halfspace taken with the complex speeds."""
-    from objectives._common import lossy_rayleigh_wavenumber
-    from optgrade.halfspace import Substrate, rayleigh_function
+    optgrade.ground._halfspace (Achenbach 1973, sec. 5.11); the complex root must also zero the
+    Rayleigh function of optgrade.ground._halfspace taken with the complex speeds."""
+    from optgrade.ground._halfspace import Substrate, rayleigh_function
+    from optgrade.objectives._common import lossy_rayleigh_wavenumber
 
     f = np.array([30.0, 55.0, 80.0])
     for cl, ct, eta in [(6320.0, 3130.0, 0.0), (6320.0, 3130.0, 0.01), (400.0, 200.0, 0.04)]:
@@ -100,7 +100,7 @@ def test_blocking_on_lossy_ground_discounts_the_bare_ground():
     0.5; the plain transmitted fraction stays in the details."""
     eta = 0.04
     s = fake_study(substrate__loss_factor=eta, goal__channel="blocking")
-    from optgrade.halfspace import rayleigh_speed
+    from optgrade.ground._halfspace import rayleigh_speed
 
     k0 = 2 * np.pi * F / rayleigh_speed(s.substrate.cl, s.substrate.ct)
     t_bare = np.exp(-2 * (k0 * (1 - 1j * eta) ** -0.5).imag * LAYOUT.length)
@@ -122,9 +122,9 @@ def test_vanishing_resonators_on_lossy_site_ground_block_nothing():
     through the real surrogate and march must score ~0 insertion blocking (within 0.02)."""
     from pathlib import Path
 
-    from optgrade.propagation import trace_study
+    from optgrade.dispersion._surrogate import surrogate_for_study
+    from optgrade.propagation._wkb import trace_study
     from optgrade.study import load_study
-    from optgrade.surrogate import surrogate_for_study
 
     s = load_study(Path(__file__).resolve().parent.parent / "studies" /
                    "site_ground_barrier.toml")
@@ -191,7 +191,7 @@ def test_new_goal_is_one_file_and_one_registration(tmp_path, monkeypatch):
     """A goal in a new module registers itself and joins the weighted score by name."""
     (tmp_path / "spread_goal.py").write_text(textwrap.dedent('''
         import numpy as np
-        from objectives import Objective, ObjectiveValue, register
+        from optgrade.objectives import Objective, ObjectiveValue, register
 
         @register
         class Spread(Objective):
@@ -222,7 +222,8 @@ def test_interpolated_robustness_matches_full_traces():
     full (real surrogate, bench example) within 0.01 of the score."""
     from pathlib import Path
 
-    from optgrade import profiles, search
+    from optgrade import profiles
+    from optgrade.search import _owner as search
     from optgrade.study import load_study
 
     s = load_study(Path(__file__).resolve().parent.parent / "studies" /

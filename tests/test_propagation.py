@@ -1,4 +1,4 @@
-"""WKB march along a graded row (optgrade.propagation), physics.md section 6.
+"""WKB march along a graded row (optgrade.propagation._wkb), physics.md section 6.
 
 Two groups of checks:
 
@@ -27,7 +27,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from optgrade.layout import layout_from_cells
-from optgrade.propagation import CHANNELS, march
+from optgrade.propagation._wkb import CHANNELS, march
 
 CR = 2900.0  # m/s, an aluminium-like Rayleigh speed (physics.md section 3, from memory)
 
@@ -232,8 +232,8 @@ def test_channel_map_with_nothing_to_show_says_so():
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from optgrade._plot_trace import plot_channel_map
-    from optgrade.propagation import CHANNELS
+    from optgrade.plotting.trace import plot_channel_map
+    from optgrade.propagation._wkb import CHANNELS
 
     freq = np.linspace(100e3, 200e3, 8)
     empty = SimpleNamespace(

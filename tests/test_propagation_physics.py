@@ -14,7 +14,7 @@ Issue 4 "Checks":
 * the eps flag rises when the same height change is packed into fewer cells (physics.md s. 6);
 * table round trip (write, read, trace) gives identical fractions.
 
-The band solver (``optgrade.bands.solve_bands``) solves the Bloch relation directly for one cell,
+The band solver (``optgrade.dispersion._direct.solve_bands``) solves the Bloch relation directly for one cell,
 independently of the surrogate tables the trace uses.
 """
 
@@ -28,15 +28,15 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from optgrade.layout import layout_from_cells, read_table, write_table
-from optgrade.propagation import CHANNELS, trace, trace_study
+from optgrade.propagation._wkb import CHANNELS, trace, trace_study
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH = ROOT / "studies" / "bench_backward_shear.toml"
 
-pytest.importorskip("optgrade.surrogate")
-from optgrade.bands import Cell, solve_bands  # noqa: E402
+pytest.importorskip("optgrade.dispersion._surrogate")
+from optgrade.dispersion._direct import Cell, solve_bands  # noqa: E402
+from optgrade.dispersion._surrogate import surrogate_for_study  # noqa: E402
 from optgrade.study import load_study  # noqa: E402
-from optgrade.surrogate import surrogate_for_study  # noqa: E402
 
 
 @pytest.fixture(scope="module")

@@ -1,10 +1,10 @@
-"""Checks of optgrade.resonators against textbook formulas and independent root finders."""
+"""Checks of optgrade.resonators._rod against textbook formulas and independent root finders."""
 
 import numpy as np
 import pytest
 from scipy.optimize import fsolve
 
-from optgrade.resonators import (
+from optgrade.resonators._rod import (
     Rod,
     oscillator_stiffness,
     rod_compliance,

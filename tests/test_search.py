@@ -24,8 +24,8 @@ import pytest
 from optuna.trial import TrialState
 from search_helpers import fake_pipeline, fake_study
 
-from optgrade import search
 from optgrade.cli import main
+from optgrade.search import _owner as search
 
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
@@ -138,9 +138,9 @@ PLANTED_TOL = 0.1
 def _lower_cutoff(study, height, freq):
     """Band solver: (last frequency with, first frequency without) the lower branch of a cell,
     scanning up from the bottom of ``freq``."""
-    from optgrade.bands import Cell, solve_bands
-    from optgrade.halfspace import Substrate
-    from optgrade.resonators import Rod
+    from optgrade.dispersion._direct import Cell, solve_bands
+    from optgrade.ground._halfspace import Substrate
+    from optgrade.resonators._rod import Rod
 
     sb, rs = study.substrate, study.resonator
     cell = Cell(Substrate(sb.density, sb.cl, sb.ct, sb.loss_factor),
@@ -157,7 +157,7 @@ def test_search_finds_planted_band_solver_case(tmp_path):
 
     Invented study: 40 aluminium pins (1 mm) at 3 mm on an aluminium half-space, wave entering
     at the short end, goal: block the surface wave. Direct root solves
-    (`optgrade.bands.solve_bands`, no tables, 29 frequencies 100-300 kHz) give where the lower
+    (`optgrade.dispersion._direct.solve_bands`, no tables, 29 frequencies 100-300 kHz) give where the lower
     (surface) branch of the 5 mm and of the 8 mm cell ends. Each cut-off must lie below that
     pin's quarter-wave resonance c_bar / (4 h) of a fixed-free rod (R. D. Blevins, *Formulas for
     Natural Frequency and Mode Shape*, 1979, axial modes of a fixed-free bar -- from memory): the
@@ -173,9 +173,9 @@ def test_search_finds_planted_band_solver_case(tmp_path):
     about five. Asserted: the planted row scores >= 1 - 0.1 through the real pipeline, and the
     seeded TPE search (60 trials, 2 workers) finds a layout scoring at least the planted
     score - 0.1."""
-    import objectives
+    from optgrade import objectives
     from optgrade.layout import layout_from_cells
-    from optgrade.propagation import trace_study
+    from optgrade.propagation._wkb import trace_study
     from optgrade.study import study_from_text
 
     probe = study_from_text(PLANTED_TOML.format(lo='"150 kHz"', hi='"250 kHz"'))
@@ -243,7 +243,7 @@ SCRIPT = textwrap.dedent("""
     import json, sys
     sys.path.insert(0, {here!r})
     from search_helpers import fake_study, slow_pipeline
-    from optgrade import search
+    from optgrade.search import _owner as search
     s = fake_study()
     out = search.run_search(s, {out!r}, n_trials={n}, n_jobs=2, storage={url!r},
                             pipeline=slow_pipeline, show_progress=False, chunk_size=2,

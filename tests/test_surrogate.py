@@ -8,10 +8,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from optgrade.bands import direct_local_modes
-from optgrade.halfspace import Substrate
-from optgrade.resonators import Rod
-from optgrade.surrogate import LocalModes, Surrogate, surrogate_for_study
+from optgrade.dispersion._direct import direct_local_modes
+from optgrade.dispersion._surrogate import LocalModes, Surrogate, surrogate_for_study
+from optgrade.ground._halfspace import Substrate
+from optgrade.resonators._rod import Rod
 
 STUDIES = Path(__file__).resolve().parents[1] / "studies"
 
@@ -150,7 +150,7 @@ def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
     the full solve within 1e-6 (relative; frequency continuation runs over fewer frequencies
     per cell); and far fewer roots are solved (self-consistency of a shortcut; the accuracy
     references are the direct-solve and full-wave checks)."""
-    from optgrade.propagation import CHANNELS, march
+    from optgrade.propagation._wkb import CHANNELS, march
 
     study, sur = bench_sur if which == "bench" else site_sur
     freq = np.linspace(*study.goal.band, 128)
@@ -316,7 +316,7 @@ def test_real_arithmetic_imaginary_compliance_matches_complex():
     """The kernel's real-arithmetic Im G below kT (channel split) equals Im of the complex
     surface compliance on both sides of kL, to 1e-12 relative (same formula, two arithmetics;
     steel-like speeds, values recalled from memory, only their ratio matters here)."""
-    from optgrade.surrogate import _compliance, _im_compliance
+    from optgrade.dispersion._surrogate import _compliance, _im_compliance
 
     w, cl, ct, mu = 2 * np.pi * 150e3, 5900.0, 3200.0, 80e9
     kl2, kt2 = (w / cl) ** 2, (w / ct) ** 2

@@ -9,7 +9,7 @@ the given height, spacing and head mass) by direct root solves, and writes
   ``angle_deg``, null elsewhere); ``resonances_hz``, ``gaps_hz``, ``warnings``, the cell, and
   for site-scale studies a ``caution``;
 - ``DIR/bands.csv``: one row per frequency and branch;
-- ``DIR/bands.png``: the band diagram (`optgrade._plot_bands.plot_bands`).
+- ``DIR/bands.png``: the band diagram (`optgrade.plotting.bands.plot_bands`).
 
 The same is available from Python as :func:`run_bands`.
 """
@@ -96,9 +96,9 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
 
 
 def _cell_from_study(study: Any, height: float, spacing: float, head_mass: float):
-    from optgrade.bands import Cell
-    from optgrade.halfspace import Substrate
-    from optgrade.resonators import Rod
+    from optgrade.dispersion._direct import Cell
+    from optgrade.ground._halfspace import Substrate
+    from optgrade.resonators._rod import Rod
 
     s, r = study.substrate, study.resonator
     substrate = Substrate(float(s.density), float(s.cl), float(s.ct), float(s.loss_factor or 0))
@@ -224,9 +224,9 @@ def run_bands(
 ):
     """Python API of `optgrade bands`: solve, write bands.json / bands.csv / bands.png.
 
-    Returns the `optgrade.bands.Bands`.
+    Returns the `optgrade.dispersion._direct.Bands`.
     """
-    from optgrade.bands import solve_bands
+    from optgrade.dispersion._direct import solve_bands
 
     lo, hi = (float(v) for v in study.goal.band)
     fmin = lo if fmin is None else float(fmin)
@@ -243,7 +243,7 @@ def run_bands(
     write_text(out / "bands.json", json.dumps(doc, indent=1))
     write_text(out / "bands.csv", bands_to_csv(bands))
     if figure:
-        from optgrade._plot_bands import plot_bands
+        from optgrade.plotting.bands import plot_bands
 
         title = None
         if scale == "site":

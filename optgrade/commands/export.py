@@ -48,7 +48,8 @@ def run(args: argparse.Namespace) -> int:
     """Export the trial; 0 done, 2 bad input."""
     import optuna
 
-    from optgrade import export, search
+    from optgrade import export
+    from optgrade.search import _owner as search
 
     study = open_study(args.study)
     try:

@@ -75,8 +75,8 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 
 def run(args: argparse.Namespace) -> int:
     """Run the search; 0 done, 2 bad input, 130 interrupted (best so far exported)."""
-    from optgrade import search
     from optgrade.profiles import ProfileError
+    from optgrade.search import _owner as search
 
     study = open_study(args.study)
     try:

@@ -1,6 +1,6 @@
 """``optgrade verify STUDY --layout TABLE.csv --out DIR [--fast]``: full-wave check of a layout.
 
-Runs the 2-D plane-strain full-wave solver (optgrade.fullwave) on the layout, once with the
+Runs the 2-D plane-strain full-wave solver (optgrade.fullwave._solver) on the layout, once with the
 resonators and once on the bare substrate, splits the outgoing power into the trace.json
 channels and compares them with the surrogate's 2-D line model. Writes
 
@@ -61,8 +61,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
 
     Returns the JSON payload. The same function backs the command line.
     """
-    from optgrade import _plot_fullwave as pf
-    from optgrade.fullwave import CHANNELS, rods_of, verify
+    from optgrade.fullwave._solver import CHANNELS, rods_of, verify
+    from optgrade.plotting import fullwave as pf
     from optgrade.study import SITE_CAUTION
 
     say = console.print if console is not None else (lambda *a, **k: None)
@@ -71,8 +71,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     lattice = None
     if is_lattice:
         try:
-            from optgrade.propagation import trace_study
-            from optgrade.surrogate import surrogate_for_study
+            from optgrade.dispersion._surrogate import surrogate_for_study
+            from optgrade.propagation._wkb import trace_study
 
             lattice = trace_study(study, layout, surrogate_for_study(study, model="lattice"))
         except Exception as exc:  # the figure is still useful without it

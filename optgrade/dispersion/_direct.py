@@ -1,15 +1,15 @@
 """Bloch band solver for one resonator cell: bound and leaky branches (physics.md section 5).
 
-The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.lattice`). We split
+The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.dispersion._lattice`). We split
 
     Sigma = sum_{m=-J}^{J-1} T_m(K) + Rest(K, w)
 
-where T_m are the (m, n = 0) "main" harmonics (J from `optgrade.lattice.main_orders`: J = 1,
+where T_m are the (m, n = 0) "main" harmonics (J from `optgrade.dispersion._lattice.main_orders`: J = 1,
 i.e. m = 0 and -1, unless the spacing exceeds about a Rayleigh wavelength). They carry the
 Rayleigh poles (K = kR and its folded images) and the branch points of every harmonic that can
 radiate, and are evaluated in closed form, at complex K as well. The rest (all other harmonics)
 is then smooth and analytic over the extended zone 0 < K < 2 pi/a and symmetric about the zone
-edge. The direct solver sums Rest exactly; the surrogate (`optgrade.surrogate`) interpolates it
+edge. The direct solver sums Rest exactly; the surrogate (`optgrade.dispersion._surrogate`) interpolates it
 from tables with a compiled copy of the root engine `solve_points` below.
 
 Branches (K in the extended zone 0 < K < 2 pi/a, so that a wave running in +x has K' > 0):
@@ -35,7 +35,7 @@ dropped.
 Leaky and lossy roots: K' from the real-axis root of Re D (lossless main terms), then complex
 Newton steps on D(K) R_0(K) (R_0, the Rayleigh function of the m = 0 harmonic, removes the
 nearby Rayleigh pole that substrate loss moves off the axis), with the main terms on the
-analytic continuation of their branches (`optgrade.halfspace.vertical_wavenumber`) and Rest by
+analytic continuation of their branches (`optgrade.ground._halfspace.vertical_wavenumber`) and Rest by
 a first-order Taylor step from the real axis. Near a branch point (Newton leaves the side of the
 cone it started on, or does not converge) the first-order value K'' = -Im D / (d Re D/dK) is
 kept and flagged (`Branch.is_first_order`); a first-order K'' < 0 is dropped. Loss factors of
@@ -43,7 +43,7 @@ rod and substrate enter D, so K'' includes material loss.
 
 Channel shares: K'' is split in proportion to the Im parts at K' (first order): each radiating
 main harmonic's Im T_m (lossless substrate) split into shear and compressional power
-(`optgrade.lattice._split_shares`), forward if K' + 2 pi m/a > 0, backward otherwise; the
+(`optgrade.dispersion._lattice._split_shares`), forward if K' + 2 pi m/a > 0, backward otherwise; the
 remainder of Im(Sigma - 1/Z) is absorbed (material loss). Sideways harmonics (n != 0) are not
 booked (`validity_warnings` says when they radiate).
 """
@@ -56,9 +56,15 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
-from optgrade.halfspace import Substrate, rayleigh_function
-from optgrade.lattice import MODELS, _split_shares, harmonic_term, lattice_sum, main_orders
-from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
+from optgrade.dispersion._lattice import (
+    MODELS,
+    _split_shares,
+    harmonic_term,
+    lattice_sum,
+    main_orders,
+)
+from optgrade.ground._halfspace import Substrate, rayleigh_function
+from optgrade.resonators._rod import Rod, is_thin_rod, rod_compliance, rod_resonances
 
 __all__ = [
     "Cell",
@@ -229,7 +235,7 @@ def solve_points(
         ``idx``; K has shape (len(idx),) or (len(idx), m); the derivative may be None when
         ``deriv`` is False.
     n_main : int
-        J of `optgrade.lattice.main_orders`: harmonics -J .. J-1 in closed form.
+        J of `optgrade.dispersion._lattice.main_orders`: harmonics -J .. J-1 in closed form.
 
     Returns
     -------
@@ -511,9 +517,9 @@ def direct_local_modes(
 
     Returns
     -------
-    optgrade.surrogate.LocalModes
+    optgrade.dispersion._surrogate.LocalModes
     """
-    from optgrade.surrogate import LocalModes
+    from optgrade.dispersion._surrogate import LocalModes
 
     if model not in MODELS:
         raise ValueError(f"model must be one of {MODELS}, got {model!r}")

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from objectives import Objective, ObjectiveValue, register
+from optgrade.objectives import Objective, ObjectiveValue, register
 
 
 @register

@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from objectives import Objective, ObjectiveValue, register
+from optgrade.objectives import Objective, ObjectiveValue, register
 
 EPS_LIMIT = 0.1
 

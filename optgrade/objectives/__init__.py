@@ -90,7 +90,7 @@ def register(cls: type[Objective]) -> type[Objective]:
 
 def _load_builtin() -> None:
     for module in BUILTIN:
-        importlib.import_module(f"{__name__}.{module}")
+        importlib.import_module(f"{__name__}._{module}")
 
 
 def names() -> list[str]:

@@ -7,7 +7,7 @@ Outgoing branch (physics.md section 3): alpha = sqrt(xi^2 - kL^2) with Re alpha 
 -i sqrt(kL^2 - xi^2) (principal root) inside the cone. The choice between the two forms is made on
 Re xi^2 against Re kL^2 (resp. kT^2), so the same expression continues analytically when a
 complex Bloch wavenumber moves off the real axis (leaky modes live on the improper sheet of the
-radiating harmonics; see `optgrade.lattice`).
+radiating harmonics; see `optgrade.dispersion._lattice`).
 
 Material damping of the substrate: both Lame moduli carry the factor (1 - i eta), so the complex
 speeds are c (1 - i eta)^(1/2); with exp(-i w t) this makes Im k > 0 (decay): energy is absorbed.

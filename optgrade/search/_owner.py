@@ -45,8 +45,8 @@ import numpy as np
 import optuna
 from optuna.trial import TrialState
 
-import objectives
-from optgrade import __version__, fabrication, profiles, propagation
+from optgrade import __version__, fabrication, objectives, profiles
+from optgrade.propagation import _wkb as propagation
 
 __all__ = [
     "DEFAULT_SAMPLER",
@@ -148,7 +148,8 @@ class _LastModes:
 
 def _real_pipeline(study: Any) -> tuple[Any, Callable[[Any], Any]]:
     """Surrogate of the study (disk-cached tables) and a trace function over the goal band."""
-    from optgrade import propagation, surrogate
+    from optgrade.dispersion import _surrogate as surrogate
+    from optgrade.propagation import _wkb as propagation
 
     if hasattr(surrogate, "surrogate_for_study"):
         sur = surrogate.surrogate_for_study(study)

@@ -1,6 +1,6 @@
 """Search figures drawn into given matplotlib Axes: optimisation history, Pareto front, plan view.
 
-Used by the export's figure sheet next to the trace figures of :mod:`optgrade._plot_trace`.
+Used by the export's figure sheet next to the trace figures of :mod:`optgrade.plotting.trace`.
 """
 
 from __future__ import annotations

@@ -7,7 +7,7 @@ through ``context.trace_fn``.
 Speed-up (used when the context has a surrogate with ``local_modes``): the local modes of every
 cell are computed once at h, h + tol and h - tol, and the modes of each draw are interpolated
 linearly between them (nearest sample where a branch appears or vanishes inside the interval),
-then marched with :func:`optgrade.propagation.march`. That is three local-mode evaluations
+then marched with :func:`optgrade.propagation._wkb.march`. That is three local-mode evaluations
 instead of ``N_DRAWS + 1``; tests/test_objectives.py compares it with full traces."""
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from objectives import Objective, ObjectiveValue, main_score, register
+from optgrade.objectives import Objective, ObjectiveValue, main_score, register
 
 N_DRAWS = 12
 QUANTILE = 0.10
@@ -40,7 +40,7 @@ def _blend(m0: np.ndarray, ms: np.ndarray, t: np.ndarray) -> np.ndarray:
 def interpolated_traces(layout, study, context, errors: np.ndarray) -> list:
     """Traces of ``layout`` with each row of ``errors`` (m) added to the heights, from modes
     interpolated between h - tol, h, h + tol (see module docstring)."""
-    from optgrade import propagation
+    from optgrade.propagation import _wkb as propagation
 
     sur = context.surrogate
     freq = propagation.study_frequencies(study)

@@ -434,7 +434,7 @@ def trace_study(
 ) -> Trace:
     """Trace a layout over the study's goal band, building the study's surrogate if needed."""
     if surrogate is None:
-        from optgrade.surrogate import surrogate_for_study
+        from optgrade.dispersion._surrogate import surrogate_for_study
 
         surrogate = surrogate_for_study(study)
     return trace(

@@ -53,9 +53,9 @@ from typing import Any
 
 import numpy as np
 
-from optgrade import _fullwave_kernel as _k
-from optgrade.halfspace import rayleigh_speed
-from optgrade.propagation import CHANNELS
+from optgrade.fullwave import _kernel as _k
+from optgrade.ground._halfspace import rayleigh_speed
+from optgrade.propagation._wkb import CHANNELS
 from optgrade.study import SITE_CAUTION
 
 BULK = CHANNELS[2:6]
@@ -918,7 +918,7 @@ class Verification:
     """Full-wave channel fractions of a layout, with the comparison against the surrogate.
 
     ``frequency`` (Hz), ``fractions``/``position`` (m)/``angle`` (deg) per channel like
-    :class:`optgrade.propagation.Trace`; ``closure`` (raw channel sum before normalisation),
+    :class:`optgrade.propagation._wkb.Trace`; ``closure`` (raw channel sum before normalisation),
     ``balance_error`` (box energy balance, fraction of the incident power), ``agreement``
     (per channel mean absolute difference and conversion-position difference in cells against
     the surrogate; ``None`` when the surrogate is unavailable), ``surrogate`` (its Trace or
@@ -1098,10 +1098,10 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
     trace = None
     agreement = None
     try:
-        from optgrade.propagation import trace_study
+        from optgrade.propagation._wkb import trace_study
 
         if surrogate is None:
-            from optgrade.surrogate import surrogate_for_study
+            from optgrade.dispersion._surrogate import surrogate_for_study
 
             surrogate = surrogate_for_study(study, model="line")
         trace = trace_study(study, layout, surrogate)

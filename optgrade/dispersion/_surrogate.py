@@ -1,7 +1,7 @@
 """Fast local dispersion from tabulated lattice sums: the surrogate behind every search trial.
 
 The rod enters the Bloch relation 1/Z(w) = Sigma(K, w) only through 1/Z, and Sigma splits into
-two closed-form harmonics and a smooth rest (see `optgrade.bands`):
+two closed-form harmonics and a smooth rest (see `optgrade.dispersion._direct`):
 
     Sigma = T_0(K) + T_-1(K) + Rest(K, w; a)
 
@@ -15,7 +15,7 @@ So the surrogate tabulates Rest once per substrate, contact radius, row pitch an
 * angular frequency w uniform over the (padded) frequency range, linear interpolation;
 
 and then solves any rod height, head mass and spacing with the compiled root kernel below (same
-algorithm as `optgrade.bands.solve_points`, exact closed-form T_0 and T_-1 at complex K, so the
+algorithm as `optgrade.dispersion._direct.solve_points`, exact closed-form T_0 and T_-1 at complex K, so the
 tables only have to carry the smooth part). Accuracy against the direct solver is measured in
 tests/test_surrogate.py (|dK'|/K' < 1e-3 on bound branches, K'' within 5 %).
 
@@ -31,7 +31,7 @@ find the gap no narrower, and always after a frequency step above GAP_STEP); Ill
 ILLINOIS_TOL, or where inverse quadratic interpolation through the bracket ends and the newest
 point confirms the root, and in a continued bracket takes that interpolation as its next point.
 Complex Newton on D R_0: analytic slope (`_pole_free_d`), iteration count and acceptance of the
-difference-slope Newton of `optgrade.bands`, whose first step reuses D and its slope at the
+difference-slope Newton of `optgrade.dispersion._direct`, whose first step reuses D and its slope at the
 real-axis root and whose last iteration is skipped where quadratic convergence predicts it below
 the stop (never the final one, so acceptance is unchanged); the difference-slope Newton remains
 the fallback where the analytic one missed the acceptance step by little (FD_RETRY); the disc
@@ -64,9 +64,16 @@ import numpy as np
 from numba import njit
 from numpy.typing import ArrayLike
 
-from optgrade.halfspace import Substrate
-from optgrade.lattice import _DYNAMIC_KT, _DYNAMIC_XR, _STATIC_XR, MODELS, lattice_sum, main_orders
-from optgrade.resonators import Rod, rod_constants, rod_parts_at
+from optgrade.dispersion._lattice import (
+    _DYNAMIC_KT,
+    _DYNAMIC_XR,
+    _STATIC_XR,
+    MODELS,
+    lattice_sum,
+    main_orders,
+)
+from optgrade.ground._halfspace import Substrate
+from optgrade.resonators._rod import Rod, rod_constants, rod_parts_at
 
 __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 
@@ -183,7 +190,7 @@ class Surrogate:
         # Taylor terms of the disc form factor that the kernel's arguments can need
         x_max = 1.5 * (self.n_main + 1) * 2 * np.pi / (0.98 * self.spacing_range[0]) * rod.radius
         self._coef = _series_table(_n_taylor_terms(x_max))
-        from optgrade.bands import validity_warnings
+        from optgrade.dispersion._direct import validity_warnings
 
         #: model-validity notes for the whole table range (plain sentences)
         self.warnings = tuple(
@@ -303,7 +310,7 @@ class Surrogate:
         (frequencies outside are clipped to the table edge for Rest only).
 
         With ``path_only`` the cells are a row in order from the entry, and only the points
-        the WKB march (`optgrade.propagation.march`) reads are solved: the branch it follows at
+        the WKB march (`optgrade.propagation._wkb.march`) reads are solved: the branch it follows at
         each frequency, up to and including the first cell where that branch has no root.
         Every other point is left as if absent (nan). The march's result is the same as from
         the full modes (tests/test_propagation.py); 2-5 times fewer roots on graded rows.
@@ -409,7 +416,7 @@ def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> N
 
 
 # ---------------------------------------------------------------------------------------
-# Compiled root kernel: the algorithm of optgrade.bands.solve_points, one point at a time.
+# Compiled root kernel: the algorithm of optgrade.dispersion._direct.solve_points, one point at a time.
 # ---------------------------------------------------------------------------------------
 N_SCAN = 16
 #: Newton stops at |step| <= NEWTON_TOL |K| (quadratic convergence with a forward-difference
@@ -942,7 +949,7 @@ def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g):
 def _newton(
     kk, n_iter, tol, hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
 ):
-    """Newton on the pole-free D(K) R_0(K) (see optgrade.bands) from kk, forward-difference
+    """Newton on the pole-free D(K) R_0(K) (see optgrade.dispersion._direct) from kk, forward-difference
     derivative (step hstep); stops when |step| <= tol |K|. Returns (K, last step)."""
     step = 0j
     for _ in range(n_iter):
@@ -1026,7 +1033,7 @@ def solve_grid(
 ):
     """Fill out_k (2, nc, nf), out_sh (2, 5, nc, nf), out_an (2, 4, nc, nf), out_fo (2, nc, nf).
 
-    With path_only, solve only the points the WKB march of `optgrade.propagation` reads, cell
+    With path_only, solve only the points the WKB march of `optgrade.propagation._wkb` reads, cell
     by cell from cell 0: at cell 0 branch 0 at every frequency and branch 1 where branch 0 has
     no root; at later cells the branch so chosen, for the frequencies whose branch had a root
     at every earlier cell (up to and including the first cell without one). The rest stays
@@ -1073,7 +1080,7 @@ def solve_grid(
             if path_only and ic > 0 and not path_on[jf]:
                 continue
             w = w_arr[jf]
-            # the rod's compliance 1/Z (optgrade.resonators), only where the kernel solves
+            # the rod's compliance 1/Z (optgrade.resonators._rod), only where the kernel solves
             z_num, z_den = rod_parts_at(w, h_arr[ic], m_arr[ic], rod_root, rod_slowness)
             iz = z_den / z_num if z_num != 0.0 else complex(math.inf, 0.0)
             t = (w - w0) / dw

@@ -1,7 +1,7 @@
 """Lattice sums Sigma(K, w) of a periodic resonator array on the half-space (physics.md section 5).
 
 The array supports a Bloch wave exp(i K x) at angular frequency w when 1/Z(w) = Sigma(K, w),
-with Z the base stiffness of one resonator (`optgrade.resonators`). Three models:
+with Z the base stiffness of one resonator (`optgrade.resonators._rod`). Three models:
 
 ``"lattice"`` (3-D): rows at x = m a, rods at y = n b, uniform traction on a contact disc of
     radius r, form factor S(xi) = 2 J1(xi r)/(xi r);
@@ -21,7 +21,7 @@ ab/(4 pi^2); 1/(2 (xi r)^2) for the strip, summed exactly with Hurwitz zeta func
 uses Re K (it is a tiny, smooth correction). Both boxes are fixed for a call, so Sigma is
 a smooth analytic function of K (needed for Newton steps and tabulated derivatives).
 
-Branches: every harmonic uses `optgrade.halfspace.vertical_wavenumber` (choice made on Re xi^2),
+Branches: every harmonic uses `optgrade.ground._halfspace.vertical_wavenumber` (choice made on Re xi^2),
 so complex K off the real axis continues each harmonic analytically (improper sheet for the
 radiating ones): this is what the leaky-root Newton steps need.
 """
@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy.special import j1, jv, zeta
 
-from optgrade.halfspace import Substrate, compliance_sq
+from optgrade.ground._halfspace import Substrate, compliance_sq
 
 __all__ = [
     "MODELS",

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from optgrade.fullwave import CHANNELS
+from optgrade.fullwave._solver import CHANNELS
 
 LABELS = {
     "transmitted_surface": "transmitted (surface)",

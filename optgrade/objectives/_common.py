@@ -27,7 +27,7 @@ def lossy_rayleigh_wavenumber(freq: ArrayLike, cl: complex, ct: complex) -> np.n
         Frequency (Hz).
     cl, ct : complex
         Compressional and shear speeds (m/s); complex ``c sqrt(1 - i eta)`` for a damped solid
-        (``optgrade.halfspace.Substrate.complex_speeds``).
+        (``optgrade.ground._halfspace.Substrate.complex_speeds``).
 
     Returns
     -------
@@ -53,11 +53,11 @@ def bare_transmission(trace: Any, layout: Any, study: Any) -> np.ndarray:
     """Surface power the bare (lossy) ground alone lets through over the row's path length.
 
     ``T_bare(f) = exp(-2 Im kR(f) L)`` with kR from :func:`lossy_rayleigh_wavenumber` (the
-    substrate's complex speeds, ``optgrade.halfspace.Substrate.complex_speeds``) and ``L`` the
+    substrate's complex speeds, ``optgrade.ground._halfspace.Substrate.complex_speeds``) and ``L`` the
     row length (sum of the cell lengths, the path the march follows). 1 for a lossless
     substrate. Dimensionless, shape of ``trace.frequency``.
     """
-    from optgrade.halfspace import Substrate
+    from optgrade.ground._halfspace import Substrate
 
     sub = study.substrate
     f = np.asarray(trace.frequency, dtype=float)

@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from objectives import Objective, ObjectiveValue, register
-from objectives._common import wanted_fraction
+from optgrade.objectives import Objective, ObjectiveValue, register
+from optgrade.objectives._common import wanted_fraction
 
 
 @register

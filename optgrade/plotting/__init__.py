@@ -1,0 +1,1 @@
+"""Figures: public functions that draw into a given matplotlib Axes (no backend switching)."""
