@@ -58,15 +58,15 @@ def _timed(fn, repeat: int):
 
 
 def _engine():
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     return Substrate(RHO, CL, CT), Rod(ROD_E, ROD_RHO, ROD_D)
 
 
 def _det(k, w, head_mass, model="line"):
-    from optgrade.dispersion._lattice import lattice_sum
-    from optgrade.resonators._rod import rod_compliance
+    from optgrade.dispersion import lattice_sum
+    from optgrade.resonators import rod_compliance
 
     sub, rod = _engine()
     return np.real(rod_compliance(w, rod, HEIGHT, head_mass)
@@ -95,7 +95,7 @@ def line_f(k: float, head_mass: float, f_guess: float) -> float:
 def _bands_k(freq: np.ndarray, head_mass: float) -> np.ndarray:
     """Branch 0 of optgrade.dispersion._direct.solve_bands(model="line") at freq (Hz); nan if unavailable."""
     try:
-        from optgrade.dispersion._direct import Cell, solve_bands
+        from optgrade.dispersion import Cell, solve_bands
     except ImportError:
         return np.full(freq.shape, np.nan, complex)
     sub, rod = _engine()
@@ -106,7 +106,7 @@ def _bands_k(freq: np.ndarray, head_mass: float) -> np.ndarray:
 def _surrogate_k(freq: np.ndarray, head_mass: float) -> np.ndarray:
     """Branch 0 of the line-model surrogate at freq (Hz); nan if unavailable."""
     try:
-        from optgrade.dispersion._surrogate import Surrogate
+        from optgrade.dispersion import Surrogate
     except ImportError:
         return np.full(freq.shape, np.nan, complex)
     sub, rod = _engine()
@@ -143,7 +143,7 @@ def accuracy_table() -> None:
 
 def upper_table() -> None:
     """Print FE second bound modes (above the rod resonance) against solve_bands (markdown)."""
-    from optgrade.dispersion._direct import Cell, solve_bands
+    from optgrade.dispersion import Cell, solve_bands
 
     frac = np.array([0.6, 0.65, 0.7, 0.75, 0.8, 0.85, 0.9, 0.95])
     k = np.pi / SPACING * frac
@@ -168,9 +168,8 @@ def upper_table() -> None:
 def wide_table() -> None:
     """Print the wide-footprint cell (d = 2.5 mm, L = 4 mm, a = b = 3 mm): FE, solve_bands, and
     the line model with the engine's default harmonic count and with 100 harmonics."""
-    from optgrade.dispersion._direct import Cell, solve_bands
-    from optgrade.dispersion._lattice import default_harmonics, lattice_sum
-    from optgrade.resonators._rod import Rod, rod_compliance
+    from optgrade.dispersion import Cell, default_harmonics, lattice_sum, solve_bands
+    from optgrade.resonators import Rod, rod_compliance
 
     d, height, a, b = 2.5e-3, 4e-3, 3e-3, 3e-3
     sub, _ = _engine()
@@ -253,7 +252,7 @@ def timings(n_k: int, repeat: int) -> None:
             (f"FE cell: {n_k} K-points (eigsh shift-invert)", t_fe, t_fe_med, c_fe, n_k)]
 
     try:
-        from optgrade.dispersion._direct import Cell, solve_bands
+        from optgrade.dispersion import Cell, solve_bands
 
         sub, rod = _engine()
         cell = Cell(sub, rod, HEIGHT, SPACING, ROW_PITCH, 0.0)
@@ -266,7 +265,7 @@ def timings(n_k: int, repeat: int) -> None:
     rows.append((f"line model, brentq on lattice_sum, {n_k} frequencies", t, tm, c, n_k))
 
     try:
-        from optgrade.dispersion._surrogate import Surrogate
+        from optgrade.dispersion import Surrogate
 
         sub, rod = _engine()
         t, tm, c, sur = _timed(lambda: Surrogate(
@@ -281,7 +280,7 @@ def timings(n_k: int, repeat: int) -> None:
         t, tm, c, _ = _timed(lambda: sur.local_modes(HEIGHT, SPACING, 0.0, grid), repeat)
         rows.append((f"surrogate local_modes, {n_f} frequencies", t, tm, c, n_f))
         try:
-            from optgrade.dispersion._direct import Cell, solve_bands
+            from optgrade.dispersion import Cell, solve_bands
 
             cell = Cell(sub, rod, HEIGHT, SPACING, ROW_PITCH, 0.0)
             t, tm, c, _ = _timed(lambda: solve_bands(cell, grid, model="line"), repeat)

@@ -68,7 +68,7 @@ def main() -> None:
     study = None
     if Path(args.study).exists():
         try:
-            from optgrade.dispersion._surrogate import surrogate_for_study
+            from optgrade.dispersion import surrogate_for_study
             from optgrade.study import load_study
 
             study = load_study(args.study)

@@ -28,7 +28,7 @@ import numpy as np
 from optgrade import __version__, fabrication, objectives, profiles
 from optgrade._atomic import atomic_write
 from optgrade.objectives._common import wanted_fraction
-from optgrade.propagation._wkb import CHANNELS
+from optgrade.propagation import CHANNELS
 from optgrade.study import SITE_CAUTION
 
 __all__ = ["SITE_CAUTION", "export_layout", "export_trial"]

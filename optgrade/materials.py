@@ -128,7 +128,7 @@ def bar_speed(youngs_modulus: ArrayLike, density: ArrayLike) -> np.ndarray:
 
 def derived_speeds(material: Material) -> dict[str, float]:
     """Derived speeds of a library material (m/s): ``cl``, ``ct``, ``bar``, ``cr``."""
-    from optgrade.ground._halfspace import rayleigh_speed
+    from optgrade.ground import rayleigh_speed
 
     cl, ct = bulk_speeds(material.youngs_modulus, material.density, material.poisson)
     return {

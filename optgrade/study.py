@@ -551,7 +551,7 @@ def _pydantic_messages(exc: ValidationError, out: _Collector) -> None:
 
 
 def _resolve_substrate(raw: _SubstrateIn, out: _Collector) -> dict[str, Any] | None:
-    from optgrade.ground._halfspace import rayleigh_speed
+    from optgrade.ground import rayleigh_speed
     from optgrade.materials import bulk_speeds, elastic_from_speeds, get_material
 
     section = ("substrate",)
@@ -660,7 +660,7 @@ def first_resonance_range(resonator: ResonatorSpec, height: tuple[float, float])
     mass), so the extremes are (tallest, heaviest) and (shortest, lightest). Computed with
     :func:`optgrade.resonators._rod.rod_resonances`.
     """
-    from optgrade.resonators._rod import rod_resonances
+    from optgrade.resonators import rod_resonances
 
     args = (resonator.diameter, resonator.youngs_modulus, resonator.density)
     f_low = float(rod_resonances(height[1], *args, head_mass=resonator.head_mass[1])[0])

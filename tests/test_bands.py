@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq, newton
 
-from optgrade.dispersion._direct import Cell, direct_local_modes, solve_bands, solve_points
-from optgrade.ground._halfspace import Substrate, rayleigh_function
-from optgrade.resonators._rod import Rod, oscillator_stiffness, rod_resonances
+from optgrade.dispersion import Cell, direct_local_modes, solve_bands, solve_points
+from optgrade.ground import Substrate, rayleigh_function
+from optgrade.resonators import Rod, oscillator_stiffness, rod_resonances
 
 SOIL = Substrate(1800.0, 400.0, 200.0)  # invented soil
 ALU = Substrate(2700.0, 6320.0, 3130.0)  # handbook aluminium (from memory, physics.md s. 3)
@@ -57,8 +57,8 @@ def test_leaky_root_against_full_complex_root():
     agrees with scipy's secant iteration on the full complex dispersion function
     1/Z - Sigma(K) (lattice summed directly at complex K, no closed-form/rest split, no
     Taylor step); K'' > 0 and the loss is booked backward (physics.md section 5)."""
-    from optgrade.dispersion._lattice import lattice_sum
-    from optgrade.resonators._rod import rod_stiffness
+    from optgrade.dispersion import lattice_sum
+    from optgrade.resonators import rod_stiffness
 
     a, b, h = 8e-3, 4e-3, 12e-3
     freq = np.array([230e3, 250e3])

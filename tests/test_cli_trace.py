@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from optgrade.cli import main
-from optgrade.propagation._wkb import CHANNELS
+from optgrade.propagation import CHANNELS
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH = ROOT / "studies" / "bench_backward_shear.toml"

@@ -126,7 +126,7 @@ def test_real_search_export_cli_round_trip(tmp_path):
     """Command line on the bench example: a short search exports the best trial; `optgrade
     export` re-exports it; the table read back and traced gives the exported fractions."""
     from optgrade.cli import main
-    from optgrade.propagation._wkb import trace_study
+    from optgrade.propagation import trace_study
     from optgrade.study import load_study
 
     study_path = REPO / "studies" / "bench_backward_shear.toml"

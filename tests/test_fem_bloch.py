@@ -124,9 +124,9 @@ def test_fe_mesh_converged(fe_rod):
 
 def _line_root_k(f, head_mass):
     """Bloch wavenumber (1/m) of optgrade's line model at frequency f (Hz), lower branch."""
-    from optgrade.dispersion._lattice import lattice_sum
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod, rod_compliance
+    from optgrade.dispersion import lattice_sum
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod, rod_compliance
 
     sub = Substrate(RHO, CL, CT)
     rod = Rod(ROD_E, ROD_RHO, ROD_D)
@@ -141,9 +141,9 @@ def _line_root_k(f, head_mass):
 
 def _line_root_f(k, head_mass, f_guess):
     """Frequency (Hz) of optgrade's line model at Bloch wavenumber k (1/m), lower branch."""
-    from optgrade.dispersion._lattice import lattice_sum
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod, rod_compliance
+    from optgrade.dispersion import lattice_sum
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod, rod_compliance
 
     sub = Substrate(RHO, CL, CT)
     rod = Rod(ROD_E, ROD_RHO, ROD_D)
@@ -190,9 +190,9 @@ def test_solve_bands_line_lower_branch_matches_fe(case, fe_rod, fe_head):
     per case, all below the gap) the band solver's branch 0 is bound (K'' = 0) and its K agrees
     with the FE wavenumber within 2 %. Reference: the scikit-fem cell (module docstring).
     """
-    from optgrade.dispersion._direct import Cell, solve_bands
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Cell, solve_bands
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     modes, head = (fe_rod, 0.0) if case == "rod" else (fe_head, HEAD_MASS)
     below_edge = modes.bloch_k < np.pi / SPACING * (1 - 1e-9)
@@ -218,9 +218,9 @@ def test_solve_bands_line_upper_branch_matches_fe(fe_rod):
     The engine may label the root branch 0 or 1 (its labels follow the Rayleigh pole); the
     nearest finite bound root is compared. Reference: the scikit-fem cell.
     """
-    from optgrade.dispersion._direct import Cell, solve_bands
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Cell, solve_bands
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     upper = fe_rod.frequency[:, 1]
     use = np.isfinite(upper) & (fe_rod.bloch_k < np.pi / SPACING * (1 - 1e-9))
@@ -247,9 +247,9 @@ def test_surrogate_line_lower_branch_matches_fe(case, fe_rod, fe_head, tmp_path)
     reference: bound and within 2 % in K at every FE frequency below the zone edge (>= 5).
     Tables are built in a temporary cache directory. Reference: the scikit-fem cell.
     """
-    from optgrade.dispersion._surrogate import Surrogate
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Surrogate
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     modes, head = (fe_rod, 0.0) if case == "rod" else (fe_head, HEAD_MASS)
     below_edge = modes.bloch_k < np.pi / SPACING * (1 - 1e-9)
@@ -274,9 +274,9 @@ def test_solve_bands_line_wide_footprint_matches_fe():
     the gap. Reference: the scikit-fem cell. (Measured: 2.3e-4 in K at worst, see
     docs/fem-check.md.)
     """
-    from optgrade.dispersion._direct import Cell, solve_bands
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Cell, solve_bands
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     d, height, a, b = 2.5e-3, 4e-3, 3e-3, 3e-3
     model = build_cell(density=RHO, cl=CL, ct=CT, spacing=a, depth=DEPTH,

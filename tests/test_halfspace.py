@@ -5,7 +5,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from optgrade.ground._halfspace import (
+from optgrade.ground import (
     Substrate,
     rayleigh_function,
     rayleigh_speed,

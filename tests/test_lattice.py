@@ -3,14 +3,14 @@
 import numpy as np
 import pytest
 
-from optgrade.dispersion._lattice import (
+from optgrade.dispersion import (
     default_harmonics,
     form_factor_sq,
     harmonic_term,
     lattice_sum,
     radiation_parts,
 )
-from optgrade.ground._halfspace import Substrate, surface_compliance
+from optgrade.ground import Substrate, surface_compliance
 
 ALU = Substrate(2700.0, 6320.0, 3130.0)  # handbook aluminium speeds (from memory, physics.md)
 SOIL = Substrate(1800.0, 400.0, 200.0)  # invented soil

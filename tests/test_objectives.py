@@ -65,7 +65,7 @@ def test_lossy_rayleigh_wavenumber_against_correspondence_principle():
     kR = kR0 (1 - i eta)^(-1/2), i.e. Im kR ~ (eta / 2) kR0. kR0 from the lossless root of
     optgrade.ground._halfspace (Achenbach 1973, sec. 5.11); the complex root must also zero the
     Rayleigh function of optgrade.ground._halfspace taken with the complex speeds."""
-    from optgrade.ground._halfspace import Substrate, rayleigh_function
+    from optgrade.ground import Substrate, rayleigh_function
     from optgrade.objectives._common import lossy_rayleigh_wavenumber
 
     f = np.array([30.0, 55.0, 80.0])
@@ -100,7 +100,7 @@ def test_blocking_on_lossy_ground_discounts_the_bare_ground():
     0.5; the plain transmitted fraction stays in the details."""
     eta = 0.04
     s = fake_study(substrate__loss_factor=eta, goal__channel="blocking")
-    from optgrade.ground._halfspace import rayleigh_speed
+    from optgrade.ground import rayleigh_speed
 
     k0 = 2 * np.pi * F / rayleigh_speed(s.substrate.cl, s.substrate.ct)
     t_bare = np.exp(-2 * (k0 * (1 - 1j * eta) ** -0.5).imag * LAYOUT.length)
@@ -122,8 +122,8 @@ def test_vanishing_resonators_on_lossy_site_ground_block_nothing():
     through the real surrogate and march must score ~0 insertion blocking (within 0.02)."""
     from pathlib import Path
 
-    from optgrade.dispersion._surrogate import surrogate_for_study
-    from optgrade.propagation._wkb import trace_study
+    from optgrade.dispersion import surrogate_for_study
+    from optgrade.propagation import trace_study
     from optgrade.study import load_study
 
     s = load_study(Path(__file__).resolve().parent.parent / "studies" /

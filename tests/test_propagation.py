@@ -27,7 +27,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from optgrade.layout import layout_from_cells
-from optgrade.propagation._wkb import CHANNELS, march
+from optgrade.propagation import CHANNELS, march
 
 CR = 2900.0  # m/s, an aluminium-like Rayleigh speed (physics.md section 3, from memory)
 
@@ -233,7 +233,7 @@ def test_channel_map_with_nothing_to_show_says_so():
     import matplotlib.pyplot as plt
 
     from optgrade.plotting.trace import plot_channel_map
-    from optgrade.propagation._wkb import CHANNELS
+    from optgrade.propagation import CHANNELS
 
     freq = np.linspace(100e3, 200e3, 8)
     empty = SimpleNamespace(

@@ -28,7 +28,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from optgrade.layout import layout_from_cells, read_table, write_table
-from optgrade.propagation._wkb import CHANNELS, trace, trace_study
+from optgrade.propagation import CHANNELS, trace, trace_study
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH = ROOT / "studies" / "bench_backward_shear.toml"

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.optimize import fsolve
 
-from optgrade.resonators._rod import (
+from optgrade.resonators import (
     Rod,
     oscillator_stiffness,
     rod_compliance,

@@ -138,9 +138,9 @@ PLANTED_TOL = 0.1
 def _lower_cutoff(study, height, freq):
     """Band solver: (last frequency with, first frequency without) the lower branch of a cell,
     scanning up from the bottom of ``freq``."""
-    from optgrade.dispersion._direct import Cell, solve_bands
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Cell, solve_bands
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     sb, rs = study.substrate, study.resonator
     cell = Cell(Substrate(sb.density, sb.cl, sb.ct, sb.loss_factor),
@@ -175,7 +175,7 @@ def test_search_finds_planted_band_solver_case(tmp_path):
     score - 0.1."""
     from optgrade import objectives
     from optgrade.layout import layout_from_cells
-    from optgrade.propagation._wkb import trace_study
+    from optgrade.propagation import trace_study
     from optgrade.study import study_from_text
 
     probe = study_from_text(PLANTED_TOML.format(lo='"150 kHz"', hi='"250 kHz"'))

@@ -8,10 +8,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from optgrade.dispersion._direct import direct_local_modes
-from optgrade.dispersion._surrogate import LocalModes, Surrogate, surrogate_for_study
-from optgrade.ground._halfspace import Substrate
-from optgrade.resonators._rod import Rod
+from optgrade.dispersion import LocalModes, Surrogate, direct_local_modes, surrogate_for_study
+from optgrade.ground import Substrate
+from optgrade.resonators import Rod
 
 STUDIES = Path(__file__).resolve().parents[1] / "studies"
 
@@ -150,7 +149,7 @@ def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
     the full solve within 1e-6 (relative; frequency continuation runs over fewer frequencies
     per cell); and far fewer roots are solved (self-consistency of a shortcut; the accuracy
     references are the direct-solve and full-wave checks)."""
-    from optgrade.propagation._wkb import CHANNELS, march
+    from optgrade.propagation import CHANNELS, march
 
     study, sur = bench_sur if which == "bench" else site_sur
     freq = np.linspace(*study.goal.band, 128)

@@ -96,9 +96,9 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
 
 
 def _cell_from_study(study: Any, height: float, spacing: float, head_mass: float):
-    from optgrade.dispersion._direct import Cell
-    from optgrade.ground._halfspace import Substrate
-    from optgrade.resonators._rod import Rod
+    from optgrade.dispersion import Cell
+    from optgrade.ground import Substrate
+    from optgrade.resonators import Rod
 
     s, r = study.substrate, study.resonator
     substrate = Substrate(float(s.density), float(s.cl), float(s.ct), float(s.loss_factor or 0))
@@ -226,7 +226,7 @@ def run_bands(
 
     Returns the `optgrade.dispersion._direct.Bands`.
     """
-    from optgrade.dispersion._direct import solve_bands
+    from optgrade.dispersion import solve_bands
 
     lo, hi = (float(v) for v in study.goal.band)
     fmin = lo if fmin is None else float(fmin)

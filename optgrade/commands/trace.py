@@ -58,7 +58,7 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
 def _rod_resonances(study: Any, layout: Any) -> np.ndarray | None:
     """First axial resonance of each rod (Hz), None if the resonator module is unavailable."""
     try:
-        from optgrade.resonators._rod import rod_resonances
+        from optgrade.resonators import rod_resonances
     except ImportError:  # pragma: no cover
         return None
     r = study.resonator
@@ -69,7 +69,7 @@ def _rod_resonances(study: Any, layout: Any) -> np.ndarray | None:
 
 
 def _build_surrogate(study: Any, model: str | None) -> Any:
-    from optgrade.dispersion._surrogate import surrogate_for_study
+    from optgrade.dispersion import surrogate_for_study
 
     return surrogate_for_study(study) if model is None else surrogate_for_study(study, model=model)
 
@@ -80,7 +80,7 @@ def run_trace(study: Any, layout: Any, out: Path, *, model: str | None = None,
 
     Returns the JSON payload. The same function backs the command line.
     """
-    from optgrade.propagation._wkb import march, study_frequencies
+    from optgrade.propagation import march, study_frequencies
 
     say = console.print if console is not None else (lambda *a, **k: None)
     freq = study_frequencies(study)

@@ -71,8 +71,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     lattice = None
     if is_lattice:
         try:
-            from optgrade.dispersion._surrogate import surrogate_for_study
-            from optgrade.propagation._wkb import trace_study
+            from optgrade.dispersion import surrogate_for_study
+            from optgrade.propagation import trace_study
 
             lattice = trace_study(study, layout, surrogate_for_study(study, model="lattice"))
         except Exception as exc:  # the figure is still useful without it

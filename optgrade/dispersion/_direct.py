@@ -43,7 +43,7 @@ rod and substrate enter D, so K'' includes material loss.
 
 Channel shares: K'' is split in proportion to the Im parts at K' (first order): each radiating
 main harmonic's Im T_m (lossless substrate) split into shear and compressional power
-(`optgrade.dispersion._lattice._split_shares`), forward if K' + 2 pi m/a > 0, backward otherwise; the
+(`optgrade.dispersion._lattice.shear_share`), forward if K' + 2 pi m/a > 0, backward otherwise; the
 remainder of Im(Sigma - 1/Z) is absorbed (material loss). Sideways harmonics (n != 0) are not
 booked (`validity_warnings` says when they radiate).
 """
@@ -58,13 +58,12 @@ from numpy.typing import ArrayLike
 
 from optgrade.dispersion._lattice import (
     MODELS,
-    _split_shares,
     harmonic_term,
     lattice_sum,
     main_orders,
 )
-from optgrade.ground._halfspace import Substrate, rayleigh_function
-from optgrade.resonators._rod import Rod, is_thin_rod, rod_compliance, rod_resonances
+from optgrade.ground import Substrate, rayleigh_function, shear_share
+from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
 
 __all__ = [
     "Cell",
@@ -396,7 +395,7 @@ def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
     """Radiated Im parts (4, n) of the main harmonics at K' and the channel angles (4, n).
 
     Harmonic m radiates shear where |K' + 2 pi m/a| < kT (compressional where < kL); forward if
-    K' + 2 pi m/a > 0. Its Im T_m (lossless substrate) is split by `_split_shares`. A channel fed
+    K' + 2 pi m/a > 0. Its Im T_m (lossless substrate) is split by `shear_share`. A channel fed
     by several harmonics reports the angle of the strongest one.
     """
     kl2, kt2 = (w / substrate.cl) ** 2, (w / substrate.ct) ** 2
@@ -414,7 +413,7 @@ def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
                 0.0,
             )
             im = np.maximum(np.nan_to_num(im), 0.0)
-            shear = _split_shares(xi2, kl2, kt2)
+            shear = shear_share(xi2, kl2, kt2)
             fwd = kx > 0
             for off, share, k2 in ((0, shear, kt2), (1, 1.0 - shear, kl2)):
                 p = im * share

@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy.special import j1, jv, zeta
 
-from optgrade.ground._halfspace import Substrate, compliance_sq
+from optgrade.ground import Substrate, compliance_sq, shear_share
 
 __all__ = [
     "MODELS",
@@ -278,21 +278,6 @@ def lattice_sum(
     return scale * total + np.broadcast_to(static, shape)
 
 
-def _split_shares(xi2, kl2, kt2):
-    """Fraction of a radiating harmonic's power carried by shear (the rest compressional).
-
-    From the plane-strain potentials of a surface load (derived from the free-surface conditions,
-    cf. Achenbach 1973, section 5.x): P_T / P_L = 4 xi^2 p q / (2 xi^2 - kT^2)^2 with
-    p = sqrt(kL^2 - xi^2), q = sqrt(kT^2 - xi^2) (p = 0 outside the compressional cone).
-    """
-    p = np.sqrt(np.clip(kl2 - xi2, 0.0, None))
-    q = np.sqrt(np.clip(kt2 - xi2, 0.0, None))
-    ratio = 4.0 * xi2 * p * q / (2.0 * xi2 - kt2) ** 2
-    with np.errstate(divide="ignore", invalid="ignore"):
-        shear = np.where(p > 0, ratio / (1.0 + ratio), 1.0)
-    return np.where(q > 0, shear, 0.0)
-
-
 def radiation_parts(
     K: ArrayLike,
     w: ArrayLike,
@@ -305,7 +290,7 @@ def radiation_parts(
     """Split of the radiative Im Sigma at real K' into the four bulk channels (m/N).
 
     Each harmonic (m, n) with |xi_mn| < kT radiates; its Im G S^2/(a b) (computed for the
-    lossless substrate) is split into shear and compressional power (`_split_shares`) and booked
+    lossless substrate) is split into shear and compressional power (`shear_share`) and booked
     forward if K' + 2 pi m/a > 0, backward otherwise (physics.md section 5).
 
     Returns
@@ -336,7 +321,7 @@ def radiation_parts(
         (compliance_sq(xi2, wb, lossless) * form_factor_sq(xi2, radius, model)).imag,
         0.0,
     ) / (a * b)
-    shear = _split_shares(xi2, kl2, kt2)
+    shear = shear_share(xi2, kl2, kt2)
     fwd = kx > 0
     out = np.empty((4,) + shape)
     out[0] = np.sum(np.where(fwd, im * shear, 0.0), axis=-1)

@@ -72,8 +72,8 @@ from optgrade.dispersion._lattice import (
     lattice_sum,
     main_orders,
 )
-from optgrade.ground._halfspace import Substrate
-from optgrade.resonators._rod import Rod, rod_constants, rod_parts_at
+from optgrade.ground import Substrate
+from optgrade.resonators import Rod, rod_constants, rod_parts_at
 
 __all__ = ["LocalModes", "Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 

@@ -54,8 +54,8 @@ from typing import Any
 import numpy as np
 
 from optgrade.fullwave import _kernel as _k
-from optgrade.ground._halfspace import rayleigh_speed
-from optgrade.propagation._wkb import CHANNELS
+from optgrade.ground import rayleigh_speed
+from optgrade.propagation import CHANNELS
 from optgrade.study import SITE_CAUTION
 
 BULK = CHANNELS[2:6]
@@ -1098,10 +1098,10 @@ def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool =
     trace = None
     agreement = None
     try:
-        from optgrade.propagation._wkb import trace_study
+        from optgrade.propagation import trace_study
 
         if surrogate is None:
-            from optgrade.dispersion._surrogate import surrogate_for_study
+            from optgrade.dispersion import surrogate_for_study
 
             surrogate = surrogate_for_study(study, model="line")
         trace = trace_study(study, layout, surrogate)

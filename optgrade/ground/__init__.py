@@ -1,21 +1,30 @@
-"""Ground stage: the elastic body the resonators stand on (the homogeneous half-space now)."""
+"""Ground stage: the elastic body the resonators stand on.
+
+One small base (:class:`Ground`) and a registry (:data:`GROUNDS`); the homogeneous isotropic
+half-space (:class:`Substrate`, ``kind = "halfspace"``) is the one ground so far.
+"""
 
 from __future__ import annotations
 
-from optgrade.ground._halfspace import (  # noqa: F401
+from optgrade.ground._base import GROUNDS, Ground
+from optgrade.ground._halfspace import (
     Substrate,
     compliance_sq,
     rayleigh_function,
     rayleigh_speed,
+    shear_share,
     surface_compliance,
     vertical_wavenumber,
 )
 
 __all__ = [
+    "GROUNDS",
+    "Ground",
     "Substrate",
     "compliance_sq",
     "rayleigh_function",
     "rayleigh_speed",
+    "shear_share",
     "surface_compliance",
     "vertical_wavenumber",
 ]

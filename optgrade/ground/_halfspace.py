@@ -17,15 +17,19 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
+from typing import ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy.optimize import brentq
 
+from optgrade.ground._base import GROUNDS, Ground
+
 __all__ = [
     "Substrate",
     "rayleigh_function",
     "rayleigh_speed",
+    "shear_share",
     "surface_compliance",
     "vertical_wavenumber",
 ]
@@ -61,9 +65,10 @@ def rayleigh_speed(cl: float, ct: float) -> float:
     return ct * float(np.sqrt(x))
 
 
+@GROUNDS.register
 @dataclass(frozen=True)
-class Substrate:
-    """Isotropic elastic half-space.
+class Substrate(Ground):
+    """Isotropic elastic half-space (registered as ground ``halfspace``).
 
     Attributes
     ----------
@@ -75,6 +80,7 @@ class Substrate:
         Loss factor eta of both Lame moduli (complex modulus M (1 - i eta)), dimensionless.
     """
 
+    name: ClassVar[str] = "halfspace"
     density: float
     cl: float
     ct: float
@@ -88,36 +94,37 @@ class Substrate:
         if not (0.0 <= self.loss_factor < 1.0):
             raise ValueError(f"loss_factor must be in [0, 1), got {self.loss_factor}")
 
-    @property
-    def mu(self) -> float:
-        """Shear modulus mu = rho cT^2 (Pa), real part."""
-        return self.density * self.ct**2
-
-    @property
-    def poisson(self) -> float:
-        """Poisson ratio nu = (cL^2 - 2 cT^2) / (2 (cL^2 - cT^2)), dimensionless."""
-        return (self.cl**2 - 2.0 * self.ct**2) / (2.0 * (self.cl**2 - self.ct**2))
-
     @cached_property
     def cr(self) -> float:
         """Rayleigh speed (m/s), exact root of the Rayleigh equation (lossless speeds)."""
         return rayleigh_speed(self.cl, self.ct)
 
-    @property
-    def complex_factor(self) -> complex:
-        """Modulus factor (1 - i eta) of the complex moduli (dimensionless)."""
-        return complex(1.0, -self.loss_factor)
+    def compliance_sq(self, xi2: ArrayLike, w: ArrayLike) -> np.ndarray:
+        """Surface compliance G(xi^2, w); see :func:`compliance_sq`."""
+        return compliance_sq(xi2, w, self)
+
+    def pole_function(self, xi: ArrayLike, w: ArrayLike) -> np.ndarray:
+        """The Rayleigh function at the complex speeds; see :func:`rayleigh_function`."""
+        cl, ct = self.complex_speeds
+        return rayleigh_function(xi, w, cl, ct)
+
+    def shear_share(self, xi2: ArrayLike, w: ArrayLike) -> np.ndarray:
+        """Shear share of the radiated power at real xi (lossless speeds); see
+        :func:`shear_share`."""
+        w = np.asarray(w, dtype=float)
+        return shear_share(xi2, (w / self.cl) ** 2, (w / self.ct) ** 2)
+
+    def lossless(self) -> Substrate:
+        """The same half-space without material loss."""
+        return Substrate(self.density, self.cl, self.ct)
+
+    def with_loss(self, loss_factor: float) -> Substrate:
+        """The same half-space with loss factor ``loss_factor``."""
+        return Substrate(self.density, self.cl, self.ct, float(loss_factor))
 
     @property
-    def complex_speeds(self) -> tuple[complex, complex]:
-        """Complex speeds (cL, cT) * (1 - i eta)^(1/2) (m/s)."""
-        f = np.sqrt(self.complex_factor)
-        return complex(self.cl * f), complex(self.ct * f)
-
-    @property
-    def complex_mu(self) -> complex:
-        """Complex shear modulus mu (1 - i eta) (Pa)."""
-        return self.mu * self.complex_factor
+    def has_compiled_points(self) -> bool:
+        return True
 
 
 def vertical_wavenumber(xi2: ArrayLike, k2: ArrayLike) -> np.ndarray:
@@ -228,3 +235,21 @@ def surface_compliance(xi: ArrayLike, w: ArrayLike, substrate: Substrate) -> np.
     """
     xi = np.asarray(xi)
     return compliance_sq(xi * xi, w, substrate)
+
+
+def shear_share(xi2: ArrayLike, kl2: ArrayLike, kt2: ArrayLike) -> np.ndarray:
+    """Fraction of a radiating surface load's power at real xi carried by shear (the rest
+    compressional), dimensionless; xi2, kl2, kt2 real squared wavenumbers (1/m^2).
+
+    Fraction of a radiating harmonic's power carried by shear (the rest compressional).
+
+    From the plane-strain potentials of a surface load (derived from the free-surface conditions,
+    cf. Achenbach 1973, section 5.x): P_T / P_L = 4 xi^2 p q / (2 xi^2 - kT^2)^2 with
+    p = sqrt(kL^2 - xi^2), q = sqrt(kT^2 - xi^2) (p = 0 outside the compressional cone).
+    """
+    p = np.sqrt(np.clip(kl2 - xi2, 0.0, None))
+    q = np.sqrt(np.clip(kt2 - xi2, 0.0, None))
+    ratio = 4.0 * xi2 * p * q / (2.0 * xi2 - kt2) ** 2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        shear = np.where(p > 0, ratio / (1.0 + ratio), 1.0)
+    return np.where(q > 0, shear, 0.0)

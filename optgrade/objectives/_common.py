@@ -57,7 +57,7 @@ def bare_transmission(trace: Any, layout: Any, study: Any) -> np.ndarray:
     row length (sum of the cell lengths, the path the march follows). 1 for a lossless
     substrate. Dimensionless, shape of ``trace.frequency``.
     """
-    from optgrade.ground._halfspace import Substrate
+    from optgrade.ground import Substrate
 
     sub = study.substrate
     f = np.asarray(trace.frequency, dtype=float)

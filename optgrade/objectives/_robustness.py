@@ -40,7 +40,7 @@ def _blend(m0: np.ndarray, ms: np.ndarray, t: np.ndarray) -> np.ndarray:
 def interpolated_traces(layout, study, context, errors: np.ndarray) -> list:
     """Traces of ``layout`` with each row of ``errors`` (m) added to the heights, from modes
     interpolated between h - tol, h, h + tol (see module docstring)."""
-    from optgrade.propagation import _wkb as propagation
+    from optgrade import propagation
 
     sur = context.surrogate
     freq = propagation.study_frequencies(study)

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
-from optgrade.dispersion._direct import Bands
+from optgrade.dispersion import Bands
 
 __all__ = ["plot_bands"]
 

@@ -23,7 +23,7 @@ from matplotlib.colors import ListedColormap
 from matplotlib.patches import Patch, Rectangle
 
 from optgrade.layout import Layout
-from optgrade.propagation._wkb import CHANNELS, Trace
+from optgrade.propagation import CHANNELS, Trace
 
 __all__ = [
     "CHANNEL_COLOURS",

@@ -56,43 +56,25 @@ from __future__ import annotations
 
 import inspect
 import math
-from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
 from numba import njit
 from numpy.typing import ArrayLike
 
+from optgrade.channels import CHANNELS
 from optgrade.layout import Layout
+from optgrade.propagation._base import PROPAGATION_MODELS, PropagationModel, study_frequencies
+from optgrade.propagation._trace import Trace
 
 __all__ = [
-    "CHANNELS",
-    "RADIATING",
     "ADIABATIC_LIMIT",
     "Trace",
     "march",
     "trace",
+    "WKBMarch",
     "trace_study",
 ]
-
-#: The seven channels every frequency's power is split into (DEVELOPERS.md).
-CHANNELS: tuple[str, ...] = (
-    "transmitted_surface",
-    "reflected_surface",
-    "forward_shear",
-    "forward_compressional",
-    "backward_shear",
-    "backward_compressional",
-    "absorbed",
-)
-
-#: Order of ``LocalModes.shares`` along its second axis (the last one is ``absorbed``).
-RADIATING: tuple[str, ...] = (
-    "forward_shear",
-    "forward_compressional",
-    "backward_shear",
-    "backward_compressional",
-)
 
 #: eps above this marks a result outside the adiabatic model's validity (physics.md s. 6).
 ADIABATIC_LIMIT = 0.1
@@ -102,73 +84,6 @@ class _Modes(Protocol):
     k: np.ndarray
     shares: np.ndarray
     angle: np.ndarray
-
-
-@dataclass(frozen=True)
-class Trace:
-    """Where the power of a Rayleigh wave entering a layout goes, frequency by frequency.
-
-    Attributes
-    ----------
-    frequency : ndarray, shape (n_freq,)
-        Frequency (Hz).
-    fractions : dict[str, ndarray]
-        Power fraction per channel (dimensionless, 0..1); the seven sum to 1 per frequency.
-    position : dict[str, ndarray]
-        Power-weighted position (m) along the row where each channel receives its power; nan
-        where it gets nothing. ``transmitted_surface`` leaves at ``layout.length``;
-        ``reflected_surface`` is weighted between the entry step (0) and the turning point.
-    angle : dict[str, ndarray]
-        Power-weighted mean angle from the surface normal (deg), negative = pointing back to
-        the source; nan where the channel gets nothing. Surface channels are +90 (transmitted)
-        and -90 (reflected); ``absorbed`` is always nan.
-    eps_max : ndarray
-        Largest adiabaticity parameter on the forward path (dimensionless).
-    is_adiabatic : ndarray of bool
-        ``eps_max <= 0.1``.
-    branch : ndarray of int
-        Branch followed (0 lower, 1 upper, -1 none: entry cell in a gap).
-    turning_position : ndarray
-        Position of the turning point (m), nan where the wave is not turned back.
-    entry_reflection : ndarray
-        Part of the reflected power due to the entry impedance step.
-    phase : ndarray
-        Accumulated phase sum K'_j a_j of the transmitted wave (rad); nan where nothing is
-        transmitted.
-    """
-
-    frequency: np.ndarray
-    fractions: dict[str, np.ndarray]
-    position: dict[str, np.ndarray]
-    angle: dict[str, np.ndarray]
-    eps_max: np.ndarray
-    is_adiabatic: np.ndarray
-    branch: np.ndarray
-    turning_position: np.ndarray
-    entry_reflection: np.ndarray
-    phase: np.ndarray
-
-    def total(self) -> np.ndarray:
-        """Sum of all channel fractions per frequency (1 up to rounding)."""
-        return np.sum([self.fractions[c] for c in CHANNELS], axis=0)
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict (lists, ``None`` for nan) with the trace.json keys."""
-
-        def clean(a: np.ndarray) -> list:
-            return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, float)]
-
-        return {
-            "frequency_hz": clean(self.frequency),
-            "fractions": {c: clean(self.fractions[c]) for c in CHANNELS},
-            "position_m": {c: clean(self.position[c]) for c in CHANNELS},
-            "angle_deg": {c: clean(self.angle[c]) for c in CHANNELS},
-            "eps_max": clean(self.eps_max),
-            "is_adiabatic": [bool(v) for v in self.is_adiabatic],
-            "branch": [int(v) for v in self.branch],
-            "turning_position_m": clean(self.turning_position),
-            "entry_reflection": clean(self.entry_reflection),
-        }
 
 
 def march(
@@ -423,18 +338,12 @@ def trace(
     return march(modes, layout.x, layout.spacing, freq, speed)
 
 
-def study_frequencies(study: Any) -> np.ndarray:
-    """The study's frequency grid: ``goal.n_frequencies`` points evenly over ``goal.band`` (Hz)."""
-    lo, hi = (float(v) for v in study.goal.band)
-    return np.linspace(lo, hi, int(study.goal.n_frequencies))
-
-
 def trace_study(
     study: Any, layout: Layout, surrogate: Any = None, *, path_only: bool = True
 ) -> Trace:
     """Trace a layout over the study's goal band, building the study's surrogate if needed."""
     if surrogate is None:
-        from optgrade.dispersion._surrogate import surrogate_for_study
+        from optgrade.dispersion import surrogate_for_study
 
         surrogate = surrogate_for_study(study)
     return trace(
@@ -444,3 +353,34 @@ def trace_study(
         cr=float(study.substrate.cr),
         path_only=path_only,
     )
+
+
+@PROPAGATION_MODELS.register
+class WKBMarch(PropagationModel):
+    """Adiabatic march through the local Bloch modes of each cell (registered as ``wkb``).
+
+    Parameters
+    ----------
+    study : Study
+    dispersion : object, optional
+        Anything with ``local_modes(height, spacing, head_mass, freq)`` (the study's surrogate
+        when omitted, for ``model`` or the study's ``goal.model``).
+    model : str, optional
+        Lattice-sum variant of the dispersion ("lattice", "line", "homogenised").
+    """
+
+    name = "wkb"
+
+    def __init__(self, study: Any, dispersion: Any = None, model: str | None = None) -> None:
+        super().__init__(study)
+        if dispersion is None:
+            from optgrade.dispersion import surrogate_for_study
+
+            dispersion = surrogate_for_study(study, model=model)
+        self.dispersion = dispersion
+
+    def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
+        """WKB trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted)."""
+        return trace(
+            layout, self.dispersion, self.frequencies(freq), cr=float(self.study.substrate.cr)
+        )

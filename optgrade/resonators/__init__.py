@@ -1,8 +1,14 @@
-"""Resonator stage: base dynamic stiffness of the resonators (axial rod with head mass, lumped oscillator)."""
+"""Resonator stage: base dynamic stiffness of the resonators standing on the ground.
+
+One small base (:class:`Resonator`) and a registry (:data:`RESONATORS`); the axial rod with an
+optional head mass (:class:`Rod`, ``kind = "axial_rod"``) is the one type the study can pick so
+far; :func:`oscillator_stiffness` is the lumped mass-spring limit used by the checks.
+"""
 
 from __future__ import annotations
 
-from optgrade.resonators._rod import (  # noqa: F401
+from optgrade.resonators._base import RESONATORS, Resonator
+from optgrade.resonators._rod import (
     Rod,
     is_thin_rod,
     oscillator_stiffness,
@@ -14,6 +20,8 @@ from optgrade.resonators._rod import (  # noqa: F401
 )
 
 __all__ = [
+    "RESONATORS",
+    "Resonator",
     "Rod",
     "is_thin_rod",
     "oscillator_stiffness",

@@ -17,11 +17,14 @@ from __future__ import annotations
 import cmath
 import math
 from dataclasses import dataclass
+from typing import ClassVar
 
 import numpy as np
 from numba import njit
 from numpy.typing import ArrayLike
 from scipy.optimize import brentq
+
+from optgrade.resonators._base import RESONATORS, Resonator
 
 __all__ = [
     "Rod",
@@ -33,9 +36,11 @@ __all__ = [
 ]
 
 
+@RESONATORS.register
 @dataclass(frozen=True)
-class Rod:
-    """Cylindrical rod (pin, post) standing on the surface, axial motion only.
+class Rod(Resonator):
+    """Cylindrical rod (pin, post) standing on the surface, axial motion only, with an optional
+    head mass (registered as resonator ``axial_rod``).
 
     Attributes
     ----------
@@ -49,6 +54,7 @@ class Rod:
         Loss factor eta of the complex modulus E (1 - i eta), dimensionless.
     """
 
+    name: ClassVar[str] = "axial_rod"
     youngs_modulus: float
     density: float
     diameter: float
@@ -71,10 +77,19 @@ class Rod:
         """Bar (rod) speed c_r = sqrt(E / rho_r) (m/s), lossless."""
         return float(np.sqrt(self.youngs_modulus / self.density))
 
+    def compliance(self, w: ArrayLike, height: ArrayLike, head_mass: ArrayLike) -> np.ndarray:
+        """Base compliance 1/Z (m/N); see :func:`rod_compliance`."""
+        return rod_compliance(w, self, height, head_mass)
+
+    def resonances(self, height: float, head_mass: float = 0.0, n_modes: int = 1) -> np.ndarray:
+        """Axial resonances with the base held (Hz); see :func:`rod_resonances`."""
+        return rod_resonances(
+            height, self.diameter, self.youngs_modulus, self.density, head_mass, n_modes
+        )
+
     @property
-    def radius(self) -> float:
-        """Contact radius r = d / 2 (m)."""
-        return 0.5 * self.diameter
+    def has_compiled_points(self) -> bool:
+        return True
 
 
 def rod_constants(rod: Rod) -> tuple[complex, complex]:

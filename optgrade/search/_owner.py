@@ -45,8 +45,7 @@ import numpy as np
 import optuna
 from optuna.trial import TrialState
 
-from optgrade import __version__, fabrication, objectives, profiles
-from optgrade.propagation import _wkb as propagation
+from optgrade import __version__, fabrication, objectives, profiles, propagation
 
 __all__ = [
     "DEFAULT_SAMPLER",
@@ -148,8 +147,8 @@ class _LastModes:
 
 def _real_pipeline(study: Any) -> tuple[Any, Callable[[Any], Any]]:
     """Surrogate of the study (disk-cached tables) and a trace function over the goal band."""
+    from optgrade import propagation
     from optgrade.dispersion import _surrogate as surrogate
-    from optgrade.propagation import _wkb as propagation
 
     if hasattr(surrogate, "surrogate_for_study"):
         sur = surrogate.surrogate_for_study(study)

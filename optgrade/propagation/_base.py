@@ -1,0 +1,60 @@
+"""The small base every propagation model implements, and its registry.
+
+A propagation model turns a layout into a :class:`~optgrade.propagation.Trace` (channel fractions
+per frequency). It is built once per study (tables, caches) and then traces any number of
+layouts. Which dispersion points, tables or solves it needs is its own business. A new model is
+one module with one subclass registered with :data:`PROPAGATION_MODELS`.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from typing import TYPE_CHECKING, ClassVar
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from optgrade._registry import Registry
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.propagation._trace import Trace
+    from optgrade.study import Study
+
+
+def study_frequencies(study: Study) -> np.ndarray:
+    """The study's frequency grid: ``goal.n_frequencies`` points evenly over ``goal.band`` (Hz)."""
+    lo, hi = (float(v) for v in study.goal.band)
+    return np.linspace(lo, hi, int(study.goal.n_frequencies))
+
+
+class PropagationModel(ABC):
+    """Channel fractions of layouts of one study.
+
+    Parameters
+    ----------
+    study : Study
+        The validated study (substrate, resonator, band, model variant).
+    """
+
+    name: ClassVar[str] = ""
+
+    def __init__(self, study: Study) -> None:
+        self.study = study
+
+    @abstractmethod
+    def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
+        """Where the power of a unit incident Rayleigh wave goes, per frequency (Hz; the study's
+        grid when omitted)."""
+
+    def frequencies(self, freq: ArrayLike | None) -> np.ndarray:
+        """``freq`` as a 1-D float array, or the study's grid when None (Hz)."""
+        if freq is None:
+            return study_frequencies(self.study)
+        return np.atleast_1d(np.asarray(freq, dtype=float))
+
+
+#: Registered propagation models by name.
+PROPAGATION_MODELS: Registry[PropagationModel] = Registry(
+    "propagation model", builtin=("optgrade.propagation._wkb",)
+)

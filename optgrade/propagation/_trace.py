@@ -1,0 +1,83 @@
+"""The propagation stage's output: where the power of an incident Rayleigh wave goes.
+
+Every propagation model returns a :class:`Trace` (contract in DEVELOPERS.md); the score, the
+exports and the full-wave comparison read nothing else.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from optgrade.channels import CHANNELS
+
+__all__ = ["Trace"]
+
+
+@dataclass(frozen=True)
+class Trace:
+    """Where the power of a Rayleigh wave entering a layout goes, frequency by frequency.
+
+    Attributes
+    ----------
+    frequency : ndarray, shape (n_freq,)
+        Frequency (Hz).
+    fractions : dict[str, ndarray]
+        Power fraction per channel (dimensionless, 0..1); the seven sum to 1 per frequency.
+    position : dict[str, ndarray]
+        Power-weighted position (m) along the row where each channel receives its power; nan
+        where it gets nothing. ``transmitted_surface`` leaves at ``layout.length``;
+        ``reflected_surface`` is weighted between the entry step (0) and the turning point.
+    angle : dict[str, ndarray]
+        Power-weighted mean angle from the surface normal (deg), negative = pointing back to
+        the source; nan where the channel gets nothing. Surface channels are +90 (transmitted)
+        and -90 (reflected); ``absorbed`` is always nan.
+    eps_max : ndarray
+        Largest adiabaticity parameter on the forward path (dimensionless).
+    is_adiabatic : ndarray of bool
+        ``eps_max <= 0.1``.
+    branch : ndarray of int
+        Branch followed (0 lower, 1 upper, -1 none: entry cell in a gap).
+    turning_position : ndarray
+        Position of the turning point (m), nan where the wave is not turned back.
+    entry_reflection : ndarray
+        Part of the reflected power due to the entry impedance step.
+    phase : ndarray
+        Accumulated phase sum K'_j a_j of the transmitted wave (rad); nan where nothing is
+        transmitted.
+    """
+
+    frequency: np.ndarray
+    fractions: dict[str, np.ndarray]
+    position: dict[str, np.ndarray]
+    angle: dict[str, np.ndarray]
+    eps_max: np.ndarray
+    is_adiabatic: np.ndarray
+    branch: np.ndarray
+    turning_position: np.ndarray
+    entry_reflection: np.ndarray
+    phase: np.ndarray
+
+    def total(self) -> np.ndarray:
+        """Sum of all channel fractions per frequency (1 up to rounding)."""
+        return np.sum([self.fractions[c] for c in CHANNELS], axis=0)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict (lists, ``None`` for nan) with the trace.json keys."""
+
+        def clean(a: np.ndarray) -> list:
+            return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, float)]
+
+        return {
+            "frequency_hz": clean(self.frequency),
+            "fractions": {c: clean(self.fractions[c]) for c in CHANNELS},
+            "position_m": {c: clean(self.position[c]) for c in CHANNELS},
+            "angle_deg": {c: clean(self.angle[c]) for c in CHANNELS},
+            "eps_max": clean(self.eps_max),
+            "is_adiabatic": [bool(v) for v in self.is_adiabatic],
+            "branch": [int(v) for v in self.branch],
+            "turning_position_m": clean(self.turning_position),
+            "entry_reflection": clean(self.entry_reflection),
+        }
