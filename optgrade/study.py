@@ -196,6 +196,19 @@ def _choice(options: tuple[str, ...]) -> Callable[[Any], str]:
     return parse
 
 
+def _registry_choice(registry_path: str) -> Callable[[Any], str]:
+    """Validator against a plug-in registry read at validation time (late registrations count)."""
+
+    def parse(value: Any) -> str:
+        import importlib
+
+        module, _, attr = registry_path.rpartition(".")
+        names = getattr(importlib.import_module(module), attr).names()
+        return _choice(tuple(names))(value)
+
+    return parse
+
+
 def _material_name(value: Any) -> str:
     from optgrade.materials import library, suggest_material
 
@@ -267,6 +280,9 @@ class _SubstrateIn(_Raw):
     poisson: Poisson | None = None
     loss_factor: LossFactor = 0.0
     plate_thickness: Any = None
+    kind: Annotated[str, BeforeValidator(_registry_choice("optgrade.ground.GROUNDS"))] = (
+        "halfspace"
+    )
 
 
 class _ResonatorIn(_Raw):
@@ -278,6 +294,9 @@ class _ResonatorIn(_Raw):
     diameter: _Q("length", "diameter")
     row_pitch: _Q("length", "row_pitch")
     head_mass: _R("mass", "head_mass", allow_zero=True) = (0.0, 0.0)
+    kind: Annotated[str, BeforeValidator(_registry_choice("optgrade.resonators.RESONATORS"))] = (
+        "axial_rod"
+    )
 
 
 class _LayoutIn(_Raw):
@@ -308,6 +327,9 @@ class _GoalIn(_Raw):
     angle_window: _R("angle", "angle") | None = None
     weights: _WeightsIn | None = None
     model: _C(("lattice", "line")) = "lattice"
+    propagation: Annotated[
+        str, BeforeValidator(_registry_choice("optgrade.propagation.PROPAGATION_MODELS"))
+    ] = "wkb"
 
 
 class _FabricationIn(_Raw):
@@ -375,6 +397,7 @@ class SubstrateSpec(_Frozen):
     ct: float
     cr: float
     loss_factor: float
+    kind: str = "halfspace"
 
     @property
     def shear_modulus(self) -> float:
@@ -393,6 +416,7 @@ class ResonatorSpec(_Frozen):
     diameter: float
     row_pitch: float
     head_mass: tuple[float, float]
+    kind: str = "axial_rod"
 
     @property
     def bar_speed(self) -> float:
@@ -427,6 +451,7 @@ class GoalSpec(_Frozen):
     angle_window_deg: tuple[float, float] | None
     weights: dict[str, float]
     model: Literal["lattice", "line"]
+    propagation: str = "wkb"
 
 
 class FabricationSpec(_Frozen):
@@ -780,8 +805,8 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
     study = Study(
         meta=Meta(name=raw.study.name, seed=raw.study.seed, description=raw.study.description,
                   scale=scale),
-        substrate=SubstrateSpec(**substrate),
-        resonator=ResonatorSpec(**resonator),
+        substrate=SubstrateSpec(**substrate, kind=raw.substrate.kind),
+        resonator=ResonatorSpec(**resonator, kind=raw.resonator.kind),
         layout=LayoutSpec(count=raw.layout.count, height=raw.layout.height,
                           height_step=raw.layout.height_step, spacing=raw.layout.spacing,
                           profile=raw.layout.profile, max_length=extra["max_length"],
@@ -789,7 +814,7 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
         goal=GoalSpec(band=band, n_frequencies=raw.goal.n_frequencies, channel=raw.goal.channel,
                       required_fraction=raw.goal.required_fraction,
                       angle_window_deg=raw.goal.angle_window, weights=extra["weights"],
-                      model=raw.goal.model),
+                      model=raw.goal.model, propagation=raw.goal.propagation),
         fabrication=FabricationSpec(min_gap=raw.fabrication.min_gap,
                                     height_tolerance=raw.fabrication.height_tolerance,
                                     slenderness_max=raw.fabrication.slenderness_max),

@@ -6,7 +6,7 @@ half-space (:class:`Substrate`, ``kind = "halfspace"``) is the one ground so far
 
 from __future__ import annotations
 
-from optgrade.ground._base import GROUNDS, Ground
+from optgrade.ground._base import GROUNDS, Ground, ground_of
 from optgrade.ground._halfspace import (
     Substrate,
     compliance_sq,
@@ -18,6 +18,7 @@ from optgrade.ground._halfspace import (
 )
 
 __all__ = [
+    "ground_of",
     "GROUNDS",
     "Ground",
     "Substrate",

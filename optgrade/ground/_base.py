@@ -10,12 +10,15 @@ one subclass registered with :data:`GROUNDS`; the study names it in ``[substrate
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 
 from optgrade._registry import Registry
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import Study, SubstrateSpec
 
 
 class Ground(ABC):
@@ -30,6 +33,11 @@ class Ground(ABC):
     cl: float
     ct: float
     loss_factor: float
+
+    @classmethod
+    @abstractmethod
+    def from_spec(cls, spec: SubstrateSpec) -> Ground:
+        """The ground a study's ``[substrate]`` section describes (SI)."""
 
     @property
     @abstractmethod
@@ -93,3 +101,8 @@ class Ground(ABC):
 
 #: Registered grounds by name (``[substrate] kind``).
 GROUNDS: Registry[Ground] = Registry("ground", builtin=("optgrade.ground._halfspace",))
+
+
+def ground_of(study: Study) -> Ground:
+    """The ground of a validated study: the registered kind ``study.substrate.kind``."""
+    return GROUNDS.get(study.substrate.kind).from_spec(study.substrate)

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
-from typing import ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -93,6 +93,13 @@ class Substrate(Ground):
             raise ValueError(f"need cl > ct > 0, got cl={self.cl}, ct={self.ct}")
         if not (0.0 <= self.loss_factor < 1.0):
             raise ValueError(f"loss_factor must be in [0, 1), got {self.loss_factor}")
+
+    @classmethod
+    def from_spec(cls, spec: Any) -> Substrate:
+        """The half-space of a study's ``[substrate]`` section (SI)."""
+        return cls(
+            float(spec.density), float(spec.cl), float(spec.ct), float(spec.loss_factor or 0.0)
+        )
 
     @cached_property
     def cr(self) -> float:

@@ -7,7 +7,7 @@ far; :func:`oscillator_stiffness` is the lumped mass-spring limit used by the ch
 
 from __future__ import annotations
 
-from optgrade.resonators._base import RESONATORS, Resonator
+from optgrade.resonators._base import RESONATORS, Resonator, resonator_of
 from optgrade.resonators._rod import (
     Rod,
     is_thin_rod,
@@ -20,6 +20,7 @@ from optgrade.resonators._rod import (
 )
 
 __all__ = [
+    "resonator_of",
     "RESONATORS",
     "Resonator",
     "Rod",

@@ -9,12 +9,15 @@ registered with :data:`RESONATORS`; the study names it in ``[resonator] kind``.
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
 
 from optgrade._registry import Registry
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import ResonatorSpec, Study
 
 
 class Resonator(ABC):
@@ -26,6 +29,11 @@ class Resonator(ABC):
     name: ClassVar[str] = ""
     diameter: float
     loss_factor: float
+
+    @classmethod
+    @abstractmethod
+    def from_spec(cls, spec: ResonatorSpec) -> Resonator:
+        """The resonator type a study's ``[resonator]`` section describes (SI)."""
 
     @property
     def radius(self) -> float:
@@ -54,3 +62,8 @@ class Resonator(ABC):
 
 #: Registered resonator types by name (``[resonator] kind``).
 RESONATORS: Registry[Resonator] = Registry("resonator", builtin=("optgrade.resonators._rod",))
+
+
+def resonator_of(study: Study) -> Resonator:
+    """The resonator type of a validated study: the registered ``study.resonator.kind``."""
+    return RESONATORS.get(study.resonator.kind).from_spec(study.resonator)

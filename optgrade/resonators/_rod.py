@@ -17,7 +17,7 @@ from __future__ import annotations
 import cmath
 import math
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 from numba import njit
@@ -76,6 +76,16 @@ class Rod(Resonator):
     def bar_speed(self) -> float:
         """Bar (rod) speed c_r = sqrt(E / rho_r) (m/s), lossless."""
         return float(np.sqrt(self.youngs_modulus / self.density))
+
+    @classmethod
+    def from_spec(cls, spec: Any) -> Rod:
+        """The rod of a study's ``[resonator]`` section (SI)."""
+        return cls(
+            float(spec.youngs_modulus),
+            float(spec.density),
+            float(spec.diameter),
+            float(spec.loss_factor or 0.0),
+        )
 
     def compliance(self, w: ArrayLike, height: ArrayLike, head_mass: ArrayLike) -> np.ndarray:
         """Base compliance 1/Z (m/N); see :func:`rod_compliance`."""
