@@ -1,0 +1,346 @@
+"""Exact model of a finite resonator row: multiple scattering on the half-space (physics.md 6b).
+
+Each resonator j presses on its footprint (strip of width d for ``"line"``, rows of discs at
+pitch b for ``"lattice"``) with a force per unit length along y F_j = (Z_j / b) u_j, u_j the
+footprint-averaged vertical surface displacement (N/m, positive into the solid, exp(-i w t)).
+With the tabulated Green's function g (`optgrade.propagation._green`) and an incident Rayleigh
+wave of unit vertical surface amplitude, u_inc(x) = exp(i kR x), every frequency solves
+
+    (diag(b c_j) - g(x_j - x_k)) F = S(kR) exp(i kR x_j),   c_j = 1/Z_j (compliance, m/N),
+
+the Foldy multiple-scattering system (compliance form: finite at the rod resonances, where
+c_j = 0). From the forces (physics.md 6b; Res = residue of G at +kR, S = footprint factor):
+
+- transmitted amplitude T = 1 + i Res S(kR) sum_j F_j exp(-i kR x_j), reflected
+  R = i Res S(kR) sum_j F_j exp(+i kR x_j); fractions |T|^2, |R|^2 (incident Rayleigh power
+  per unit width and unit squared amplitude w / (4 Res));
+- bulk power per channel (w/2) sum_jk conj(F_j) F_k B_c(x_j - x_k), B_c the tabulated forward
+  shear / compressional cone integrals of the free-surface potentials' power densities;
+  backward = the same with B_c(x_k - x_j) (xi < 0); forward means positive wavenumber;
+- absorbed (w/2) sum_j Im(Z_j / b) |u_j|^2 = -(w/2) b sum_j Im(c_j) |F_j|^2.
+
+Energy balance. For a lossless substrate the seven fractions must sum to 1 whatever the rods
+(lossless or lossy): the balance error 1 - sum is returned per frequency; it is the main
+self-check, because the bulk tables are integrated over the cones independently of the Green's
+function's own imaginary part. With a lossy substrate the substrate itself absorbs power in
+the near field of the row and along the far field, so the far-field fractions do not sum to 1:
+the returned trace then books the remainder 1 - (T + R + bulk + rods) to ``absorbed`` (it is
+the substrate's extra loss caused by the row, relative to the bare ground whose own attenuation
+is divided out of T), and ``balance_error`` is nan there: no independent balance is checked
+for lossy substrates. Bulk fractions of a lossy substrate are the cone integrals of Im G of
+the lossy substrate split in the lossless shear/compressional proportions (definitional).
+
+Positions: bulk and absorbed channels are weighted by each resonator's share of the channel's
+power (sum_k of its row of the quadratic form); reflected by each resonator's share of
+|R|^2 (Re conj(R) r_j); transmitted leaves at ``layout.length``. Angles: bulk channels from the
+angle-weighted cone integrals (deg from the normal, negative = backward); surface channels
++-90; absorbed nan.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numba import njit
+from numpy.typing import ArrayLike
+
+from optgrade.layout import Layout
+from optgrade.propagation import CHANNELS, Trace, study_frequencies
+from optgrade.propagation._green import GreenSpec, GreenTables, stencils
+
+__all__ = ["ScatteringResult", "scattering_trace", "solve_row", "tables_for_study"]
+
+
+@dataclass(frozen=True)
+class ScatteringResult:
+    """Result of the exact row model.
+
+    Attributes
+    ----------
+    trace : Trace
+        The project's channel contract (fractions summing to 1, positions m, angles deg).
+        ``eps_max`` is 0 and ``is_adiabatic`` True (no adiabatic assumption), ``branch`` -1,
+        ``turning_position`` and ``entry_reflection`` nan; ``phase`` is the unwrapped phase of
+        the transmitted wave across the row, arg T + Re kR L (rad).
+    balance_error : ndarray, shape (n_freq,)
+        1 - sum of the seven fractions for a lossless substrate; nan for a lossy substrate (see
+        the module docstring).
+    forces : ndarray, complex, shape (n_freq, n)
+        Forces per unit length F_j (N/m) for a unit incident surface amplitude (m).
+    transmission, reflection : ndarray, complex, shape (n_freq,)
+        Amplitudes T and R (dimensionless).
+    resonator_power : ndarray, shape (6, n_freq, n)
+        Each resonator's share of the reflected, four bulk and absorbed fractions.
+    """
+
+    trace: Trace
+    balance_error: np.ndarray
+    forces: np.ndarray
+    transmission: np.ndarray
+    reflection: np.ndarray
+    resonator_power: np.ndarray
+
+
+@njit(cache=True)
+def _fill(table, idx, wts, x, bc, kr, res, skr, m):
+    """Foldy matrix m[f] = diag(b c_j) - g(x_j - x_k); g = tabulated rest (8-point Lagrange) +
+    the pole term i Res S(kR)^2 exp(i kR |x|) (from per-resonator phasors)."""
+    n_f, n = m.shape[0], m.shape[1]
+    ph = np.empty(n, dtype=np.complex128)
+    for f in range(n_f):
+        for j in range(n):
+            ph[j] = np.exp(1j * kr[f] * x[j])
+        pole = 1j * res[f] * skr[f] * skr[f]
+        p = 0
+        for j in range(n):
+            m[f, j, j] = bc[f, j] - (table[f, 0] + pole)
+            for k in range(j + 1, n):
+                v = 0j
+                for s in range(idx.shape[1]):
+                    v += table[f, idx[p, s]] * wts[p, s]
+                v += pole * ph[k] / ph[j]
+                m[f, j, k] = -v
+                m[f, k, j] = -v
+                p += 1
+
+
+@njit(cache=True)
+def _bulk(tb, idx, wts, forces, n_f, n, out_p, out_a, per):
+    """Quadratic forms of the four bulk tables: forward and backward power (out_p[c, dir, f],
+    c = shear, compressional) and angle moments (out_a), per-resonator power per[c, dir, f, j]."""
+    for f in range(n_f):
+        for c in range(2):
+            b0 = tb[c, f, 0].real
+            a0 = tb[2 + c, f, 0].real
+            for j in range(n):
+                q = abs(forces[f, j]) ** 2
+                for dr in range(2):
+                    per[c, dr, f, j] = b0 * q
+                    out_a[c, dr, f] += a0 * q
+            p = 0
+            for j in range(n):
+                fj = forces[f, j]
+                for k in range(j + 1, n):
+                    fk = forces[f, k]
+                    vb = 0j
+                    va = 0j
+                    for s in range(idx.shape[1]):
+                        vb += tb[c, f, idx[p, s]] * wts[p, s]
+                        va += tb[2 + c, f, idx[p, s]] * wts[p, s]
+                    # B(x_j - x_k) = conj(B(s)), B(x_k - x_j) = B(s), s = x_k - x_j > 0
+                    cjk = np.conj(fj) * fk
+                    # forward: sum conj(F_j) F_k B(x_j - x_k)
+                    per[c, 0, f, j] += (cjk * np.conj(vb)).real
+                    per[c, 0, f, k] += (np.conj(cjk) * vb).real
+                    per[c, 1, f, j] += (cjk * vb).real
+                    per[c, 1, f, k] += (np.conj(cjk) * np.conj(vb)).real
+                    out_a[c, 0, f] += 2.0 * (cjk * np.conj(va)).real
+                    out_a[c, 1, f] += 2.0 * (cjk * va).real
+                    p += 1
+            for dr in range(2):
+                tot = 0.0
+                for j in range(n):
+                    tot += per[c, dr, f, j]
+                out_p[c, dr, f] = tot
+
+
+def solve_row(
+    tables: GreenTables, x: ArrayLike, compliance: ArrayLike, row_pitch: float
+) -> dict[str, np.ndarray]:
+    """Forces and channel powers of a row at the tables' frequencies.
+
+    Parameters
+    ----------
+    tables : GreenTables
+    x : array_like, shape (n,)
+        Resonator positions (m), increasing.
+    compliance : array_like, complex, shape (n_freq, n)
+        Base compliance 1/Z_j of every resonator (m/N; `optgrade.resonators.rod_compliance`).
+    row_pitch : float
+        Row pitch b (m): the force per unit length is Z u / b.
+
+    Returns
+    -------
+    dict with ``forces`` (n_freq, n), ``T``, ``R`` (n_freq,), ``fractions`` (7, n_freq) in the
+    order of CHANNELS, ``per`` (6, n_freq, n) per-resonator shares (reflected, four bulk,
+    absorbed), ``angle`` (4, n_freq) bulk mean angles (rad).
+    """
+    x = np.ascontiguousarray(np.asarray(x, dtype=float))
+    c = np.ascontiguousarray(np.asarray(compliance, dtype=complex))
+    n = x.size
+    w = tables.omega
+    n_f = w.size
+    if c.shape != (n_f, n):
+        raise ValueError(f"compliance: shape {c.shape}, expected {(n_f, n)}")
+    if n < 1 or np.any(np.diff(x) <= 0):
+        raise ValueError("layout.x: positions must be strictly increasing")
+    jj, kk = np.triu_indices(n, 1)
+    idx, wts = stencils(tables, x[kk] - x[jj])
+    pc = tables.pole
+    kr, res, skr = pc.kr, pc.res, pc.s_kr
+    tab = np.asarray(tables.table)
+    m = np.empty((n_f, n, n), dtype=complex)
+    _fill(tab[0], idx, wts, x, row_pitch * c, kr, res, skr, m)
+    rhs = skr[:, None] * np.exp(1j * kr[:, None] * x[None, :])
+    forces = np.linalg.solve(m, rhs[..., None])[..., 0]
+    a_plus = np.sum(forces * np.exp(-1j * kr[:, None] * x[None, :]), axis=1)
+    r_j = 1j * (res * skr)[:, None] * forces * np.exp(1j * kr[:, None] * x[None, :])
+    t_amp = 1.0 + 1j * res * skr * a_plus
+    r_amp = np.sum(r_j, axis=1)
+    p_inc = w / (4.0 * res.real)
+    out_p = np.zeros((2, 2, n_f))
+    out_a = np.zeros((2, 2, n_f))
+    per_b = np.zeros((2, 2, n_f, n))
+    _bulk(tab[1:], idx, wts, forces, n_f, n, out_p, out_a, per_b)
+    scale = (0.5 * w / p_inc)[:, None]
+    absorbed_j = -0.5 * w[:, None] * row_pitch * c.imag * np.abs(forces) ** 2 / p_inc[:, None]
+    per = np.empty((6, n_f, n))
+    per[0] = (np.conj(r_amp)[:, None] * r_j).real
+    # order of CHANNELS: forward_shear, forward_compressional, backward_shear, backward_comp.
+    per[1], per[2] = per_b[0, 0] * scale, per_b[1, 0] * scale
+    per[3], per[4] = per_b[0, 1] * scale, per_b[1, 1] * scale
+    per[5] = absorbed_j
+    fractions = np.empty((7, n_f))
+    fractions[0] = np.abs(t_amp) ** 2
+    fractions[1] = np.abs(r_amp) ** 2
+    for i in range(4):
+        fractions[2 + i] = per[1 + i].sum(axis=1)
+    fractions[6] = absorbed_j.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        angle = np.array([
+            out_a[0, 0] / out_p[0, 0], out_a[1, 0] / out_p[1, 0],
+            -out_a[0, 1] / out_p[0, 1], -out_a[1, 1] / out_p[1, 1],
+        ])
+    return {"forces": forces, "T": t_amp, "R": r_amp, "fractions": fractions, "per": per,
+            "angle": angle}
+
+
+def _positions(x, length, fr, per) -> dict[str, np.ndarray]:
+    """Power-weighted position (m) per channel; nan where the channel gets nothing."""
+    pos = {}
+    for i, name in enumerate(CHANNELS):
+        if name == "transmitted_surface":
+            pos[name] = np.where(fr[0] > 0, length, np.nan)
+            continue
+        share = per[i - 1]
+        tot = share.sum(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            pos[name] = np.where(np.abs(tot) > 1e-300, share @ x / tot, np.nan)
+    return pos
+
+
+def _make_trace(freq, layout, sol, kr, lossy) -> tuple[Trace, np.ndarray]:
+    fr = sol["fractions"].copy()
+    total = fr.sum(axis=0)
+    balance = 1.0 - total
+    if lossy:
+        fr[6] += balance  # the substrate's extra loss caused by the row (module docstring)
+        balance = np.full(freq.size, np.nan)
+    x = np.asarray(layout.x, float)
+    pos = _positions(x, float(layout.length), fr, sol["per"])
+    ang = {c: np.full(freq.size, np.nan) for c in CHANNELS}
+    ang["transmitted_surface"] = np.where(fr[0] > 0, 90.0, np.nan)
+    ang["reflected_surface"] = np.where(fr[1] > 0, -90.0, np.nan)
+    for i, name in enumerate(CHANNELS[2:6]):
+        ang[name] = np.where(fr[2 + i] > 0, np.degrees(sol["angle"][i]), np.nan)
+    phase = np.unwrap(np.angle(sol["T"])) + kr.real * float(layout.length)
+    trace = Trace(
+        frequency=np.asarray(freq, float),
+        fractions={c: fr[i] for i, c in enumerate(CHANNELS)},
+        position=pos,
+        angle=ang,
+        eps_max=np.zeros(freq.size),
+        is_adiabatic=np.ones(freq.size, dtype=bool),
+        branch=np.full(freq.size, -1, dtype=np.int8),
+        turning_position=np.full(freq.size, np.nan),
+        entry_reflection=np.full(freq.size, np.nan),
+        phase=phase,
+    )
+    return trace, balance
+
+
+_MEMO: dict[str, GreenTables] = {}
+
+
+def tables_for_study(
+    study: Any, layout: Layout | None = None, freq: ArrayLike | None = None,
+    *, model: str | None = None, cache_dir=None,
+) -> GreenTables:
+    """Green's-function tables for a study (kept in memory and on disk per key).
+
+    Separation range: from 0.98 x the study's smallest spacing to 1.02 x its longest row
+    (``layout.max_length``), widened to the layout's own separations when it lies outside.
+    """
+    sub, res = study.substrate, study.resonator
+    f = study_frequencies(study) if freq is None else np.atleast_1d(np.asarray(freq, float))
+    x_lo = 0.98 * float(study.layout.spacing[0])
+    x_hi = 1.02 * float(study.layout.max_length)
+    if layout is not None and layout.n_resonators > 1:
+        sp = np.diff(np.asarray(layout.x, float))
+        x_lo = min(x_lo, 0.98 * float(sp.min()))
+        x_hi = max(x_hi, 1.02 * float(layout.x[-1] - layout.x[0]))
+    spec = GreenSpec(
+        float(sub.density), float(sub.cl), float(sub.ct), float(sub.loss_factor or 0.0),
+        model or study.goal.model, float(res.diameter), float(res.row_pitch),
+        tuple(float(v) for v in f), x_lo, x_hi,
+    )
+    key = spec.key()
+    if key not in _MEMO:
+        if len(_MEMO) > 8:
+            _MEMO.pop(next(iter(_MEMO)))
+        _MEMO[key] = GreenTables(spec, cache_dir=cache_dir)
+    return _MEMO[key]
+
+
+def scattering_trace(
+    study: Any,
+    layout: Layout,
+    freq: ArrayLike | None = None,
+    *,
+    model: str | None = None,
+    cache_dir=None,
+    tables: GreenTables | None = None,
+) -> ScatteringResult:
+    """Exact multiple-scattering trace of a layout over the study's band (or ``freq``, Hz).
+
+    Parameters
+    ----------
+    study : Study
+        Validated study (substrate, resonator material / diameter / row pitch, goal band and
+        model, layout limits).
+    layout : Layout
+        The row (positions, heights, head masses; diameter must be the study's).
+    freq : array_like, optional
+        Frequencies (Hz); default the study's grid (`study_frequencies`).
+    model : {"lattice", "line"}, optional
+        Default ``study.goal.model``.
+    tables : GreenTables, optional
+        Prebuilt tables (their frequencies are used).
+
+    Returns
+    -------
+    ScatteringResult
+    """
+    from optgrade.resonators import Rod, rod_compliance
+
+    res = study.resonator
+    d = float(res.diameter)
+    diam = np.asarray(layout.diameter, float)
+    if np.any(np.abs(diam - d) > 1e-9 * d):
+        raise ValueError(
+            f"layout.diameter: every resonator must have the study's diameter {d:g} m for the "
+            "tabulated footprint"
+        )
+    if tables is None:
+        tables = tables_for_study(study, layout, freq, model=model, cache_dir=cache_dir)
+    rod = Rod(float(res.youngs_modulus), float(res.density), d, float(res.loss_factor or 0.0))
+    w = tables.omega
+    comp = rod_compliance(w[:, None], rod, np.asarray(layout.height, float)[None, :],
+                          np.asarray(layout.head_mass, float)[None, :])
+    sol = solve_row(tables, layout.x, comp, float(res.row_pitch))
+    lossy = float(study.substrate.loss_factor or 0.0) > 0.0
+    trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
+    return ScatteringResult(trace, balance, sol["forces"], sol["T"], sol["R"], sol["per"])
+
