@@ -21,15 +21,21 @@ import json
 import math
 import os
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from optgrade import __version__, fabrication, objectives, profiles
+from optgrade import __version__, fabrication, objectives, profiles, search
 from optgrade._atomic import atomic_write
 from optgrade.objectives._common import wanted_fraction
-from optgrade.propagation import CHANNELS
 from optgrade.study import SITE_CAUTION
+
+if TYPE_CHECKING:  # pragma: no cover
+    import optuna
+
+    from optgrade.layout import Layout
+    from optgrade.propagation import Trace
+    from optgrade.study import Study
 
 __all__ = ["SITE_CAUTION", "export_layout", "export_trial"]
 
@@ -43,19 +49,6 @@ def _write_text(path: Path, text: str) -> Path:
 
 def _clean(a: Any) -> list:
     return [None if not np.isfinite(v) else float(v) for v in np.asarray(a, dtype=float)]
-
-
-def _trace_dict(trace: Any) -> dict[str, Any]:
-    if hasattr(trace, "to_dict"):
-        return trace.to_dict()
-    return {
-        "frequency_hz": _clean(trace.frequency),
-        "fractions": {c: _clean(trace.fractions[c]) for c in CHANNELS},
-        "position_m": {c: _clean(trace.position[c]) for c in CHANNELS},
-        "angle_deg": {c: _clean(trace.angle[c]) for c in CHANNELS},
-        "eps_max": _clean(trace.eps_max),
-        "is_adiabatic": [bool(v) for v in trace.is_adiabatic],
-    }
 
 
 def _jsonable(obj: Any) -> Any:
@@ -76,7 +69,7 @@ def _jsonable(obj: Any) -> Any:
 # DXF
 
 
-def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: int = 3) -> Path:
+def write_dxf(layout: Layout, path: Path, *, row_pitch: float, title: str, n_rows: int = 3) -> Path:
     """Plan and elevation drawing of a layout (mm) via ezdxf, written atomically.
 
     Layers: ``PLAN`` (footprint circles), ``ELEVATION`` (rods, surface line), ``HEAD_MASS``
@@ -156,18 +149,20 @@ def write_dxf(layout: Any, path: Path, *, row_pitch: float, title: str, n_rows: 
 # figure sheet
 
 
-def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tuple | None,
-                pareto: tuple | None, summary: list[str], trial_number: int | None) -> Path:
-    """Figure sheet PNG: layout, channel map, fractions, history, Pareto front or summary."""
-    import matplotlib
+def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
+                history: tuple | None, pareto: tuple | None, summary: list[str],
+                trial_number: int | None) -> Path:
+    """Figure sheet PNG: layout, channel map, fractions, history, Pareto front or summary.
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    Drawn on a bare :class:`matplotlib.figure.Figure` (no pyplot), so the caller's plotting
+    backend is left alone."""
+    from matplotlib.figure import Figure
 
     from optgrade.plotting import search as _plot_search
     from optgrade.plotting import trace as _plot_trace
 
-    fig, axes = plt.subplots(3, 2, figsize=_plot_search.figure_size(6))
+    fig = Figure(figsize=_plot_search.figure_size(6))
+    axes = fig.subplots(3, 2)
     ax = axes.ravel()
     _plot_trace.plot_elevation(ax[0], layout, title="elevation")
     scale, unit = _plot_trace.length_unit(float(layout.length))
@@ -185,7 +180,7 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
     else:
         _plot_search.describe(ax[5], summary)
     fig.suptitle(f"{study.meta.name}: trial {trial_number}", fontsize=11)
-    is_site = getattr(study.meta, "scale", "bench") == "site"
+    is_site = study.meta.scale == "site"
     fig.tight_layout(rect=(0, 0.04 if is_site else 0, 1, 1))
     if is_site:
         import textwrap
@@ -196,17 +191,15 @@ def write_sheet(path: Path, study: Any, layout: Any, trace: Any, *, history: tup
     def save(p: Path) -> None:
         fig.savefig(p, dpi=110, format="png")
 
-    try:
-        return atomic_write(Path(path), save)
-    finally:
-        plt.close(fig)
+    return atomic_write(Path(path), save)
 
 
 # ---------------------------------------------------------------------------------------------
 # the export
 
 
-def _summary_lines(study: Any, trace: Any, values: dict, violations: list, score: float) -> list:
+def _summary_lines(study: Study, trace: Trace, values: dict, violations: list,
+                   score: float) -> list[str]:
     f = np.asarray(trace.frequency, dtype=float)
     band = f"{study.goal.band[0]:.6g}-{study.goal.band[1]:.6g} Hz"
     lines = [f"goal: {study.goal.channel} over {band} ({len(f)} frequencies), "
@@ -222,8 +215,8 @@ def _summary_lines(study: Any, trace: Any, values: dict, violations: list, score
 
 
 def export_layout(
-    study: Any,
-    layout: Any,
+    study: Study,
+    layout: Layout,
     out_dir: str | os.PathLike,
     *,
     context: objectives.EvalContext | None = None,
@@ -232,9 +225,10 @@ def export_layout(
     pareto: tuple | None = None,
     extra: dict[str, Any] | None = None,
 ) -> dict[str, Path]:
-    """Trace ``layout`` and write all export files into ``out_dir``; returns their paths."""
+    """Trace ``layout`` and write all export files into ``out_dir``; returns their paths.
+
+    ``context`` is the search's evaluation context (built for ``study`` when omitted)."""
     from optgrade.layout import write_table
-    from optgrade.search import _owner as search
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -245,7 +239,7 @@ def export_layout(
     weights = {n: w for n, w in study.goal.weights.items() if w}
     score = objectives.weighted_score(values, weights)
     violations = fabrication.check_layout(study, layout)
-    is_site = getattr(study.meta, "scale", "bench") == "site"
+    is_site = study.meta.scale == "site"
     key = search.study_hash(study)
     today = _dt.datetime.now(_dt.timezone.utc).date()
 
@@ -269,7 +263,7 @@ def export_layout(
         "trial": trial_number,
         "package_version": __version__,
         "date": today.isoformat(),
-        "scale": getattr(study.meta, "scale", "bench"),
+        "scale": study.meta.scale,
         "weighted_score": score,
         "objectives": {n: {"score": v.score, "direction": objectives.get(n).direction,
                            "details": v.details} for n, v in values.items()},
@@ -278,7 +272,7 @@ def export_layout(
         "layout": {"n_resonators": int(layout.n_resonators), "length_m": float(layout.length),
                    "x_m": _clean(layout.x), "height_m": _clean(layout.height),
                    "head_mass_kg": _clean(layout.head_mass)},
-        "performance": _trace_dict(trace),
+        "performance": trace.to_dict(),
         "notes": [BENDING_NOTE] + ([SITE_CAUTION] if is_site else []),
     }
     if extra:
@@ -291,7 +285,8 @@ def export_layout(
     return paths
 
 
-def _report(study, layout, trace, summary, violations, is_site, trial_number) -> str:
+def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], violations: list,
+            is_site: bool, trial_number: int | None) -> str:
     f = np.asarray(trace.frequency, dtype=float)
     # the same measure the search scored (blocking: insertion effect against bare ground)
     wanted = np.nan_to_num(wanted_fraction(trace, study.goal.channel, layout, study), nan=0.0)
@@ -330,7 +325,7 @@ def _report(study, layout, trace, summary, violations, is_site, trial_number) ->
     return "\n".join(lines) + "\n"
 
 
-def _history(ostudy: Any) -> tuple[np.ndarray, np.ndarray]:
+def _history(ostudy: optuna.Study) -> tuple[np.ndarray, np.ndarray]:
     from optuna.trial import TrialState
 
     done = ostudy.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
@@ -338,7 +333,7 @@ def _history(ostudy: Any) -> tuple[np.ndarray, np.ndarray]:
             np.array([t.user_attrs.get("score", np.nan) for t in done], dtype=float))
 
 
-def _pareto(ostudy: Any, study: Any, number: int) -> tuple | None:
+def _pareto(ostudy: optuna.Study, study: Study, number: int) -> tuple | None:
     from optuna.trial import TrialState
 
     if len(ostudy.directions) < 2:
@@ -352,8 +347,8 @@ def _pareto(ostudy: Any, study: Any, number: int) -> tuple | None:
 
 
 def export_trial(
-    study: Any,
-    source: Any,
+    study: Study,
+    source: optuna.Study | str,
     trial_number: int,
     out_dir: str | os.PathLike,
     *,
@@ -366,16 +361,11 @@ def export_trial(
 
     Raises
     ------
-    optgrade.search._owner.SearchError
+    optgrade.search.SearchError
         Unknown trial, or a trial without parameters.
     """
-    import optuna
-
-    from optgrade.search import _owner as search
-
     if isinstance(source, str):
-        source = optuna.load_study(study_name=study.meta.name,
-                                   storage=search.open_storage(source))
+        source = search.load_search(study, source)
     trials = [t for t in source.get_trials(deepcopy=False) if t.number == trial_number]
     if not trials:
         raise search.SearchError("--trial", f"no trial {trial_number} in the stored study")

@@ -15,6 +15,7 @@ bit for bit.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import os
 from dataclasses import dataclass, field
@@ -31,6 +32,7 @@ __all__ = [
     "Layout",
     "TableError",
     "layout_from_cells",
+    "with_height_errors",
     "read_header",
     "read_table",
     "write_table",
@@ -229,6 +231,13 @@ def layout_from_cells(
 
 
 # ----------------------------------------------------------------------------- table writing
+
+
+def with_height_errors(layout: Layout, errors: np.ndarray) -> Layout:
+    """Copy of ``layout`` with machining errors ``errors`` (m, one per resonator) added to the
+    rod heights, kept above 1 nm so every rod still stands."""
+    h = np.maximum(np.asarray(layout.height) + errors, 1e-9)
+    return dataclasses.replace(layout, height=h)
 
 
 def _shortest(value: float, scale: Decimal) -> str:

@@ -1,7 +1,8 @@
 """Layout profiles: a few search parameters -> a machinable graded layout.
 
 A *profile* describes how one quantity (rod height, cell spacing or head mass) varies along the
-row. Kinds (plain names of our own):
+row. Each kind is a small :class:`ProfileKind` registered by name in :data:`PROFILES` (study
+validation of ``layout.profile`` reads the registry). Built-in kinds (plain names of our own):
 
 ``linear``  straight line between the two ends (2 parameters);
 ``power``   ends plus an exponent p, u(s) = u_end + (u_start - u_end) (1 - s)^p (3 parameters);
@@ -26,16 +27,22 @@ mirror image.
 from __future__ import annotations
 
 import re
+from abc import ABC, abstractmethod
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
-from optuna.distributions import BaseDistribution, FloatDistribution, IntDistribution
-from scipy.interpolate import PchipInterpolator
 
 from optgrade import fabrication
+from optgrade._registry import Registry
 
-PROFILE_KINDS = ("linear", "power", "spline", "free")
+if TYPE_CHECKING:  # pragma: no cover
+    import optuna
+    from optuna.distributions import BaseDistribution
+
+    from optgrade.layout import Layout
+    from optgrade.study import Study
+
 QUANTITIES = ("height", "spacing", "head_mass")
 N_SPLINE_POINTS = 4
 MAX_FREE_COUNT = 24
@@ -85,9 +92,9 @@ def parse_profile(text: str | None) -> ProfilePlan:
             raise ProfileError(
                 "layout.profile", f"unknown quantity {quantity!r}; use one of {QUANTITIES}"
             )
-        if kind not in PROFILE_KINDS:
+        if kind not in PROFILES:
             raise ProfileError(
-                "layout.profile", f"unknown profile kind {kind!r}; use one of {PROFILE_KINDS}"
+                "layout.profile", f"unknown profile kind {kind!r}; use one of {PROFILES.names()}"
             )
         kinds[quantity] = kind
     return ProfilePlan(**kinds)
@@ -97,15 +104,96 @@ def parse_profile(text: str | None) -> ProfilePlan:
 # shapes on the unit interval
 
 
-def _param_names(quantity: str, kind: str, is_monotone: bool, n_free: int) -> list[str]:
-    p = f"{quantity}_"
-    if kind == "linear":
-        return [p + "start", p + "end"]
-    if kind == "power":
-        return [p + "start", p + "end", p + "exponent"]
-    if kind == "spline":
-        return [f"{p}c{i}" for i in range(N_SPLINE_POINTS)]
-    return [f"{p}f{i:02d}" for i in range(n_free)]
+class ProfileKind(ABC):
+    """One way a quantity varies along the row, from parameters in [0, 1] (exponents aside)."""
+
+    name: ClassVar[str] = ""
+
+    @staticmethod
+    @abstractmethod
+    def param_names(prefix: str, n_free: int) -> list[str]:
+        """Search-parameter names, each starting with ``prefix`` (``"height_"``, ...);
+        ``n_free`` is the largest resonator count (for one value per resonator)."""
+
+    @staticmethod
+    @abstractmethod
+    def values(params: dict[str, float], prefix: str, s: np.ndarray,
+               is_monotone: bool) -> np.ndarray:
+        """Unclipped profile values at normalised positions ``s`` (0 = first resonator);
+        non-increasing in ``s`` when ``is_monotone``."""
+
+
+#: Registered profile kinds by name.
+PROFILES: Registry[ProfileKind] = Registry("profile kind")
+
+
+def _ends(params: dict[str, float], prefix: str, is_monotone: bool) -> tuple[float, float]:
+    start = float(params[prefix + "start"])
+    end = float(params[prefix + "end"])
+    # nested parametrisation: the end is a fraction of the start, so any point is monotone
+    return start, (start * end if is_monotone else end)
+
+
+@PROFILES.register
+class _Linear(ProfileKind):
+    name = "linear"
+
+    @staticmethod
+    def param_names(prefix: str, n_free: int) -> list[str]:  # noqa: ARG004
+        return [prefix + "start", prefix + "end"]
+
+    @staticmethod
+    def values(params, prefix, s, is_monotone):
+        start, end = _ends(params, prefix, is_monotone)
+        return start + (end - start) * s
+
+
+@PROFILES.register
+class _Power(ProfileKind):
+    name = "power"
+
+    @staticmethod
+    def param_names(prefix: str, n_free: int) -> list[str]:  # noqa: ARG004
+        return [prefix + "start", prefix + "end", prefix + "exponent"]
+
+    @staticmethod
+    def values(params, prefix, s, is_monotone):
+        start, end = _ends(params, prefix, is_monotone)
+        expo = float(params[prefix + "exponent"])
+        return end + (start - end) * (1.0 - s) ** expo
+
+
+@PROFILES.register
+class _Spline(ProfileKind):
+    name = "spline"
+
+    @staticmethod
+    def param_names(prefix: str, n_free: int) -> list[str]:  # noqa: ARG004
+        return [f"{prefix}c{i}" for i in range(N_SPLINE_POINTS)]
+
+    @staticmethod
+    def values(params, prefix, s, is_monotone):
+        from scipy.interpolate import PchipInterpolator
+
+        c = np.array([float(params[f"{prefix}c{i}"]) for i in range(N_SPLINE_POINTS)])
+        if is_monotone:
+            c = np.cumprod(c)
+        knots = np.linspace(0.0, 1.0, N_SPLINE_POINTS)
+        return PchipInterpolator(knots, c)(s)
+
+
+@PROFILES.register
+class _Free(ProfileKind):
+    name = "free"
+
+    @staticmethod
+    def param_names(prefix: str, n_free: int) -> list[str]:
+        return [f"{prefix}f{i:02d}" for i in range(n_free)]
+
+    @staticmethod
+    def values(params, prefix, s, is_monotone):
+        v = np.array([float(params[f"{prefix}f{i:02d}"]) for i in range(s.size)])
+        return np.sort(v)[::-1] if is_monotone else v
 
 
 def shape_values(
@@ -115,7 +203,7 @@ def shape_values(
 
     Parameters
     ----------
-    kind : profile kind (``PROFILE_KINDS``).
+    kind : profile kind (a name in :data:`PROFILES`).
     params : parameter dict (names ``<quantity>_...``), values in [0, 1] except the exponent.
     quantity : ``"height"``, ``"spacing"`` or ``"head_mass"``.
     s : normalised position along the row, shape (n,).
@@ -126,30 +214,10 @@ def shape_values(
     -------
     ndarray, shape (n,), values in [0, 1].
     """
-    p = f"{quantity}_"
-    s = np.asarray(s, dtype=float)
-    if kind in ("linear", "power"):
-        start = float(params[p + "start"])
-        end = float(params[p + "end"])
-        if is_monotone:
-            end = start * end
-        if kind == "linear":
-            u = start + (end - start) * s
-        else:
-            expo = float(params[p + "exponent"])
-            u = end + (start - end) * (1.0 - s) ** expo
-    elif kind == "spline":
-        c = np.array([float(params[f"{p}c{i}"]) for i in range(N_SPLINE_POINTS)])
-        if is_monotone:
-            c = np.cumprod(c)
-        knots = np.linspace(0.0, 1.0, N_SPLINE_POINTS)
-        u = PchipInterpolator(knots, c)(s)
-    elif kind == "free":
-        n = s.size
-        v = np.array([float(params[f"{p}f{i:02d}"]) for i in range(n)])
-        u = np.sort(v)[::-1] if is_monotone else v
-    else:
+    if kind not in PROFILES:
         raise ProfileError("layout.profile", f"unknown profile kind {kind!r}")
+    u = PROFILES.get(kind).values(params, f"{quantity}_", np.asarray(s, dtype=float),
+                                  is_monotone)
     return np.clip(u, 0.0, 1.0)
 
 
@@ -157,17 +225,17 @@ def shape_values(
 # ranges and the search space
 
 
-def _has_head_mass(study: Any) -> bool:
+def _has_head_mass(study: Study) -> bool:
     return float(study.resonator.head_mass[1]) > 0.0
 
 
-def spacing_range(study: Any) -> tuple[float, float]:
+def spacing_range(study: Study) -> tuple[float, float]:
     """Allowed cell spacing (m): [max(spacing_min, diameter + min_gap), spacing_max]."""
     lo = max(float(study.layout.spacing[0]), study.resonator.diameter + study.fabrication.min_gap)
     return lo, float(study.layout.spacing[1])
 
 
-def count_range(study: Any) -> tuple[int, int]:
+def count_range(study: Study) -> tuple[int, int]:
     """Resonator count range, the upper end capped so the row fits within ``max_length``.
 
     The row length is the sum of the cell lengths, ``x[-1] + spacing[-1]``; with the smallest
@@ -182,7 +250,7 @@ def count_range(study: Any) -> tuple[int, int]:
     return n_lo, max(n_hi, 0)
 
 
-def search_space(study: Any) -> dict[str, BaseDistribution]:
+def search_space(study: Study) -> dict[str, BaseDistribution]:
     """Optuna distributions of the search parameters of a study (fixed, flat space).
 
     The space does not branch, so the same dict serves ``study.ask(fixed_distributions=...)``
@@ -193,6 +261,8 @@ def search_space(study: Any) -> dict[str, BaseDistribution]:
     ProfileError
         Infeasible count range, or ``free`` profile on a long row.
     """
+    from optuna.distributions import FloatDistribution, IntDistribution
+
     plan = parse_profile(study.layout.profile)
     n_lo, n_hi = count_range(study)
     if n_hi < n_lo:
@@ -220,7 +290,7 @@ def search_space(study: Any) -> dict[str, BaseDistribution]:
                 f"'free' {quantity} profile needs at most {MAX_FREE_COUNT} resonators, "
                 f"count goes up to {n_hi}; use 'spline'",
             )
-        for name in _param_names(quantity, kind, quantity == "height", n_hi):
+        for name in PROFILES.get(kind).param_names(f"{quantity}_", n_hi):
             if name.endswith("_exponent"):
                 space[name] = FloatDistribution(*POWER_RANGE, log=True)
             else:
@@ -228,8 +298,10 @@ def search_space(study: Any) -> dict[str, BaseDistribution]:
     return space
 
 
-def suggest(trial: Any, study: Any) -> dict[str, Any]:
+def suggest(trial: optuna.Trial, study: Study) -> dict[str, Any]:
     """Declare the search space on an optuna ``Trial`` and return the suggested parameters."""
+    from optuna.distributions import IntDistribution
+
     out: dict[str, Any] = {}
     for name, dist in search_space(study).items():
         if isinstance(dist, IntDistribution):
@@ -239,8 +311,10 @@ def suggest(trial: Any, study: Any) -> dict[str, Any]:
     return out
 
 
-def centre_params(study: Any) -> dict[str, Any]:
+def centre_params(study: Study) -> dict[str, Any]:
     """Parameter point in the middle of every range (a deterministic starting candidate)."""
+    from optuna.distributions import IntDistribution
+
     out: dict[str, Any] = {}
     for name, dist in search_space(study).items():
         if isinstance(dist, IntDistribution):
@@ -291,7 +365,7 @@ def _fit_length(spacing: np.ndarray, s_lo: float, max_length: float | None) -> n
     return s_lo + (cells - s_lo) * g * (1 - 1e-12)
 
 
-def layout_arrays(study: Any, params: dict[str, Any]) -> dict[str, np.ndarray]:
+def layout_arrays(study: Study, params: dict[str, Any]) -> dict[str, np.ndarray]:
     """Per-resonator arrays (SI) of the layout described by ``params``.
 
     Returns
@@ -342,7 +416,7 @@ def layout_arrays(study: Any, params: dict[str, Any]) -> dict[str, np.ndarray]:
     }
 
 
-def layout_from_params(study: Any, params: dict[str, Any]):
+def layout_from_params(study: Study, params: dict[str, Any]) -> Layout:
     """Build the :class:`optgrade.layout.Layout` described by a parameter dict."""
     from optgrade.layout import layout_from_cells
 

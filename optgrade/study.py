@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import difflib
 import hashlib
+import importlib
 import math
 import re
 import sys
@@ -22,8 +23,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
+from optgrade.channels import GOAL_CHANNELS
 from optgrade.errors import StudyError
-from optgrade.objectives import BUILTIN as BUILTIN_GOALS
 from optgrade.units import UnitError, format_quantity, parse_quantity
 
 if sys.version_info >= (3, 11):
@@ -34,7 +35,6 @@ else:  # pragma: no cover
 __all__ = [
     "SITE_CAUTION",
     "CHANNELS",
-    "GOAL_NAMES",
     "LIMITS",
     "FabricationSpec",
     "GoalSpec",
@@ -57,20 +57,18 @@ SITE_CAUTION = (
     "qualified engineer and follow local codes."
 )
 
-#: Wanted-channel names accepted by ``[goal] channel``.
-CHANNELS = (
-    "backward_shear",
-    "backward_compressional",
-    "forward_shear",
-    "forward_compressional",
-    "blocking",
-    "reflected_surface",
-)
-#: Secondary goal names (keys of ``[goal.weights]``, entries of ``[search] objectives``): the
-#: goals registered in ``objectives`` (one list, so a new goal is one file plus one line there).
-GOAL_NAMES = BUILTIN_GOALS
-PROFILES = ("linear", "power", "spline", "free")
-SAMPLERS = ("auto", "tpe", "cmaes", "random", "nsga2")
+#: Wanted-channel names accepted by ``[goal] channel`` (the one list in optgrade.channels).
+CHANNELS = GOAL_CHANNELS
+
+# Names of plug-ins are read from their registries at validation time (late registrations
+# count); the registries are imported then, never when this module is imported.
+_GOALS = "optgrade.objectives.GOALS"
+_PROFILES = "optgrade.profiles.PROFILES"
+_SAMPLERS = "optgrade.search.SAMPLERS"
+#: Extra names beside the registered ones: the weighted sum as a search objective, and the
+#: search's own choice of sampler.
+WEIGHTED = "weighted"
+AUTO_SAMPLER = "auto"
 
 #: Plausible ranges (SI) outside which a value is refused as absurd: name -> (low, high).
 LIMITS: dict[str, tuple[float, float]] = {
@@ -196,15 +194,18 @@ def _choice(options: tuple[str, ...]) -> Callable[[Any], str]:
     return parse
 
 
-def _registry_choice(registry_path: str) -> Callable[[Any], str]:
-    """Validator against a plug-in registry read at validation time (late registrations count)."""
+def _registry_names(registry_path: str) -> tuple[str, ...]:
+    """Names registered now in the registry at ``module.ATTR`` (imported on first use)."""
+    module, _, attr = registry_path.rpartition(".")
+    return tuple(getattr(importlib.import_module(module), attr).names())
+
+
+def _registry_choice(registry_path: str, *extra: str) -> Callable[[Any], str]:
+    """Validator against a plug-in registry read at validation time (late registrations count);
+    ``extra`` names are accepted beside the registered ones."""
 
     def parse(value: Any) -> str:
-        import importlib
-
-        module, _, attr = registry_path.rpartition(".")
-        names = getattr(importlib.import_module(module), attr).names()
-        return _choice(tuple(names))(value)
+        return _choice((*extra, *_registry_names(registry_path)))(value)
 
     return parse
 
@@ -224,7 +225,7 @@ def _material_name(value: Any) -> str:
 
 
 def _objective_list(value: Any) -> list[str]:
-    options = ("weighted", *GOAL_NAMES)
+    options = (WEIGHTED, *_registry_names(_GOALS))
     if isinstance(value, str):
         value = [value]
     if not isinstance(value, list) or not value:
@@ -304,19 +305,14 @@ class _LayoutIn(_Raw):
     height: _R("length", "height")
     height_step: _Q("length", "height_step")
     spacing: _R("length", "spacing")
-    profile: _C(PROFILES) = "spline"
+    profile: Annotated[str, BeforeValidator(_registry_choice(_PROFILES))] = "spline"
     max_length: _Q("length", "max_length") | None = None
     entry: _C(("tall", "short")) = "short"
 
 
-class _WeightsIn(_Raw):
-    channel: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    worst: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    blocking: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    angle: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    compactness: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    adiabaticity: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
-    robustness: Annotated[float, Field(ge=0.0, le=1e6)] | None = None
+#: ``[goal.weights]``: goal name -> weight; the names are checked against the goal registry
+#: in :func:`_goal_weights` (so the message names the key and its line).
+Weight = Annotated[float, Field(ge=0.0, le=1e6)]
 
 
 class _GoalIn(_Raw):
@@ -325,7 +321,7 @@ class _GoalIn(_Raw):
     channel: _C(CHANNELS)
     required_fraction: Annotated[float, Field(ge=0.0, le=1.0)] = 0.8
     angle_window: _R("angle", "angle") | None = None
-    weights: _WeightsIn | None = None
+    weights: dict[str, Weight] | None = None
     model: _C(("lattice", "line")) = "lattice"
     propagation: Annotated[
         str, BeforeValidator(_registry_choice("optgrade.propagation.PROPAGATION_MODELS"))
@@ -341,7 +337,7 @@ class _FabricationIn(_Raw):
 class _SearchIn(_Raw):
     trials: Annotated[int, Field(ge=1, le=10_000_000)] = 500
     workers: Annotated[int, Field(ge=1, le=1024)] = 1
-    sampler: _C(SAMPLERS) = "auto"
+    sampler: Annotated[str, BeforeValidator(_registry_choice(_SAMPLERS, AUTO_SAMPLER))] = "auto"
     storage: Annotated[str, Field(min_length=1)] | None = None
     objectives: Annotated[list[str], BeforeValidator(_objective_list)] = ["weighted"]
     batch_size: Annotated[int, Field(ge=1, le=100_000)] | None = None
@@ -364,7 +360,6 @@ _SECTION_MODELS: dict[tuple[str, ...], type[BaseModel]] = {
     ("resonator",): _ResonatorIn,
     ("layout",): _LayoutIn,
     ("goal",): _GoalIn,
-    ("goal", "weights"): _WeightsIn,
     ("fabrication",): _FabricationIn,
     ("search",): _SearchIn,
 }
@@ -729,13 +724,29 @@ def _cross_checks(raw: _FileIn, substrate: dict, resonator: dict, out: _Collecto
         out.add(("goal", "band"), "band min must be below band max")
     if goal.angle_window is not None and goal.angle_window[0] >= goal.angle_window[1]:
         out.add(("goal", "angle_window"), "angle window min must be below max")
-    weights = {k: v for k, v in (goal.weights.model_dump() if goal.weights else {}).items()
-               if v is not None}
+    weights = _goal_weights(goal.weights or {}, out)
     if not weights:
         weights = {"channel": 1.0}
     elif not any(v > 0 for v in weights.values()):
         out.add(("goal", "weights"), "at least one weight must be positive")
     return {"max_length": float(max_length), "weights": weights}
+
+
+def _goal_weights(raw: Mapping[str, float], out: _Collector) -> dict[str, float]:
+    """``[goal.weights]`` checked against the goal registry, in a canonical order (the built-in
+    goals in ``objectives.BUILTIN`` order, then the others as written), so that the weighted
+    sum does not depend on the order of the keys in the file."""
+    from optgrade.objectives import BUILTIN
+
+    known = _registry_names(_GOALS)
+    for key in raw:
+        if key not in known:
+            close = difflib.get_close_matches(key, known, n=1, cutoff=0.4)
+            hint = f"; did you mean {close[0]!r}?" if close else f"; valid: {', '.join(known)}"
+            out.add(("goal", "weights", key), f"unknown goal {key!r}{hint}")
+    rank = {name: i for i, name in enumerate(BUILTIN)}
+    order = sorted((k for k in raw if k in known), key=lambda k: rank.get(k, len(rank)))
+    return {k: float(raw[k]) for k in order}
 
 
 def _check_band_reach(study: Study, out: _Collector) -> None:

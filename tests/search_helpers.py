@@ -11,15 +11,10 @@ from types import SimpleNamespace
 
 import numpy as np
 
-CHANNELS = (
-    "transmitted_surface",
-    "reflected_surface",
-    "forward_shear",
-    "forward_compressional",
-    "backward_shear",
-    "backward_compressional",
-    "absorbed",
-)
+from optgrade.channels import CHANNELS
+from optgrade.propagation import Trace
+
+__all__ = ["CHANNELS", "clone", "fake_pipeline", "fake_study", "fake_trace", "slow_pipeline"]
 
 
 def fake_study(**over) -> SimpleNamespace:
@@ -75,12 +70,14 @@ def fake_trace(study, layout, surrogate=None):
     ang = {c: np.full_like(f, np.nan) for c in CHANNELS}
     ang["backward_shear"] = np.where(conv > 0, -30.0 - 20.0 * (f - f[0]) / (f[-1] - f[0]), np.nan)
     eps = np.full_like(f, 0.05)
-    return SimpleNamespace(frequency=f, fractions=fr_dict, position=pos, angle=ang,
-                           eps_max=eps, is_adiabatic=eps < 0.1)
+    return Trace(frequency=f, fractions=fr_dict, position=pos, angle=ang, eps_max=eps,
+                 is_adiabatic=eps < 0.1, branch=np.zeros(f.size, np.int8),
+                 turning_position=np.full_like(f, np.nan), entry_reflection=np.zeros_like(f),
+                 phase=np.full_like(f, np.nan))
 
 
 def fake_pipeline(study):
-    """Stand-in for the (surrogate, trace_fn) pair of optgrade.search._owner.make_context."""
+    """Stand-in for the (model, trace_fn) pair of optgrade.search.make_context (no model)."""
     return None, lambda layout: fake_trace(study, layout)
 
 

@@ -113,7 +113,7 @@ def test_export_trial_from_storage(tmp_path):
     s = fake_study()
     url = f"sqlite:///{tmp_path / 's.db'}"
     out = search.run_search(s, tmp_path / "run", n_trials=12, n_jobs=0, storage=url,
-                            pipeline=fake_pipeline, show_progress=False, do_export=False)
+                            pipeline=fake_pipeline, show_progress=False)
     paths = export.export_trial(s, url, out.best_number, tmp_path / "again", context=_ctx(s))
     res = json.loads(paths["result"].read_text())
     assert res["weighted_score"] == pytest.approx(out.best_score, abs=1e-12)

@@ -3,8 +3,11 @@
 
 from __future__ import annotations
 
+import dataclasses
+import re
 import sys
 import textwrap
+from pathlib import Path
 from types import SimpleNamespace
 
 import numpy as np
@@ -12,7 +15,10 @@ import pytest
 from search_helpers import CHANNELS, clone, fake_study, fake_trace
 
 from optgrade import objectives
+from optgrade.errors import StudyError
 from optgrade.layout import layout_from_cells
+
+STUDY_FILE = Path(__file__).resolve().parent.parent / "studies" / "bench_backward_shear.toml"
 
 
 def _trace(f, **fractions):
@@ -29,16 +35,32 @@ LAYOUT = layout_from_cells(np.linspace(8e-3, 3e-3, 20), 3e-3, 1e-3, 0.0, 0.02e-3
 CTX = objectives.EvalContext()
 
 
-def test_every_study_goal_name_is_registered():
-    """Every goal name the study file accepts (optgrade.study.GOAL_NAMES) has a module."""
-    from optgrade.study import GOAL_NAMES
+def test_every_registered_goal_is_accepted_by_the_study_file():
+    """The study file's [goal.weights] keys come from the goal registry: every built-in goal
+    module registers its name, each is accepted as a weight, and an unknown one is refused with
+    the field, the reason and the line."""
+    from optgrade.study import study_from_text
 
-    assert set(GOAL_NAMES) <= set(objectives.names())
+    assert set(objectives.names()) == set(objectives.BUILTIN)
     for name in objectives.names():
         goal = objectives.get(name)
         assert goal.name == name and goal.direction in ("maximize", "minimize")
-    with pytest.raises(KeyError, match="unknown objective"):
+    with pytest.raises(KeyError, match="unknown goal"):
         objectives.get("nope")
+    text = STUDY_FILE.read_text()
+
+    def with_weights(lines: str) -> str:
+        return re.sub(r"\[goal\.weights\]\n(.+\n)+", "[goal.weights]\n" + lines, text, count=1)
+
+    # every name, written in reverse: kept in the canonical (BUILTIN) order, so the weighted
+    # sum does not depend on the order of the keys in the file
+    s = study_from_text(with_weights("".join(f"{n} = 0.5\n" for n in objectives.names()[::-1])))
+    assert list(s.goal.weights) == list(objectives.BUILTIN)
+    with pytest.raises(StudyError) as err:
+        study_from_text(with_weights("channel = 1.0\nwrost = 1.0\n"))
+    (msg,) = err.value.messages
+    assert "goal.weights.wrost: unknown goal 'wrost'; did you mean 'worst'?" in msg
+    assert msg.endswith(f"(line {text.splitlines().index('[goal.weights]') + 3})")
 
 
 def test_channel_worst_blocking_by_hand():
@@ -212,23 +234,22 @@ def test_new_goal_is_one_file_and_one_registration(tmp_path, monkeypatch):
         expect = 0.5 - 2.0 * np.std([0.2, 0.8, 0.6, 0.4])
         assert objectives.weighted_score(vals, s.goal.weights) == pytest.approx(expect)
     finally:
-        objectives._REGISTRY.pop("spread", None)
+        objectives.GOALS.unregister("spread")
         sys.modules.pop("spread_goal", None)
 
 
 @pytest.mark.slow
 def test_interpolated_robustness_matches_full_traces():
-    """Robustness from modes interpolated between h -/+ tol agrees with tracing every draw in
-    full (real surrogate, bench example) within 0.01 of the score."""
-    from pathlib import Path
-
-    from optgrade import profiles
-    from optgrade.search import _owner as search
+    """Robustness from modes interpolated between h -/+ tol (the WKB model's way of tracing
+    perturbed layouts, through the context) agrees with tracing every draw in full (real
+    surrogate, bench example) within 0.01 of the score."""
+    from optgrade import profiles, search
     from optgrade.study import load_study
 
-    s = load_study(Path(__file__).resolve().parent.parent / "studies" /
-                   "bench_backward_shear.toml")
+    s = load_study(STUDY_FILE)
     ctx = search.make_context(s)
+    assert ctx.trace_height_errors is not None
+    full_ctx = dataclasses.replace(ctx, trace_height_errors=None)
     goal = objectives.get("robustness")
     rng = np.random.default_rng(5)
     for _ in range(2):
@@ -237,10 +258,6 @@ def test_interpolated_robustness_matches_full_traces():
         lay = profiles.layout_from_params(s, params)
         tr = ctx.trace_fn(lay)
         fast = goal.evaluate(tr, lay, s, ctx)
-        try:
-            type(goal).is_interpolated = False
-            full = goal.evaluate(tr, lay, s, ctx)
-        finally:
-            type(goal).is_interpolated = True
+        full = goal.evaluate(tr, lay, s, full_ctx)
         assert fast.score == pytest.approx(full.score, abs=0.01)
         assert fast.details["nominal"] == pytest.approx(full.details["nominal"], abs=1e-12)

@@ -14,8 +14,8 @@ Issue 4 "Checks":
 * the eps flag rises when the same height change is packed into fewer cells (physics.md s. 6);
 * table round trip (write, read, trace) gives identical fractions.
 
-The band solver (``optgrade.dispersion._direct.solve_bands``) solves the Bloch relation directly for one cell,
-independently of the surrogate tables the trace uses.
+The band solver (``optgrade.dispersion._direct.solve_bands``) solves the Bloch relation
+directly for one cell, independently of the surrogate tables the trace uses.
 """
 
 from __future__ import annotations

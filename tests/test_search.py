@@ -24,6 +24,7 @@ import pytest
 from optuna.trial import TrialState
 from search_helpers import fake_pipeline, fake_study
 
+from optgrade import export_trial
 from optgrade.cli import main
 from optgrade.search import _owner as search
 
@@ -34,7 +35,6 @@ REPO = HERE.parent
 def _run(study, tmp_path, name="run", **kw):
     kw.setdefault("n_jobs", 0)
     kw.setdefault("show_progress", False)
-    kw.setdefault("do_export", False)
     kw.setdefault("pipeline", fake_pipeline)
     url = f"sqlite:///{tmp_path / (name + '.db')}"
     return search.run_search(study, tmp_path / name, storage=url, **kw), url
@@ -157,15 +157,15 @@ def test_search_finds_planted_band_solver_case(tmp_path):
 
     Invented study: 40 aluminium pins (1 mm) at 3 mm on an aluminium half-space, wave entering
     at the short end, goal: block the surface wave. Direct root solves
-    (`optgrade.dispersion._direct.solve_bands`, no tables, 29 frequencies 100-300 kHz) give where the lower
-    (surface) branch of the 5 mm and of the 8 mm cell ends. Each cut-off must lie below that
-    pin's quarter-wave resonance c_bar / (4 h) of a fixed-free rod (R. D. Blevins, *Formulas for
-    Natural Frequency and Mode Shape*, 1979, axial modes of a fixed-free bar -- from memory): the
-    surface branch bends over below the resonance. Between the two cut-offs every frequency
-    enters the 5 mm end on the lower branch and meets a cell without one before the 8 mm end,
-    so the linear row 5 -> 8 mm turns it back: blocking 1. The goal band is that interval,
-    shrunk by 2 % of its width at each end and kept inside the grid points that bracket the
-    cut-offs.
+    (`optgrade.dispersion._direct.solve_bands`, no tables, 29 frequencies 100-300 kHz) give
+    where the lower (surface) branch of the 5 mm and of the 8 mm cell ends. Each cut-off must
+    lie below that pin's quarter-wave resonance c_bar / (4 h) of a fixed-free rod (R. D.
+    Blevins, *Formulas for Natural Frequency and Mode Shape*, 1979, axial modes of a fixed-free
+    bar -- from memory): the surface branch bends over below the resonance. Between the two
+    cut-offs every frequency enters the 5 mm end on the lower branch and meets a cell without
+    one before the 8 mm end, so the linear row 5 -> 8 mm turns it back: blocking 1. The goal
+    band is that interval, shrunk by 2 % of its width at each end and kept inside the grid
+    points that bracket the cut-offs.
 
     Tolerance 0.1 (PLANTED_TOL) of the band-mean blocking: the pipeline uses the tabulated
     surrogate, whose cut-offs differ slightly from the direct solve, and places turning points at
@@ -202,8 +202,7 @@ def test_search_finds_planted_band_solver_case(tmp_path):
     assert planted >= 1.0 - PLANTED_TOL
 
     out = search.run_search(study, tmp_path / "out", n_trials=60, n_jobs=2,
-                            storage=f"sqlite:///{tmp_path / 'p.db'}", show_progress=False,
-                            do_export=False)
+                            storage=f"sqlite:///{tmp_path / 'p.db'}", show_progress=False)
     assert out.best_score >= planted - PLANTED_TOL
 
 
@@ -247,7 +246,10 @@ SCRIPT = textwrap.dedent("""
     s = fake_study()
     out = search.run_search(s, {out!r}, n_trials={n}, n_jobs=2, storage={url!r},
                             pipeline=slow_pipeline, show_progress=False, chunk_size=2,
-                            is_resume={resume}, do_export={export})
+                            is_resume={resume})
+    if {export} and out.best_number is not None:  # what `optgrade search` does after the run
+        from optgrade import export_trial
+        export_trial(s, {url!r}, out.best_number, {out!r}, context=out.context)
     print(json.dumps({{"restarts": out.n_pool_restarts, "told": out.n_told_now,
                       "recovered": out.n_recovered, "interrupted": out.is_interrupted}}))
     sys.exit(130 if out.is_interrupted else 0)
@@ -418,8 +420,7 @@ def test_examples_search_beats_random(tmp_path, name):
         for sampler in best:
             url = f"sqlite:///{tmp_path / f'{sampler}{seed}.db'}"
             out = search.run_search(s, tmp_path / f"{sampler}{seed}", n_trials=40, n_jobs=2,
-                                    storage=url, sampler=sampler, show_progress=False,
-                                    do_export=False)
+                                    storage=url, sampler=sampler, show_progress=False)
             best[sampler].append(out.best_score)
     assert np.mean(best["auto"]) > np.mean(best["random"]) + 0.02
 
@@ -428,8 +429,7 @@ def test_journal_storage_and_resume(tmp_path):
     """optuna's journal file storage (for shared file systems) works through `journal:PATH`."""
     s = fake_study()
     url = f"journal:{tmp_path / 'j.log'}"
-    kw = dict(n_jobs=0, storage=url, pipeline=fake_pipeline, show_progress=False,
-              do_export=False)
+    kw = dict(n_jobs=0, storage=url, pipeline=fake_pipeline, show_progress=False)
     search.run_search(s, tmp_path / "j", n_trials=5, **kw)
     out = search.run_search(s, tmp_path / "j", n_trials=9, is_resume=True, **kw)
     assert out.n_told_now == 4 and out.n_finished == 9
@@ -440,7 +440,8 @@ def test_multi_objective_pareto_and_export(tmp_path):
     exported trial lies on the Pareto front and the sheet gets its Pareto panel."""
     s = fake_study()
     s.search.objectives = ["channel", "compactness"]
-    out, url = _run(s, tmp_path, "mo", n_trials=16, do_export=True)
+    out, url = _run(s, tmp_path, "mo", n_trials=16)
+    export_trial(s, url, out.best_number, tmp_path / "mo", context=out.context)
     st = _load(url)
     assert [d.name for d in st.directions] == ["MAXIMIZE", "MINIMIZE"]
     assert isinstance(search.make_sampler("auto", 1, multi=True), optuna.samplers.NSGAIISampler)
@@ -453,20 +454,31 @@ def test_multi_objective_pareto_and_export(tmp_path):
 
 def test_remembered_modes_serve_path_only_calls_but_not_the_reverse():
     """The search's surrogate proxy: a full ``local_modes`` call of the same cells serves a
-    later ``path_only`` one (the nominal trace of a study with the robustness goal), a path-only
-    result never serves a full call, and other cells are solved anew."""
+    later row request (``path``, the nominal trace of a study with the robustness goal), a row
+    result never serves a full call, other cells are solved anew, and with ``is_full`` (the
+    robustness goal) every call is a full one."""
+    from optgrade.dispersion import RowPath
+
     calls = []
+    row = RowPath(entry_order=(0, 1))
 
     class Counting:
-        def local_modes(self, height, spacing, head_mass, freq, *, path_only=False):
-            calls.append(path_only)
-            return ("path" if path_only else "full", float(np.sum(height)))
+        cr = 2900.0
+
+        def local_modes(self, height, spacing, head_mass, freq, *, path=None):
+            calls.append(path)
+            return ("path" if path is not None else "full", float(np.sum(height)))
 
     proxy = search._LastModes(Counting())
     h, a, m, f = np.array([1.0, 2.0]), np.array([0.1, 0.1]), np.zeros(2), np.array([5.0])
     assert proxy.local_modes(h, a, m, f) == ("full", 3.0)
-    assert proxy.local_modes(h, a, m, f, path_only=True) == ("full", 3.0)
-    assert calls == [False]
-    assert proxy.local_modes(h + 1, a, m, f, path_only=True) == ("path", 5.0)
+    assert proxy.local_modes(h, a, m, f, path=row) == ("full", 3.0)
+    assert calls == [None]
+    assert proxy.local_modes(h + 1, a, m, f, path=row) == ("path", 5.0)
     assert proxy.local_modes(h + 1, a, m, f) == ("full", 5.0)
-    assert calls == [False, True, False]
+    assert calls == [None, row, None]
+    calls.clear()
+    full = search._LastModes(Counting(), is_full=True)
+    assert full.local_modes(h, a, m, f, path=row) == ("full", 3.0)
+    assert full.local_modes(h, a, m, f) == ("full", 3.0)
+    assert calls == [None]

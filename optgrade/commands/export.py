@@ -46,31 +46,21 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 
 def run(args: argparse.Namespace) -> int:
     """Export the trial; 0 done, 2 bad input."""
-    import optuna
-
-    from optgrade import export
-    from optgrade.search import _owner as search
+    from optgrade import export_trial
+    from optgrade.search import SearchError, best_trial, load_search
 
     study = open_study(args.study)
     try:
-        store = search.open_storage(args.storage)
-        if study.meta.name not in optuna.study.get_all_study_names(store):
-            raise search.SearchError("--storage", f"no study named {study.meta.name!r} in "
-                                     f"{args.storage}")
-        ostudy = optuna.load_study(study_name=study.meta.name, storage=store)
+        ostudy = load_search(study, args.storage)
         if args.trial == "best":
-            best = search.best_trial(ostudy)
+            best = best_trial(ostudy)
             if best is None:
-                raise search.SearchError("--trial", "the stored study has no complete trial")
+                raise SearchError("--trial", "the stored study has no complete trial")
             number = best.number
         else:
             number = _trial_number(args.trial)
-        stored_hash = ostudy.user_attrs.get("study_hash")
-        if stored_hash and stored_hash != search.study_hash(study):
-            raise search.SearchError("STUDY", "this study file differs from the one the search "
-                                     "ran with; the layout would not match the stored trial")
-        export.export_trial(study, ostudy, number, args.out)
-    except search.SearchError as exc:
+        export_trial(study, ostudy, number, args.out)
+    except SearchError as exc:
         raise StudyError([f"{args.study}: {exc}"]) from None
     print(f"exported trial {number} to {args.out}: table.csv layout.dxf sheet.png result.json "
           "report.txt")

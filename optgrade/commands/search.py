@@ -18,8 +18,6 @@ from optgrade.errors import StudyError
 
 __all__ = ["add_parser", "run"]
 
-SAMPLER_CHOICES = ("auto", "tpe", "cmaes", "random", "nsga2", "qmc")
-
 
 def _positive_int(option: str, allow_zero: bool = False):
     def parse(text: str) -> int:
@@ -61,7 +59,9 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
                              "journal:PATH for a journal file on a shared file system)")
     parser.add_argument("--resume", action="store_true",
                         help="continue the stored study of the same name to --trials")
-    parser.add_argument("--sampler", choices=SAMPLER_CHOICES,
+    from optgrade.search import sampler_choices
+
+    parser.add_argument("--sampler", choices=sampler_choices(),
                         help="candidate sampler (default: [search] sampler; auto = tpe, or "
                              "nsga2 for several objectives)")
     parser.add_argument("--chunk", type=_positive_int("--chunk"), metavar="K",
@@ -75,18 +75,22 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 
 def run(args: argparse.Namespace) -> int:
     """Run the search; 0 done, 2 bad input, 130 interrupted (best so far exported)."""
+    from optgrade import export_trial, run_search
     from optgrade.profiles import ProfileError
-    from optgrade.search import _owner as search
+    from optgrade.search import SearchError
 
     study = open_study(args.study)
     try:
-        outcome = search.run_search(
+        outcome = run_search(
             study, args.out, n_trials=args.trials, n_jobs=args.jobs, storage=args.storage,
             is_resume=args.resume, sampler=args.sampler, chunk_size=args.chunk,
-            show_progress=not args.quiet and sys.stderr.isatty(), do_export=not args.no_export,
+            show_progress=not args.quiet and sys.stderr.isatty(),
         )
-    except (search.SearchError, ProfileError) as exc:
+    except (SearchError, ProfileError) as exc:
         raise StudyError([f"{args.study}: {exc}"]) from None
+    if not args.no_export and outcome.best_number is not None:
+        export_trial(study, outcome.storage, outcome.best_number, args.out,
+                     context=outcome.context)
     best = "none" if outcome.best_score is None else (
         f"trial {outcome.best_number}, score {outcome.best_score:.4f}")
     print(f"{outcome.study_name}: {outcome.n_finished} trials finished "

@@ -3,8 +3,10 @@
 Each goal is a small :class:`Objective` subclass with a ``name``, a ``direction``
 (``"maximize"`` or ``"minimize"``) and ``evaluate(trace, layout, study, context) ->
 ObjectiveValue(score, details)``. A module registers its class with the :func:`register`
-decorator; the package imports the modules listed in :data:`BUILTIN`. Adding a goal is one new
-file in this package plus its name in :data:`BUILTIN`.
+decorator (the registry :data:`GOALS`); the built-in goals are the modules listed in
+:data:`BUILTIN`, imported on first use. A goal defined elsewhere (a notebook, a test file, a
+plug-in) is one module plus its registration: study validation (``[goal.weights]`` keys,
+``[search] objectives``) reads the registry, so it is accepted as soon as it is registered.
 
 Single-objective studies maximise the weighted sum (:func:`weighted_score`) of the goals named in
 ``study.goal.weights`` (a minimised goal enters with a minus sign); multi-objective studies
@@ -13,19 +15,29 @@ optimise the goals named in ``study.search.objectives`` as a Pareto front.
 
 from __future__ import annotations
 
-import importlib
 from abc import ABC, abstractmethod
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
+
+import numpy as np
+
+from optgrade._registry import Registry
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.propagation import PropagationModel, Trace
+    from optgrade.study import Study
 
 __all__ = [
     "BUILTIN",
+    "GOALS",
     "EvalContext",
     "Objective",
     "ObjectiveValue",
     "evaluate_many",
     "get",
+    "main_score",
     "names",
     "register",
     "signed",
@@ -43,7 +55,10 @@ BUILTIN: tuple[str, ...] = (
     "robustness",
 )
 
-_REGISTRY: dict[str, type[Objective]] = {}
+#: Trace one layout (the study's propagation model over the goal band).
+TraceFn = Callable[["Layout"], "Trace"]
+#: Trace ``layout`` once per row of ``errors`` (m) added to its rod heights.
+HeightErrorsFn = Callable[["Layout", np.ndarray], "list[Trace]"]
 
 
 @dataclass(frozen=True)
@@ -56,13 +71,26 @@ class ObjectiveValue:
 
 @dataclass
 class EvalContext:
-    """What a goal may need besides the trace: the surrogate, a way to trace another layout of
-    the same study with the same surrogate, and a seed for anything random."""
+    """What a goal may need besides the trace, all built once per study by the search.
 
-    surrogate: Any = None
-    trace_fn: Callable[[Any], Any] | None = None
+    Attributes
+    ----------
+    trace_fn : callable, optional
+        ``trace_fn(layout) -> Trace`` with the study's propagation model.
+    trace_height_errors : callable, optional
+        ``trace_height_errors(layout, errors) -> list[Trace]``: one trace per row of ``errors``
+        (m, shape (n_draws, n_resonators)) added to the rod heights, with the same model
+        (``optgrade.propagation.height_error_traces``; may be faster than tracing each).
+    model : PropagationModel, optional
+        The propagation model behind both (for records such as table hashes).
+    seed : int
+        Seed for anything random (the study seed).
+    """
+
+    trace_fn: TraceFn | None = None
+    trace_height_errors: HeightErrorsFn | None = None
+    model: PropagationModel | None = None
     seed: int = 0
-    cache: dict[str, Any] = field(default_factory=dict)
 
 
 class Objective(ABC):
@@ -74,29 +102,26 @@ class Objective(ABC):
     is_composite: ClassVar[bool] = False
 
     @abstractmethod
-    def evaluate(self, trace: Any, layout: Any, study: Any, context: EvalContext) -> ObjectiveValue:
+    def evaluate(
+        self, trace: Trace, layout: Layout, study: Study, context: EvalContext
+    ) -> ObjectiveValue:
         """Score ``layout`` from its ``trace`` (see the Trace contract in DEVELOPERS.md)."""
+
+
+#: Registered goals by name (the built-in modules are imported on first use).
+GOALS: Registry[Objective] = Registry("goal", builtin=tuple(f"{__name__}._{m}" for m in BUILTIN))
 
 
 def register(cls: type[Objective]) -> type[Objective]:
     """Class decorator: make a goal available by its ``name``."""
-    if not cls.name:
-        raise ValueError(f"{cls.__name__}: an objective needs a name")
     if cls.direction not in ("maximize", "minimize"):
         raise ValueError(f"{cls.__name__}: direction must be 'maximize' or 'minimize'")
-    _REGISTRY[cls.name] = cls
-    return cls
-
-
-def _load_builtin() -> None:
-    for module in BUILTIN:
-        importlib.import_module(f"{__name__}._{module}")
+    return GOALS.register(cls)
 
 
 def names() -> list[str]:
     """Names of all registered goals."""
-    _load_builtin()
-    return sorted(_REGISTRY)
+    return list(GOALS.names())
 
 
 def get(name: str) -> Objective:
@@ -107,12 +132,7 @@ def get(name: str) -> Objective:
     KeyError
         Unknown goal; the message lists the known ones.
     """
-    _load_builtin()
-    try:
-        return _REGISTRY[name]()
-    except KeyError:
-        known = ", ".join(sorted(_REGISTRY))
-        raise KeyError(f"unknown objective {name!r}; known: {known}") from None
+    return GOALS.get(name)()
 
 
 def signed(objective: Objective, score: float) -> float:
@@ -121,7 +141,7 @@ def signed(objective: Objective, score: float) -> float:
 
 
 def evaluate_many(
-    goal_names: Iterable[str], trace: Any, layout: Any, study: Any, context: EvalContext
+    goal_names: Iterable[str], trace: Trace, layout: Layout, study: Study, context: EvalContext
 ) -> dict[str, ObjectiveValue]:
     """Evaluate several goals on one trace."""
     return {n: get(n).evaluate(trace, layout, study, context) for n in goal_names}
@@ -132,7 +152,7 @@ def weighted_score(values: Mapping[str, ObjectiveValue], weights: Mapping[str, f
     return float(sum(w * signed(get(n), values[n].score) for n, w in weights.items() if w))
 
 
-def main_score(trace: Any, layout: Any, study: Any, context: EvalContext) -> float:
+def main_score(trace: Trace, layout: Layout, study: Study, context: EvalContext) -> float:
     """Weighted score of the study's non-composite goals (what robustness perturbs)."""
     weights = {n: w for n, w in study.goal.weights.items() if w and not get(n).is_composite}
     values = evaluate_many(weights, trace, layout, study, context)

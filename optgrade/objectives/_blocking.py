@@ -3,10 +3,10 @@
 
 T_array is the transmitted surface fraction of the trace; T_bare = exp(-2 Im kR L) is what the
 bare, damped ground lets through over the same path (row length L, complex Rayleigh wavenumber
-kR of the lossy substrate; see ``optgrade.objectives._common.insertion_blocking``). Comparing with the
-bare ground keeps soil damping, which attenuates the wave whatever the layout, out of the score.
-For a lossless substrate the score is the plain 1 - transmitted fraction. The plain transmitted
-fraction stays in the details (``mean_transmitted``, ``mean_blocked_plain``).
+kR of the lossy substrate; see ``optgrade.objectives._common.insertion_blocking``). Comparing
+with the bare ground keeps soil damping, which attenuates the wave whatever the layout, out of
+the score. For a lossless substrate the score is the plain 1 - transmitted fraction. The plain
+transmitted fraction stays in the details (``mean_transmitted``, ``mean_blocked_plain``).
 """
 
 from __future__ import annotations

@@ -2,12 +2,20 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import ArrayLike
 
-CONVERTED = ("forward_shear", "forward_compressional", "backward_shear", "backward_compressional")
+from optgrade.channels import BLOCKING, RADIATING
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.propagation import Trace
+    from optgrade.study import Study
+
+#: The four converted (bulk-wave) channels.
+CONVERTED = RADIATING
 
 
 def lossy_rayleigh_wavenumber(freq: ArrayLike, cl: complex, ct: complex) -> np.ndarray:
@@ -49,37 +57,29 @@ def lossy_rayleigh_wavenumber(freq: ArrayLike, cl: complex, ct: complex) -> np.n
     return w / (ct * np.sqrt(x))
 
 
-def bare_transmission(trace: Any, layout: Any, study: Any) -> np.ndarray:
+def bare_transmission(trace: Trace, layout: Layout, study: Study) -> np.ndarray:
     """Surface power the bare (lossy) ground alone lets through over the row's path length.
 
     ``T_bare(f) = exp(-2 Im kR(f) L)`` with kR from :func:`lossy_rayleigh_wavenumber` (the
-    substrate's complex speeds, ``optgrade.ground._halfspace.Substrate.complex_speeds``) and ``L`` the
-    row length (sum of the cell lengths, the path the march follows). 1 for a lossless
+    substrate's complex speeds, ``optgrade.ground._halfspace.Substrate.complex_speeds``) and
+    ``L`` the row length (sum of the cell lengths, the path the march follows). 1 for a lossless
     substrate. Dimensionless, shape of ``trace.frequency``.
     """
     from optgrade.ground import Substrate
 
     sub = study.substrate
     f = np.asarray(trace.frequency, dtype=float)
-    eta = float(getattr(sub, "loss_factor", 0.0) or 0.0)
+    eta = float(sub.loss_factor)
     if eta == 0.0:
         return np.ones_like(f)
     cl, ct = Substrate(float(sub.density), float(sub.cl), float(sub.ct), eta).complex_speeds
     k = lossy_rayleigh_wavenumber(f, cl, ct)
-    return np.exp(-2.0 * np.abs(k.imag) * row_length(layout))
+    return np.exp(-2.0 * np.abs(k.imag) * float(layout.length))
 
 
-def row_length(layout: Any) -> float:
-    """Path across the row (m): ``layout.length`` or ``x[-1] + spacing[-1]``."""
-    length = getattr(layout, "length", None)
-    if length is not None:
-        return float(length)
-    x = np.asarray(layout.x, dtype=float)
-    a = np.asarray(layout.spacing, dtype=float)
-    return float(x[-1] + a[-1])
-
-
-def insertion_blocking(trace: Any, layout: Any, study: Any) -> tuple[np.ndarray, np.ndarray]:
+def insertion_blocking(
+    trace: Trace, layout: Layout, study: Study
+) -> tuple[np.ndarray, np.ndarray]:
     """Surface blocking due to the array, per frequency, and the plain transmitted fraction.
 
     ``blocking = clip(1 - T_array / T_bare, 0, 1)``: the insertion effect of the row, the part of
@@ -99,13 +99,15 @@ def insertion_blocking(trace: Any, layout: Any, study: Any) -> tuple[np.ndarray,
     return np.clip(1.0 - ratio, 0.0, 1.0), t
 
 
-def wanted_fraction(trace: Any, channel: str, layout: Any = None, study: Any = None) -> np.ndarray:
+def wanted_fraction(
+    trace: Trace, channel: str, layout: Layout | None = None, study: Study | None = None
+) -> np.ndarray:
     """Fraction of the incoming power in the wanted channel per frequency.
 
     ``blocking`` is the array's insertion blocking (:func:`insertion_blocking`) when ``layout``
     and ``study`` are given, else 1 - transmitted surface power.
     """
-    if channel == "blocking":
+    if channel == BLOCKING:
         if layout is not None and study is not None:
             return insertion_blocking(trace, layout, study)[0]
         return 1.0 - np.asarray(trace.fractions["transmitted_surface"], dtype=float)

@@ -8,12 +8,19 @@ model. Every model returns a :class:`Trace`.
 from __future__ import annotations
 
 from optgrade.channels import CHANNELS, RADIATING
-from optgrade.propagation._base import PROPAGATION_MODELS, PropagationModel, study_frequencies
+from optgrade.propagation._base import (
+    PROPAGATION_MODELS,
+    PropagationModel,
+    propagation_model,
+    study_frequencies,
+    trace_layout,
+)
+from optgrade.propagation._perturb import height_error_traces
 from optgrade.propagation._trace import Trace
 from optgrade.propagation._wkb import (
     ADIABATIC_LIMIT,
+    WKB_PATH,
     WKBMarch,
-    accepts_path_only,
     march,
     trace,
     trace_study,
@@ -26,10 +33,13 @@ __all__ = [
     "RADIATING",
     "PropagationModel",
     "Trace",
+    "WKB_PATH",
     "WKBMarch",
-    "accepts_path_only",
+    "height_error_traces",
     "march",
+    "propagation_model",
     "study_frequencies",
     "trace",
+    "trace_layout",
     "trace_study",
 ]

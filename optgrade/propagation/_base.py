@@ -9,7 +9,7 @@ one module with one subclass registered with :data:`PROPAGATION_MODELS`.
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from typing import TYPE_CHECKING, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -47,6 +47,13 @@ class PropagationModel(ABC):
         """Where the power of a unit incident Rayleigh wave goes, per frequency (Hz; the study's
         grid when omitted)."""
 
+    def trace_height_errors(self, layout: Layout, errors: np.ndarray) -> list[Trace]:
+        """One trace per row of ``errors`` (m, shape (n_draws, n_resonators)) added to the rod
+        heights of ``layout``, over the study's grid. A model with a faster way overrides it."""
+        from optgrade.layout import with_height_errors
+
+        return [self.trace(with_height_errors(layout, e)) for e in errors]
+
     def frequencies(self, freq: ArrayLike | None) -> np.ndarray:
         """``freq`` as a 1-D float array, or the study's grid when None (Hz)."""
         if freq is None:
@@ -58,3 +65,23 @@ class PropagationModel(ABC):
 PROPAGATION_MODELS: Registry[PropagationModel] = Registry(
     "propagation model", builtin=("optgrade.propagation._wkb",)
 )
+
+
+def propagation_model(study: Study, name: str | None = None, **kwargs: Any) -> PropagationModel:
+    """Build the propagation model ``name`` (default ``study.goal.propagation``) for ``study``.
+
+    Keyword arguments go to the model's constructor (e.g. ``dispersion=`` for the WKB march).
+
+    Raises
+    ------
+    KeyError
+        Unknown model name; the message lists the registered ones.
+    """
+    return PROPAGATION_MODELS.get(name or study.goal.propagation)(study, **kwargs)
+
+
+def trace_layout(study: Study, layout: Layout, freq: ArrayLike | None = None) -> Trace:
+    """Trace ``layout`` with the study's propagation model (``goal.propagation``) over ``freq``
+    (Hz; the study's grid when omitted). For many layouts build the model once with
+    :func:`propagation_model` and call its ``trace``."""
+    return propagation_model(study).trace(layout, freq)

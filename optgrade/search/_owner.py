@@ -21,12 +21,16 @@ Design (see docs/search.md for the measurements behind it):
   all. Trials of owners on other hosts or still alive are left alone (shared-storage runs).
 - **Counting.** ``n_trials`` counts finished trials: COMPLETE ones plus FAIL ones that were
   scored (an error in scoring); lost trials do not count. ``resume`` continues to ``n_trials``.
-- **Ctrl-C** (SIGINT) stops asking, waits for the chunks in flight, tells them, exports the best
-  trial so far and returns ``interrupted=True`` (the command exits 130).
+- **Ctrl-C** (SIGINT) stops asking, waits for the chunks in flight, tells them and returns
+  ``is_interrupted=True`` (the command exports the best trial so far and exits 130).
+
+The search never writes exports: ``optgrade search`` calls :func:`run_search` and then
+:func:`optgrade.export.export_trial` with the outcome's context.
 """
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import math
@@ -39,22 +43,34 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import optuna
 from optuna.trial import TrialState
 
 from optgrade import __version__, fabrication, objectives, profiles, propagation
+from optgrade.dispersion import RowPath
+from optgrade.propagation import PROPAGATION_MODELS, PropagationModel, Trace, WKBMarch
+from optgrade.search._errors import SearchError
+from optgrade.search._samplers import DEFAULT_SAMPLER, TPE_STARTUP, make_sampler
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.study import Study
 
 __all__ = [
+    "DEFAULT_CHUNK",
     "DEFAULT_SAMPLER",
+    "INFEASIBLE_PENALTY",
+    "TPE_STARTUP",
     "SearchError",
     "SearchOutcome",
     "best_trial",
     "default_storage",
     "evaluate_params",
     "finished_trials",
+    "load_search",
     "make_context",
     "make_sampler",
     "open_storage",
@@ -62,45 +78,31 @@ __all__ = [
     "study_hash",
 ]
 
-#: Sampler used for ``sampler = "auto"`` (chosen by measurement, docs/search.md).
-DEFAULT_SAMPLER = "tpe"
 #: Candidates per worker chunk when the study does not say.
 DEFAULT_CHUNK = 4
-#: Random (independent) candidates before TPE starts modelling (optuna's default is 10; 20
-#: measured faster to 95 % on the bench example, docs/search.md "Convergence").
-TPE_STARTUP = 20
 #: Penalty subtracted from the weighted score of a layout that breaks a fabrication limit.
 INFEASIBLE_PENALTY = 10.0
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 
-class SearchError(RuntimeError):
-    """A search that cannot start or continue; ``field`` names the option or study field."""
-
-    def __init__(self, field: str, reason: str) -> None:
-        super().__init__(f"{field}: {reason}")
-        self.field = field
-        self.reason = reason
-
-
 # ---------------------------------------------------------------------------------------------
 # identity of a study
 
 
-def study_hash(study: Any) -> str:
+def study_hash(study: Study) -> str:
     """sha256 of the study's resolved SI content (what the scores depend on)."""
     try:
         data = study.to_si_dict()
         data.pop("source_path", None)
         data.pop("source_sha256", None)
         text = json.dumps(data, sort_keys=True, default=str)
-    except AttributeError:  # a plain namespace (tests)
+    except AttributeError:  # a stand-in study built from plain namespaces (tests)
         text = repr(study)
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def file_hash(study: Any) -> str | None:
+def file_hash(study: Study) -> str | None:
     """sha256 of the study file, if the study came from one."""
     sha = getattr(study, "source_sha256", None)
     if sha:
@@ -117,75 +119,82 @@ def file_hash(study: Any) -> str | None:
 
 class _LastModes:
     """Surrogate proxy that remembers the last ``local_modes`` call (the nominal trace and the
-    robustness goal ask for the same cells); every other attribute is the surrogate's.
+    robustness goal ask for the same cells).
 
-    A ``path_only`` call (the points the march reads) is served from a remembered full call of
-    the same cells; a full call is never served from a path-only one."""
+    A row request (``path``, the points the march reads) is served from a remembered full call
+    of the same cells; a full call is never served from a row request. With ``is_full`` every
+    call is a full one (a study with the robustness goal, which reads the nominal cells' full
+    modes right after the nominal trace)."""
 
-    def __init__(self, surrogate: Any) -> None:
-        self._surrogate = surrogate
-        self._last: tuple[bytes, bool, Any] | None = None
+    def __init__(self, surrogate: Any, *, is_full: bool = False) -> None:
+        self.surrogate = surrogate
+        self.is_full = is_full
+        self._last: tuple[bytes, RowPath | None, Any] | None = None
 
-    def local_modes(self, height, spacing, head_mass, freq, *, path_only: bool = False):
+    @property
+    def cr(self) -> float:
+        """Rayleigh speed of the bare ground (m/s)."""
+        return self.surrogate.cr
+
+    def local_modes(self, height, spacing, head_mass, freq, *, path: RowPath | None = None):
         arrays = [np.ascontiguousarray(v, dtype=float) for v in (height, spacing, head_mass,
                                                                   freq)]
         key = b"|".join(a.tobytes() for a in arrays)
+        path = None if self.is_full else path
         last = self._last
-        if last is not None and last[0] == key and (path_only or not last[1]):
+        if last is not None and last[0] == key and (last[1] is None or last[1] == path):
             return last[2]
-        args = (height, spacing, head_mass, freq)
-        if path_only and propagation.accepts_path_only(self._surrogate):
-            modes = self._surrogate.local_modes(*args, path_only=True)
-        else:
-            modes, path_only = self._surrogate.local_modes(*args), False
-        self._last = (key, path_only, modes)
+        modes = self.surrogate.local_modes(height, spacing, head_mass, freq, path=path)
+        self._last = (key, path, modes)
         return modes
 
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._surrogate, name)
 
+def _real_pipeline(study: Study) -> tuple[PropagationModel, Callable[[Layout], Trace]]:
+    """The study's propagation model (``goal.propagation``) and its trace function.
 
-def _real_pipeline(study: Any) -> tuple[Any, Callable[[Any], Any]]:
-    """Surrogate of the study (disk-cached tables) and a trace function over the goal band."""
-    from optgrade import propagation
-    from optgrade.dispersion import _surrogate as surrogate
+    A WKB march gets the study's surrogate (disk-cached tables) behind a :class:`_LastModes`
+    proxy, so the robustness goal's nominal cells are not solved twice."""
+    if issubclass(PROPAGATION_MODELS.get(study.goal.propagation), WKBMarch):
+        from optgrade.dispersion import surrogate_for_study
 
-    if hasattr(surrogate, "surrogate_for_study"):
-        sur = surrogate.surrogate_for_study(study)
+        is_full = "robustness" in goal_names(study)
+        proxy = _LastModes(surrogate_for_study(study), is_full=is_full)
+        model = propagation.propagation_model(study, dispersion=proxy)
     else:
-        sur = surrogate.Surrogate.from_study(study)
-    sur = _LastModes(sur)
-    # the robustness goal reads the nominal cells' full modes: trace from those then
-    path_only = "robustness" not in goal_names(study)
-
-    def trace_fn(layout: Any) -> Any:
-        return propagation.trace_study(study, layout, sur, path_only=path_only)
-
-    return sur, trace_fn
+        model = propagation.propagation_model(study)
+    return model, model.trace
 
 
-def make_context(study: Any, pipeline: Callable | None = None) -> objectives.EvalContext:
-    """Evaluation context: surrogate and trace function built once for ``study``.
+def make_context(study: Study, pipeline: Callable | None = None) -> objectives.EvalContext:
+    """Evaluation context: propagation model and trace functions built once for ``study``.
 
-    ``pipeline(study) -> (surrogate, trace_fn)`` replaces the real dispersion/propagation stages
-    (tests use a stand-in); it must be a picklable module-level function.
+    ``pipeline(study) -> (model or None, trace_fn)`` replaces the real dispersion/propagation
+    stages (tests use a stand-in); it must be a picklable module-level function. Perturbed
+    layouts (robustness) are traced with the model's own way
+    (:func:`optgrade.propagation.height_error_traces`), or with ``trace_fn`` when the pipeline
+    gives no model.
     """
-    sur, trace_fn = (pipeline or _real_pipeline)(study)
-    return objectives.EvalContext(surrogate=sur, trace_fn=trace_fn, seed=int(study.meta.seed))
+    model, trace_fn = (pipeline or _real_pipeline)(study)
+    trace_height_errors = (
+        None if model is None else functools.partial(propagation.height_error_traces, model)
+    )
+    return objectives.EvalContext(trace_fn=trace_fn, trace_height_errors=trace_height_errors,
+                                  model=model, seed=int(study.meta.seed))
 
 
-def goal_names(study: Any) -> list[str]:
+def goal_names(study: Study) -> list[str]:
     """Goals to evaluate: those with a weight and those named as search objectives."""
     out = [n for n, w in study.goal.weights.items() if w]
     out += [n for n in study.search.objectives if n != "weighted" and n not in out]
     return out
 
 
-def is_multi_objective(study: Any) -> bool:
+def is_multi_objective(study: Study) -> bool:
+    """Does the study optimise a Pareto front (several ``[search] objectives``)?"""
     return len(study.search.objectives) > 1
 
 
-def directions(study: Any) -> list[str]:
+def directions(study: Study) -> list[str]:
     """Optuna directions: one ``maximize`` for the weighted score, else one per objective."""
     if not is_multi_objective(study):
         name = study.search.objectives[0] if study.search.objectives else "weighted"
@@ -197,7 +206,7 @@ def directions(study: Any) -> list[str]:
 
 
 def evaluate_params(
-    study: Any, params: dict[str, Any], context: objectives.EvalContext
+    study: Study, params: dict[str, Any], context: objectives.EvalContext
 ) -> dict[str, Any]:
     """Score one parameter point: layout, fabrication check, trace, goals.
 
@@ -242,7 +251,8 @@ def _worker_init() -> None:
 
 
 def _score_chunk(
-    study: Any, key: str, pipeline: Callable | None, chunk: list[tuple[int, dict]], is_dry: bool
+    study: Study, key: str, pipeline: Callable | None, chunk: list[tuple[int, dict]],
+    is_dry: bool
 ) -> list[dict[str, Any]]:
     """Score a chunk of (trial number, params) in a worker; context cached per study hash."""
     out = []
@@ -315,30 +325,24 @@ def _fast_sqlite(store: Any) -> None:
     store.engine.dispose()  # reconnect with the pragmas
 
 
-def make_sampler(name: str, seed: int, multi: bool) -> optuna.samplers.BaseSampler:
-    """Seeded sampler by name: ``auto`` (= DEFAULT_SAMPLER, NSGA-II when multi-objective),
-    ``tpe``, ``random``, ``nsga2``, ``qmc``, ``cmaes`` (needs the ``cmaes`` package)."""
-    if name in (None, "", "auto"):
-        name = "nsga2" if multi else DEFAULT_SAMPLER
-    if name == "tpe":
-        return optuna.samplers.TPESampler(seed=seed, multivariate=True, constant_liar=True,
-                                          n_startup_trials=TPE_STARTUP)
-    if name == "random":
-        return optuna.samplers.RandomSampler(seed=seed)
-    if name == "nsga2":
-        return optuna.samplers.NSGAIISampler(seed=seed)
-    if name == "qmc":
-        return optuna.samplers.QMCSampler(seed=seed, scramble=True)
-    if name == "cmaes":
-        try:
-            import cmaes  # noqa: F401
-        except ImportError:
-            raise SearchError("search.sampler", "'cmaes' needs the cmaes package "
-                              "(pip install cmaes); use 'tpe'") from None
-        if multi:
-            raise SearchError("search.sampler", "'cmaes' is single-objective; use 'nsga2'")
-        return optuna.samplers.CmaEsSampler(seed=seed, warn_independent_sampling=False)
-    raise SearchError("search.sampler", f"unknown sampler {name!r}")
+def load_search(study: Study, storage: str) -> optuna.Study:
+    """The stored optuna study of ``study`` (by ``study.meta.name``) in ``storage`` (a URL).
+
+    Raises
+    ------
+    SearchError
+        The storage cannot be opened, holds no study of that name, or holds one run with a
+        different study file (the stored trials would not match its layouts).
+    """
+    store = open_storage(storage)
+    if study.meta.name not in optuna.study.get_all_study_names(store):
+        raise SearchError("--storage", f"no study named {study.meta.name!r} in {storage}")
+    ostudy = optuna.load_study(study_name=study.meta.name, storage=store)
+    stored_hash = ostudy.user_attrs.get("study_hash")
+    if stored_hash and stored_hash != study_hash(study):
+        raise SearchError("STUDY", "this study file differs from the one the search ran with; "
+                          "the layout would not match the stored trial")
+    return ostudy
 
 
 def finished_trials(ostudy: optuna.Study) -> list[optuna.trial.FrozenTrial]:
@@ -415,6 +419,8 @@ class SearchOutcome:
     best_score: float | None
     is_interrupted: bool = False
     history: list[tuple[float, float]] = field(default_factory=list)  # (seconds, best score)
+    #: the evaluation context the search scored with (for exporting without rebuilding it)
+    context: objectives.EvalContext | None = field(default=None, repr=False)
 
     @property
     def trials_per_second(self) -> float:
@@ -467,7 +473,7 @@ def _progress(enabled: bool, total: int, done: int):
 
 
 def run_search(
-    study: Any,
+    study: Study,
     out_dir: str | os.PathLike,
     *,
     n_trials: int | None = None,
@@ -479,11 +485,13 @@ def run_search(
     pipeline: Callable | None = None,
     is_dry: bool = False,
     show_progress: bool = True,
-    do_export: bool = True,
     on_told: Callable[[int], None] | None = None,
     time_budget: float | None = None,
 ) -> SearchOutcome:
-    """Run (or resume) the search of ``study``; results in ``storage``, exports in ``out_dir``.
+    """Run (or resume) the search of ``study``; results in ``storage`` (default in ``out_dir``).
+
+    Exports are not written here: pass the outcome to :func:`optgrade.export.export_trial`
+    (``optgrade search`` does).
 
     Parameters
     ----------
@@ -493,9 +501,8 @@ def run_search(
     is_resume : continue an existing study of the same name (refused otherwise if it exists).
     sampler : sampler name (default ``study.search.sampler``).
     chunk_size : candidates per worker task (default from ``study.search.batch_size``).
-    pipeline : stand-in for the physics ``(study) -> (surrogate, trace_fn)`` (tests).
+    pipeline : stand-in for the physics ``(study) -> (model or None, trace_fn)`` (tests).
     is_dry : skip all scoring (framework-ceiling measurement).
-    do_export : export the best trial into ``out_dir`` at the end.
     on_told : callback with the number of trials told so far in this run (tests).
     time_budget : stop asking after this many seconds (benchmarks); the chunks in flight are
         still told.
@@ -654,29 +661,14 @@ def run_search(
         storage=url, study_name=name, n_finished=len(finished_trials(ostudy)),
         n_told_now=told_now, n_recovered=n_recovered, n_pool_restarts=pool_restarts,
         seconds=seconds, best_number=best_number, best_score=best_score,
-        is_interrupted=is_interrupted, history=history,
+        is_interrupted=is_interrupted, history=history, context=context,
     )
-    if do_export and not is_dry and best_number is not None:
-        from optgrade import export
-
-        export.export_trial(study, ostudy, best_number, out_dir, context=context)
     return outcome
 
 
 def _table_hashes(context: objectives.EvalContext | None) -> dict[str, str]:
-    """Hashes of the dispersion tables behind the surrogate, if it exposes them."""
-    if context is None or context.surrogate is None:
-        return {}
-    sur = getattr(context.surrogate, "_surrogate", context.surrogate)
-    for attr in ("table_hashes", "table_hash", "cache_key", "key"):
-        value = getattr(sur, attr, None)
-        if callable(value):
-            try:
-                value = value()
-            except TypeError:
-                continue
-        if isinstance(value, dict):
-            return {str(k): str(v) for k, v in value.items()}
-        if isinstance(value, str):
-            return {attr: value}
+    """Hash of the dispersion tables behind a WKB march's surrogate (empty for other models)."""
+    model = None if context is None else context.model
+    if isinstance(model, WKBMarch) and isinstance(model.dispersion, _LastModes):
+        return {"key": str(model.dispersion.surrogate.key())}
     return {}
