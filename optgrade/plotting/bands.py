@@ -31,10 +31,8 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
     rod resonances; bound parts drawn solid, leaky parts as dots coloured by K''/K'.
     Right: attenuation K'' a (nepers per cell, log scale) of the leaky or lossy parts.
     """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    # a bare Figure (no pyplot): the caller's plotting backend is left alone
+    from matplotlib.figure import Figure
     from matplotlib.lines import Line2D
 
     cell = bands.cell
@@ -45,9 +43,8 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
     fs = f * scale
     w = 2 * np.pi * f
     g = 2 * np.pi / a
-    fig, (ax, ax2) = plt.subplots(
-        1, 2, figsize=(11, 7), gridspec_kw={"width_ratios": [2.2, 1]}, constrained_layout=True
-    )
+    fig = Figure(figsize=(11, 7), layout="constrained")
+    ax, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [2.2, 1]})
     # light lines and folded images
     kmax = g
     styles = [
@@ -182,7 +179,6 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
         fig.savefig(tmp, dpi=130)
         os.replace(tmp, path)
     finally:
-        plt.close(fig)
         if os.path.exists(tmp):
             os.unlink(tmp)
     return path

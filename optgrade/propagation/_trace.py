@@ -7,11 +7,14 @@ exports and the full-wave comparison read nothing else.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from optgrade.channels import CHANNELS
+
+if TYPE_CHECKING:  # pragma: no cover
+    import pandas as pd
 
 __all__ = ["Trace"]
 
@@ -81,3 +84,35 @@ class Trace:
             "turning_position_m": clean(self.turning_position),
             "entry_reflection": clean(self.entry_reflection),
         }
+
+    def to_frame(self) -> pd.DataFrame:
+        """The trace as a pandas DataFrame, one row per frequency (index ``frequency_hz``).
+
+        Columns: ``<channel>_fraction`` (-), ``<channel>_position_m`` (m), ``<channel>_angle_deg``
+        (deg) for each channel in :data:`optgrade.channels.CHANNELS`, then ``eps_max`` (-),
+        ``is_adiabatic``, ``branch``, ``turning_position_m`` (m), ``entry_reflection`` (-) and
+        ``phase_rad`` (rad). Values are copies; nan stays nan.
+
+        Raises
+        ------
+        ImportError
+            pandas is not installed (``pip install "optgrade[frames]"``).
+        """
+        try:
+            import pandas as pd
+        except ImportError:
+            raise ImportError('Trace.to_frame needs pandas: pip install "optgrade[frames]" '
+                              "(or pip install pandas)") from None
+        columns: dict[str, np.ndarray] = {}
+        for c in CHANNELS:
+            columns[f"{c}_fraction"] = np.array(self.fractions[c], dtype=float)
+            columns[f"{c}_position_m"] = np.array(self.position[c], dtype=float)
+            columns[f"{c}_angle_deg"] = np.array(self.angle[c], dtype=float)
+        columns["eps_max"] = np.array(self.eps_max, dtype=float)
+        columns["is_adiabatic"] = np.array(self.is_adiabatic, dtype=bool)
+        columns["branch"] = np.array(self.branch, dtype=int)
+        columns["turning_position_m"] = np.array(self.turning_position, dtype=float)
+        columns["entry_reflection"] = np.array(self.entry_reflection, dtype=float)
+        columns["phase_rad"] = np.array(self.phase, dtype=float)
+        index = pd.Index(np.array(self.frequency, dtype=float), name="frequency_hz")
+        return pd.DataFrame(columns, index=index)
