@@ -24,9 +24,14 @@ allowances. Site-scale posts must be checked by a qualified engineer against loc
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.study import Study
 
 GRAVITY = 9.80665  # m/s^2, standard gravity (CGPM 1901)
 GREENHILL = 7.837  # dimensionless, q L^3 / (E I) at self-weight buckling (Timoshenko & Gere)
@@ -83,7 +88,7 @@ def tip_mass_height(youngs_modulus: float, diameter: np.ndarray | float, head_ma
         return np.where(m > 0, np.sqrt(p_unit), np.inf)
 
 
-def buckling_ratio(study: Any, height, head_mass) -> np.ndarray:
+def buckling_ratio(study: Study, height: ArrayLike, head_mass: ArrayLike) -> np.ndarray:
     """Dunkerley combination M g / P_cr(L) + (L / L_crit)^3; buckling when >= 1 (dimensionless)."""
     e = study.resonator.youngs_modulus
     d = study.resonator.diameter
@@ -93,7 +98,7 @@ def buckling_ratio(study: Any, height, head_mass) -> np.ndarray:
     return (h / lc) ** 3 + (h / lt) ** 2
 
 
-def max_height(study: Any, head_mass) -> np.ndarray:
+def max_height(study: Study, head_mass: ArrayLike) -> np.ndarray:
     """Largest height allowed by slenderness and combined buckling for each head mass (m)."""
     m = np.atleast_1d(np.asarray(head_mass, dtype=float))
     d = study.resonator.diameter
@@ -118,7 +123,7 @@ def _cells(x: np.ndarray) -> np.ndarray:
     return np.concatenate([gaps, gaps[-1:]])
 
 
-def check_layout(study: Any, layout: Any) -> list[Violation]:
+def check_layout(study: Study, layout: Layout) -> list[Violation]:
     """Every fabrication and safety limit of ``study`` checked on ``layout``.
 
     Returns

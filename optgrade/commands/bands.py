@@ -22,7 +22,7 @@ import io
 import json
 import os
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -30,6 +30,10 @@ from optgrade._atomic import write_text
 from optgrade.commands import add_study_argument, open_study, quantity_type
 from optgrade.errors import StudyError
 from optgrade.study import SITE_CAUTION
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.dispersion import Cell
+    from optgrade.study import Study
 
 __all__ = ["add_parser", "run", "run_bands", "SITE_CAUTION"]
 
@@ -39,7 +43,7 @@ RADIATING = ("forward_shear", "forward_compressional", "backward_shear", "backwa
 SHARES = RADIATING + ("absorbed",)
 
 
-def add_parser(subparsers: Any) -> argparse.ArgumentParser:
+def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     """Register ``optgrade bands``."""
     parser = subparsers.add_parser(
         "bands",
@@ -95,7 +99,7 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
     return parser
 
 
-def _cell_from_study(study: Any, height: float, spacing: float, head_mass: float):
+def _cell_from_study(study: Study, height: float, spacing: float, head_mass: float) -> Cell:
     from optgrade.dispersion import Cell
     from optgrade.ground import Substrate
     from optgrade.resonators import Rod
@@ -210,7 +214,7 @@ def bands_to_csv(bands) -> str:
 
 
 def run_bands(
-    study: Any,
+    study: Study,
     height: float,
     spacing: float,
     out: str | os.PathLike,
@@ -232,14 +236,14 @@ def run_bands(
     fmin = lo if fmin is None else float(fmin)
     fmax = hi if fmax is None else float(fmax)
     _check_inputs(height, spacing, head_mass, fmin, fmax, points, float(study.resonator.diameter))
-    model = model or getattr(study.goal, "model", "lattice")
+    model = model or study.goal.model
     cell = _cell_from_study(study, height, spacing, head_mass)
     freq = np.linspace(fmin, fmax, int(points))
     bands = solve_bands(cell, freq, model=model, progress=progress)
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    scale = getattr(study.meta, "scale", None)
-    doc = bands_to_json(bands, getattr(study.meta, "name", ""), scale)
+    scale = study.meta.scale
+    doc = bands_to_json(bands, study.meta.name, scale)
     write_text(out / "bands.json", json.dumps(doc, indent=1))
     write_text(out / "bands.csv", bands_to_csv(bands))
     if figure:
@@ -294,6 +298,6 @@ def run(args: argparse.Namespace) -> int:
     )
     for w in bands.warnings:
         console.print(f"note: {w}")
-    if getattr(study.meta, "scale", None) == "site":
+    if study.meta.scale == "site":
         console.print(SITE_CAUTION)
     return 0

@@ -5,8 +5,6 @@ Used by the export's figure sheet next to the trace figures of :mod:`optgrade.pl
 
 from __future__ import annotations
 
-from typing import Any
-
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.patches import Circle
@@ -83,7 +81,7 @@ def figure_size(n_panels: int) -> tuple[float, float]:
     return 13.0, 3.6 * rows
 
 
-def describe(ax: Any, lines: list[str]) -> None:
+def describe(ax: Axes, lines: list[str]) -> None:
     """A text panel (no axes)."""
     ax.axis("off")
     ax.text(0.0, 1.0, "\n".join(lines), va="top", ha="left", family="monospace", fontsize=7.5,

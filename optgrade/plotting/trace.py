@@ -15,15 +15,19 @@ axis use the same picks.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.colors import ListedColormap
 from matplotlib.patches import Patch, Rectangle
 
-from optgrade.layout import Layout
-from optgrade.propagation import CHANNELS, Trace
+from optgrade.channels import CHANNELS
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.dispersion import LocalModes
+    from optgrade.layout import Layout
+    from optgrade.propagation import Trace
 
 __all__ = [
     "CHANNEL_COLOURS",
@@ -101,7 +105,7 @@ def plot_elevation(ax: Axes, layout: Layout, *, title: str | None = None) -> Axe
 def plot_local_dispersion(
     ax: Axes,
     layout: Layout,
-    modes: Any,
+    modes: LocalModes,
     freq: np.ndarray,
     *,
     cr: float,
