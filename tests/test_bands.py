@@ -1,4 +1,5 @@
-"""Checks of the band solver (optgrade.dispersion._direct) against closed forms and independent root finders."""
+"""Checks of the band solver (optgrade.dispersion._direct) against closed forms and independent root
+finders."""
 
 import numpy as np
 import pytest

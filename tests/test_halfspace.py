@@ -77,6 +77,19 @@ def test_static_limit_flamant_boussinesq(nu):
     assert g0.real == pytest.approx((1.0 - nu) / (s.mu * 10.0), rel=1e-8)
 
 
+@pytest.mark.parametrize("eta", [0.0, 0.05])
+def test_static_compliance_is_the_large_wavenumber_limit(eta):
+    """`Ground.static_compliance_sq` = (1 - nu)/(mu (1 - i eta) |xi|), the limit of G for
+    xi >> kT (Flamant / Boussinesq; K. L. Johnson, Contact Mechanics, 1985), lossy too."""
+    cl, ct = speeds_for_poisson(0.3)
+    s = Substrate(2500.0, cl, ct, eta)
+    w = 2 * np.pi * 50.0
+    xi2 = (np.array([1e4, 1e5]) * w / ct) ** 2
+    gs = s.static_compliance_sq(xi2)
+    np.testing.assert_allclose(gs, (1.0 - 0.3) / (s.mu * (1 - 1j * eta) * np.sqrt(xi2)), rtol=1e-12)
+    np.testing.assert_allclose(s.compliance_sq(xi2, w), gs, rtol=1e-4)
+
+
 def test_outgoing_branch_radiates_power():
     """Inside the cone the load radiates: power (w/2)|f|^2 Im G must be >= 0 with exp(-i w t)
     (physics.md section 3); outside (evanescent) G is real for a lossless solid."""

@@ -1,4 +1,5 @@
-"""Checks of optgrade.dispersion._lattice: symmetry, truncation convergence, brute-force sums, energy split."""
+"""Checks of optgrade.dispersion._lattice: symmetry, truncation convergence, brute-force sums,
+energy split."""
 
 import numpy as np
 import pytest

@@ -110,3 +110,14 @@ def test_invalid_rod():
         Rod(70e9, 2700.0, -1e-3)
     with pytest.raises(ValueError):
         rod_resonances(-1.0, 1e-3, 70e9, 2700.0)
+
+
+def test_rod_validity_notes_thin_rod_rule():
+    """`Rod.validity_notes`: thin-rod theory is flagged once d > lambda_r / 5, i.e. above
+    f = c_r / (5 d) (rule of thumb, common practice, physics.md section 4); the note that
+    bending modes are not represented is always there."""
+    f_limit = AL.bar_speed / (5.0 * AL.diameter)
+    below, above = AL.validity_notes(0.99 * f_limit), AL.validity_notes(1.01 * f_limit)
+    assert not any("thin-rod" in s for s in below)
+    assert sum("thin-rod" in s for s in above) == 1
+    assert all(any("bending" in s for s in notes) for notes in (below, above))

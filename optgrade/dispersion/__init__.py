@@ -1,9 +1,9 @@
-"""Dispersion stage: local Bloch modes of each cell (lattice sums, direct band solver, fast surrogate)."""
+"""Dispersion stage: local Bloch modes of each cell (lattice sums, direct band solver, fast
+surrogate, and the factory that picks one of them for a study)."""
 
 from __future__ import annotations
 
 from optgrade.dispersion._direct import (  # noqa: F401
-    CHANNELS,
     Bands,
     Branch,
     Cell,
@@ -13,6 +13,7 @@ from optgrade.dispersion._direct import (  # noqa: F401
     solve_points,
     validity_warnings,
 )
+from optgrade.dispersion._factory import DirectDispersion, dispersion_for_study  # noqa: F401
 from optgrade.dispersion._lattice import (  # noqa: F401
     MODELS,
     default_harmonics,
@@ -51,7 +52,6 @@ from optgrade.dispersion._surrogate import (  # noqa: F401
 __all__ = [
     "Bands",
     "Branch",
-    "CHANNELS",
     "Cell",
     "FD_RETRY",
     "FORMAT_VERSION",
@@ -75,8 +75,10 @@ __all__ = [
     "N_SCAN",
     "Surrogate",
     "default_cache_dir",
+    "DirectDispersion",
     "default_harmonics",
     "direct_local_modes",
+    "dispersion_for_study",
     "form_factor_sq",
     "harmonic_term",
     "lattice_sum",

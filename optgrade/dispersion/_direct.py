@@ -1,16 +1,17 @@
 """Bloch band solver for one resonator cell: bound and leaky branches (physics.md section 5).
 
-The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.dispersion._lattice`). We split
+The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.dispersion._lattice`).
+We split
 
     Sigma = sum_{m=-J}^{J-1} T_m(K) + Rest(K, w)
 
-where T_m are the (m, n = 0) "main" harmonics (J from `optgrade.dispersion._lattice.main_orders`: J = 1,
-i.e. m = 0 and -1, unless the spacing exceeds about a Rayleigh wavelength). They carry the
+where T_m are the (m, n = 0) "main" harmonics (J from `optgrade.dispersion._lattice.main_orders`:
+J = 1, i.e. m = 0 and -1, unless the spacing exceeds about a Rayleigh wavelength). They carry the
 Rayleigh poles (K = kR and its folded images) and the branch points of every harmonic that can
 radiate, and are evaluated in closed form, at complex K as well. The rest (all other harmonics)
 is then smooth and analytic over the extended zone 0 < K < 2 pi/a and symmetric about the zone
-edge. The direct solver sums Rest exactly; the surrogate (`optgrade.dispersion._surrogate`) interpolates it
-from tables with a compiled copy of the root engine `solve_points` below.
+edge. The direct solver sums Rest exactly; the surrogate (`optgrade.dispersion._surrogate`)
+interpolates it from tables with a compiled copy of the root engine `solve_points` below.
 
 Branches (K in the extended zone 0 < K < 2 pi/a, so that a wave running in +x has K' > 0):
 
@@ -33,19 +34,23 @@ is nan where it has no root (a gap). Roots with K'' > K' (overdamped, no travell
 dropped.
 
 Leaky and lossy roots: K' from the real-axis root of Re D (lossless main terms), then complex
-Newton steps on D(K) R_0(K) (R_0, the Rayleigh function of the m = 0 harmonic, removes the
-nearby Rayleigh pole that substrate loss moves off the axis), with the main terms on the
-analytic continuation of their branches (`optgrade.ground._halfspace.vertical_wavenumber`) and Rest by
-a first-order Taylor step from the real axis. Near a branch point (Newton leaves the side of the
+Newton steps on D(K) R_0(K) (R_0, the ground's pole function at the m = 0 harmonic, for the
+half-space its Rayleigh function, removes the nearby Rayleigh pole that substrate loss moves off
+the axis), with the main terms on the analytic continuation of their branches
+(`optgrade.ground.Ground.compliance_sq`) and Rest by a first-order Taylor step from the real
+axis. Near a branch point (Newton leaves the side of the
 cone it started on, or does not converge) the first-order value K'' = -Im D / (d Re D/dK) is
 kept and flagged (`Branch.is_first_order`); a first-order K'' < 0 is dropped. Loss factors of
 rod and substrate enter D, so K'' includes material loss.
 
 Channel shares: K'' is split in proportion to the Im parts at K' (first order): each radiating
-main harmonic's Im T_m (lossless substrate) split into shear and compressional power
-(`optgrade.dispersion._lattice.shear_share`), forward if K' + 2 pi m/a > 0, backward otherwise; the
+main harmonic's Im T_m (lossless ground) split into shear and compressional power
+(`optgrade.ground.Ground.shear_share`), forward if K' + 2 pi m/a > 0, backward otherwise; the
 remainder of Im(Sigma - 1/Z) is absorbed (material loss). Sideways harmonics (n != 0) are not
 booked (`validity_warnings` says when they radiate).
+
+Ground and resonator enter through their interfaces only (`optgrade.ground.Ground`,
+`optgrade.resonators.Resonator`), so any registered kind of either is solved here.
 """
 
 from __future__ import annotations
@@ -62,8 +67,8 @@ from optgrade.dispersion._lattice import (
     lattice_sum,
     main_orders,
 )
-from optgrade.ground import Substrate, rayleigh_function, shear_share
-from optgrade.resonators import Rod, is_thin_rod, rod_compliance, rod_resonances
+from optgrade.ground import Ground
+from optgrade.resonators import Resonator
 
 __all__ = [
     "Cell",
@@ -73,17 +78,7 @@ __all__ = [
     "direct_local_modes",
     "solve_points",
     "validity_warnings",
-    "CHANNELS",
 ]
-
-#: order of the share axis (the last one is material absorption)
-CHANNELS = (
-    "forward_shear",
-    "forward_compressional",
-    "backward_shear",
-    "backward_compressional",
-    "absorbed",
-)
 
 _N_SCAN = 40
 _MAX_ILLINOIS = 60
@@ -97,10 +92,12 @@ class Cell:
 
     Attributes
     ----------
-    substrate : Substrate
-    rod : Rod
+    substrate : Ground
+        The ground (any registered kind; the half-space `optgrade.ground.Substrate` so far).
+    rod : Resonator
+        The resonator type (any registered kind; the axial rod `optgrade.resonators.Rod`).
     height : float
-        Rod height L (m).
+        Resonator height L (m).
     spacing : float
         Cell length a along the row (m).
     row_pitch : float
@@ -109,8 +106,8 @@ class Cell:
         Head mass M (kg).
     """
 
-    substrate: Substrate
-    rod: Rod
+    substrate: Ground
+    rod: Resonator
     height: float
     spacing: float
     row_pitch: float
@@ -122,7 +119,8 @@ class Branch:
     """One dispersion branch over the frequency grid.
 
     k : complex (n_freq,) Bloch wavenumber K' + i K'' (1/m), nan where absent.
-    shares : (5, n_freq) split of K'' over `CHANNELS` (zeros where K'' = 0 or absent).
+    shares : (5, n_freq) split of K'' over `optgrade.channels.DECAY` (zeros where K'' = 0 or
+        absent).
     angle : (4, n_freq) radiation angle from the surface normal (rad), nan where closed.
     is_leaky : (n_freq,) bool, a harmonic radiates at K'.
     is_first_order : (n_freq,) bool, K'' kept at its first-order value (near a branch point).
@@ -149,7 +147,7 @@ class Bands:
     warnings: tuple[str, ...] = field(default_factory=tuple)
 
 
-def main_terms(K, w, a, substrate: Substrate, b: float, r: float, model: str, n_main: int = 1):
+def main_terms(K, w, a, substrate: Ground, b: float, r: float, model: str, n_main: int = 1):
     """Sum of the main harmonics T_m, m = -J .. J-1 (homogenised: T_0 only), at complex or
     real K (m/N), broadcasting."""
     if model == "homogenised":
@@ -172,10 +170,10 @@ RestFn = Callable[..., tuple[np.ndarray, np.ndarray]]
 
 
 def _pole_free(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
-    """D(K) R_0(K): dispersion function times the m = 0 Rayleigh function (no m = 0 pole)."""
-    cl, ct = sub.complex_speeds
+    """D(K) R_0(K): dispersion function times the ground's pole function at the m = 0 harmonic
+    (the Rayleigh function for the half-space), so no m = 0 pole."""
     d = iz - main_terms(K, w, a, sub, b, r, model, n_main) - (r0 + (K - k_re) * dr0)
-    return d * rayleigh_function(K, w, cl, ct)
+    return d * sub.pole_function(K, w)
 
 
 def _newton_step(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
@@ -214,7 +212,7 @@ def solve_points(
     w: np.ndarray,
     inv_z: np.ndarray,
     a: np.ndarray,
-    substrate: Substrate,
+    substrate: Ground,
     b: float,
     r: float,
     model: str,
@@ -228,7 +226,7 @@ def solve_points(
     w, inv_z, a : ndarray (n,)
         Angular frequency (rad/s), rod compliance 1/Z (m/N, complex) and spacing (m) per point.
     substrate, b, r, model
-        Half-space, row pitch (m), contact radius (m), lattice model.
+        Ground, row pitch (m), contact radius (m), lattice model.
     rest : callable
         ``rest(K, idx, deriv) -> (value, dvalue/dK)`` of Rest (m/N) at real K for points
         ``idx``; K has shape (len(idx),) or (len(idx), m); the derivative may be None when
@@ -245,7 +243,7 @@ def solve_points(
     a = np.broadcast_to(np.asarray(a, dtype=float), w.shape)
     inv_z = np.broadcast_to(np.asarray(inv_z, dtype=complex), w.shape)
     n = w.size
-    lossless = Substrate(substrate.density, substrate.cl, substrate.ct)
+    lossless = substrate.lossless()
     kr = w / substrate.cr
     g = 2.0 * np.pi / a
     is_homog = model == "homogenised"
@@ -347,7 +345,7 @@ def solve_points(
         n_stages = _N_LOSS_STAGES if substrate.loss_factor > 0 else 1
         for stage in range(1, n_stages + 1):
             eta = substrate.loss_factor * stage / n_stages
-            sub_s = Substrate(substrate.density, substrate.cl, substrate.ct, eta)
+            sub_s = substrate.with_loss(eta)
             for _ in range(_N_NEWTON):
                 # Newton on D(K) R_0(K): the Rayleigh function of the m = 0 harmonic removes
                 # the nearby (loss-displaced) Rayleigh pole, widening Newton's basin
@@ -395,7 +393,7 @@ def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
     """Radiated Im parts (4, n) of the main harmonics at K' and the channel angles (4, n).
 
     Harmonic m radiates shear where |K' + 2 pi m/a| < kT (compressional where < kL); forward if
-    K' + 2 pi m/a > 0. Its Im T_m (lossless substrate) is split by `shear_share`. A channel fed
+    K' + 2 pi m/a > 0. Its Im T_m (lossless ground) is split by `Ground.shear_share`. A channel fed
     by several harmonics reports the angle of the strongest one.
     """
     kl2, kt2 = (w / substrate.cl) ** 2, (w / substrate.ct) ** 2
@@ -413,7 +411,7 @@ def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
                 0.0,
             )
             im = np.maximum(np.nan_to_num(im), 0.0)
-            shear = shear_share(xi2, kl2, kt2)
+            shear = substrate.shear_share(xi2, w)
             fwd = kx > 0
             for off, share, k2 in ((0, shear, kt2), (1, 1.0 - shear, kl2)):
                 p = im * share
@@ -458,8 +456,8 @@ def _direct_rest(w, a, substrate, b, r, model, n_main):
 
 
 def validity_warnings(
-    substrate: Substrate,
-    rod: Rod,
+    substrate: Ground,
+    rod: Resonator,
     spacing_max: float,
     row_pitch: float,
     freq_max: float,
@@ -469,8 +467,8 @@ def validity_warnings(
 
     * sideways radiation: 2 pi / b < kT (physics.md section 5);
     * grating regime: kR >= 2 pi / a (informational; more main harmonics are used);
-    * thin-rod theory: d > lambda_r / 5 (physics.md section 4);
-    * bending modes of the rods are not represented.
+    * the resonator type's own notes (`Resonator.validity_notes`; for the axial rod: thin-rod
+      theory stretched where d > lambda_r / 5, bending modes not represented).
     """
     out = []
     kt = 2 * np.pi * freq_max / substrate.ct
@@ -490,18 +488,13 @@ def validity_warnings(
             f"spacing {spacing_max:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
             "grating regime, several harmonics radiate (handled as main harmonics)"
         )
-    if not bool(np.all(is_thin_rod(freq_max, rod))):
-        out.append(
-            f"rod diameter {rod.diameter:.4g} m exceeds a fifth of the bar wavelength at "
-            f"{freq_max:.4g} Hz: thin-rod theory is stretched"
-        )
-    out.append("axial rod motion only: bending modes of the rods are not represented")
+    out.extend(rod.validity_notes(freq_max))
     return out
 
 
 def direct_local_modes(
-    substrate: Substrate,
-    rod: Rod,
+    substrate: Ground,
+    rod: Resonator,
     row_pitch: float,
     height: ArrayLike,
     spacing: ArrayLike,
@@ -531,9 +524,7 @@ def direct_local_modes(
     n_cells, n_freq = h.size, freq.size
     w = np.broadcast_to(2 * np.pi * freq[None, :], (n_cells, n_freq)).ravel()
     ap = np.broadcast_to(a.ravel()[:, None], (n_cells, n_freq)).ravel()
-    iz = rod_compliance(
-        2 * np.pi * freq[None, :], rod, h.ravel()[:, None], m.ravel()[:, None]
-    ).ravel()
+    iz = rod.compliance(2 * np.pi * freq[None, :], h.ravel()[:, None], m.ravel()[:, None]).ravel()
     n_main = main_orders(float(ap.max()), float(w.max()) / substrate.cr, model)
     rest = _direct_rest(w, ap, substrate, row_pitch, rod.radius, model, n_main)
     res = solve_points(w, iz, ap, substrate, row_pitch, rod.radius, model, rest, n_main)
@@ -594,7 +585,7 @@ def solve_bands(
     freq = np.atleast_1d(np.asarray(freq, dtype=float))
     w = 2 * np.pi * freq
     a = np.full(freq.shape, float(cell.spacing))
-    iz = rod_compliance(w, cell.rod, cell.height, cell.head_mass)
+    iz = cell.rod.compliance(w, cell.height, cell.head_mass)
     sub, b, r = cell.substrate, cell.row_pitch, cell.rod.radius
     n_main = main_orders(float(cell.spacing), float(w.max()) / sub.cr, model)
     parts = []
@@ -617,10 +608,7 @@ def solve_bands(
         )
         for i in range(2)
     )
-    rod = cell.rod
-    fr = rod_resonances(
-        cell.height, rod.diameter, rod.youngs_modulus, rod.density, cell.head_mass, n_modes=3
-    )
+    fr = cell.rod.resonances(cell.height, cell.head_mass, n_modes=3)
     return Bands(
         cell=cell,
         freq=freq,
@@ -630,7 +618,7 @@ def solve_bands(
         gaps=_gaps(freq, branches),
         warnings=tuple(
             validity_warnings(
-                cell.substrate, rod, cell.spacing, cell.row_pitch, float(freq.max()), model
+                cell.substrate, cell.rod, cell.spacing, cell.row_pitch, float(freq.max()), model
             )
         ),
     )

@@ -1,7 +1,9 @@
-"""Lattice sums Sigma(K, w) of a periodic resonator array on the half-space (physics.md section 5).
+"""Lattice sums Sigma(K, w) of a periodic resonator array on a ground (physics.md section 5).
 
 The array supports a Bloch wave exp(i K x) at angular frequency w when 1/Z(w) = Sigma(K, w),
-with Z the base stiffness of one resonator (`optgrade.resonators._rod`). Three models:
+with Z the base stiffness of one resonator (`optgrade.resonators.Resonator`). The ground enters
+through its `optgrade.ground.Ground` interface only (surface compliance G, its static limit,
+cone speeds, shear share), so any registered ground works here. Three models:
 
 ``"lattice"`` (3-D): rows at x = m a, rods at y = n b, uniform traction on a contact disc of
     radius r, form factor S(xi) = 2 J1(xi r)/(xi r);
@@ -13,7 +15,8 @@ with Z the base stiffness of one resonator (`optgrade.resonators._rod`). Three m
     resonant-metasurface relation R(K) = -(alpha kT^2/mu) Z/(a b).
 
 Truncation: the terms decay like |xi|^-4 (3-D) and |xi|^-3 (2-D). We write G = G_s + (G - G_s)
-with the static compliance G_s = (1 - nu)/(mu xi): the dynamic remainder (G - G_s) decays two
+with the static compliance G_s = (1 - nu)/(mu xi) (`Ground.static_compliance_sq`): the dynamic
+remainder (G - G_s) decays two
 powers faster and is summed over a small box; the static part, which does not depend on w, is
 summed over a large box plus a closed-form tail: the form factor squared replaced by its
 large-argument mean (4/(pi (xi r)^3) for the disc, with lattice points replaced by their density
@@ -21,9 +24,10 @@ ab/(4 pi^2); 1/(2 (xi r)^2) for the strip, summed exactly with Hurwitz zeta func
 uses Re K (it is a tiny, smooth correction). Both boxes are fixed for a call, so Sigma is
 a smooth analytic function of K (needed for Newton steps and tabulated derivatives).
 
-Branches: every harmonic uses `optgrade.ground._halfspace.vertical_wavenumber` (choice made on Re xi^2),
-so complex K off the real axis continues each harmonic analytically (improper sheet for the
-radiating ones): this is what the leaky-root Newton steps need.
+Branches: the ground's compliance is evaluated on its outgoing branches continued analytically
+off the real axis (for the half-space, `optgrade.ground.vertical_wavenumber` with the choice made
+on Re xi^2; improper sheet for the radiating harmonics): this is what the leaky-root Newton steps
+need.
 """
 
 from __future__ import annotations
@@ -34,7 +38,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy.special import j1, jv, zeta
 
-from optgrade.ground import Substrate, compliance_sq, shear_share
+from optgrade.ground import Ground
 
 __all__ = [
     "MODELS",
@@ -120,7 +124,7 @@ def default_harmonics(spacing: float, radius: float, model: Model) -> int:
     return int(np.ceil(_STATIC_XR / radius * spacing / (2.0 * np.pi)))
 
 
-def _static_tail(K, substrate, a, b, r, model, m_hi, n_hi):
+def _static_tail(K, substrate: Ground, a, b, r, model, m_hi, n_hi):
     """Static tail outside the box m in [-m_hi, m_hi], n in [-n_hi, n_hi] (closed form)."""
     nu = substrate.poisson
     mu = substrate.complex_mu
@@ -145,7 +149,7 @@ def _static_tail(K, substrate, a, b, r, model, m_hi, n_hi):
     return c * 2.0 * (quadrant(x1) + quadrant(x2))
 
 
-def _harmonic_grid(a, b, model, m_hi, n_hi):
+def _harmonic_grid(model, m_hi, n_hi):
     m = np.arange(-m_hi, m_hi + 1)
     if model == "lattice":
         n = np.arange(-n_hi, n_hi + 1)
@@ -158,7 +162,7 @@ def _harmonic_grid(a, b, model, m_hi, n_hi):
 def harmonic_term(
     K: ArrayLike,
     w: ArrayLike,
-    substrate: Substrate,
+    substrate: Ground,
     spacing: float,
     row_pitch: float,
     radius: float,
@@ -176,7 +180,7 @@ def harmonic_term(
     xi = K + 2.0 * np.pi * m / spacing
     xi2 = xi * xi
     s2 = form_factor_sq(xi2, radius, model)
-    return compliance_sq(xi2, w, substrate) * s2 / (spacing * row_pitch)
+    return substrate.compliance_sq(xi2, w) * s2 / (spacing * row_pitch)
 
 
 def main_orders(spacing: float, kr_max: float, model: Model = "lattice") -> int:
@@ -194,7 +198,7 @@ def main_orders(spacing: float, kr_max: float, model: Model = "lattice") -> int:
 def lattice_sum(
     K: ArrayLike,
     w: ArrayLike,
-    substrate: Substrate,
+    substrate: Ground,
     spacing: float,
     row_pitch: float,
     radius: float,
@@ -210,8 +214,8 @@ def lattice_sum(
         Bloch wavenumber (1/m), real or complex (Im K > 0 for leaky roots), broadcast with w.
     w : array_like
         Angular frequency (rad/s).
-    substrate : Substrate
-        The half-space.
+    substrate : Ground
+        The ground (the half-space, or any registered ground).
     spacing, row_pitch : float
         Spacing a along x and row pitch b along y (m).
     radius : float
@@ -248,32 +252,28 @@ def lattice_sum(
     shape = np.broadcast(K, w).shape
     Kb = np.broadcast_to(K, shape)[..., None]
     wb = np.broadcast_to(w, shape)[..., None]
-    nu = substrate.poisson
-    mu = substrate.complex_mu
     scale = 1.0 / (a * b)
 
     # dynamic remainder (G - G_s) S^2 over the small box
-    mm, nn = _harmonic_grid(a, b, model, m_d, n_d)
+    mm, nn = _harmonic_grid(model, m_d, n_d)
     n_main = int(exclude_main)
     if n_main > 0:
         keep = ~((nn == 0) & (mm >= -n_main) & (mm < n_main))
         mm, nn = mm[keep], nn[keep]
     xi2 = (Kb + 2.0 * np.pi * mm / a) ** 2 + (2.0 * np.pi * nn / b) ** 2
     s2 = form_factor_sq(xi2, r, model)
-    g = compliance_sq(xi2, wb, substrate)
-    gs = (1.0 - nu) / (mu * np.sqrt(xi2 + 0j))
+    g = substrate.compliance_sq(xi2, wb)
+    gs = substrate.static_compliance_sq(xi2)
     total = np.sum((g - gs) * s2, axis=-1)
 
     # static part over the large box (w independent; computed once per K)
-    ms, ns = _harmonic_grid(a, b, model, m_s, n_s)
+    ms, ns = _harmonic_grid(model, m_s, n_s)
     if n_main > 0:
         keep = ~((ns == 0) & (ms >= -n_main) & (ms < n_main))
         ms, ns = ms[keep], ns[keep]
     Ku = np.asarray(K)[..., None]
     xi2s = (Ku + 2.0 * np.pi * ms / a) ** 2 + (2.0 * np.pi * ns / b) ** 2
-    static = np.sum(
-        (1.0 - nu) / (mu * np.sqrt(xi2s + 0j)) * form_factor_sq(xi2s, r, model), axis=-1
-    )
+    static = np.sum(substrate.static_compliance_sq(xi2s) * form_factor_sq(xi2s, r, model), axis=-1)
     static = scale * static + _static_tail(np.asarray(K), substrate, a, b, r, model, m_s, n_s)
     return scale * total + np.broadcast_to(static, shape)
 
@@ -281,7 +281,7 @@ def lattice_sum(
 def radiation_parts(
     K: ArrayLike,
     w: ArrayLike,
-    substrate: Substrate,
+    substrate: Ground,
     spacing: float,
     row_pitch: float,
     radius: float,
@@ -290,7 +290,7 @@ def radiation_parts(
     """Split of the radiative Im Sigma at real K' into the four bulk channels (m/N).
 
     Each harmonic (m, n) with |xi_mn| < kT radiates; its Im G S^2/(a b) (computed for the
-    lossless substrate) is split into shear and compressional power (`shear_share`) and booked
+    lossless ground) is split into shear and compressional power (`Ground.shear_share`) and booked
     forward if K' + 2 pi m/a > 0, backward otherwise (physics.md section 5).
 
     Returns
@@ -308,20 +308,19 @@ def radiation_parts(
     if model == "homogenised":
         m_hi = 0
     n_hi = int(np.ceil(kt_max * b / (2.0 * np.pi))) if model == "lattice" else 0
-    mm, nn = _harmonic_grid(a, b, "lattice" if model == "lattice" else "line", m_hi, n_hi)
+    mm, nn = _harmonic_grid("lattice" if model == "lattice" else "line", m_hi, n_hi)
     Kb = np.broadcast_to(K, shape)[..., None]
     wb = np.broadcast_to(w, shape)[..., None]
     kx = Kb + 2.0 * np.pi * mm / a
     xi2 = kx**2 + (2.0 * np.pi * nn / b) ** 2
-    kl2 = (wb / substrate.cl) ** 2
     kt2 = (wb / substrate.ct) ** 2
-    lossless = Substrate(substrate.density, substrate.cl, substrate.ct)
+    lossless = substrate.lossless()
     im = np.where(
         xi2 < kt2,
-        (compliance_sq(xi2, wb, lossless) * form_factor_sq(xi2, radius, model)).imag,
+        (lossless.compliance_sq(xi2, wb) * form_factor_sq(xi2, radius, model)).imag,
         0.0,
     ) / (a * b)
-    shear = shear_share(xi2, kl2, kt2)
+    shear = substrate.shear_share(xi2, wb)
     fwd = kx > 0
     out = np.empty((4,) + shape)
     out[0] = np.sum(np.where(fwd, im * shear, 0.0), axis=-1)

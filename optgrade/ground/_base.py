@@ -5,6 +5,10 @@ edges), density and loss factor, its Rayleigh speed, the vertical surface compli
 (docs/physics.md section 3), the surface-wave pole function whose zero is the Rayleigh pole, and
 the split of radiated power between shear and compressional waves. A new ground is one module with
 one subclass registered with :data:`GROUNDS`; the study names it in ``[substrate] kind``.
+
+The direct band solver (`optgrade.dispersion._lattice`, `optgrade.dispersion._direct`) uses this
+interface only, so any registered ground runs through it; the compiled surrogate knows the
+half-space's point functions only (:attr:`Ground.has_compiled_points`).
 """
 
 from __future__ import annotations
@@ -75,6 +79,18 @@ class Ground(ABC):
     def poisson(self) -> float:
         """Poisson ratio (cL^2 - 2 cT^2) / (2 (cL^2 - cT^2)), dimensionless."""
         return (self.cl**2 - 2.0 * self.ct**2) / (2.0 * (self.cl**2 - self.ct**2))
+
+    def static_compliance_sq(self, xi2: ArrayLike) -> np.ndarray:
+        """Static (large-|xi|) limit of the surface compliance, (1 - nu) / (mu |xi|) (m/Pa per
+        unit wavenumber, complex through mu (1 - i eta); xi2 in 1/m^2).
+
+        The lattice sums subtract it from G and sum it in closed form (`optgrade.dispersion.
+        _lattice`), with the same :attr:`poisson` and :attr:`complex_mu` in the tail, so a
+        ground must report a (poisson, complex_mu) pair that gives the large-|xi| limit of its
+        own :meth:`compliance_sq` (Flamant / Boussinesq for the half-space; K. L. Johnson,
+        *Contact Mechanics*, 1985).
+        """
+        return (1.0 - self.poisson) / (self.complex_mu * np.sqrt(np.asarray(xi2) + 0j))
 
     @property
     def complex_factor(self) -> complex:

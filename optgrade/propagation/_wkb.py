@@ -374,9 +374,9 @@ class WKBMarch(PropagationModel):
     def __init__(self, study: Any, dispersion: Any = None, model: str | None = None) -> None:
         super().__init__(study)
         if dispersion is None:
-            from optgrade.dispersion import surrogate_for_study
+            from optgrade.dispersion import dispersion_for_study
 
-            dispersion = surrogate_for_study(study, model=model)
+            dispersion = dispersion_for_study(study, model=model)
         self.dispersion = dispersion
 
     def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:

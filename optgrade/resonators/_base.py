@@ -4,6 +4,10 @@ The dispersion and propagation stages need from a resonator: its footprint (cont
 its base compliance 1/Z(w) for a given height and head mass (m/N; finite at the resonances, zero
 there), and its resonance frequencies. A new resonator type is one module with one subclass
 registered with :data:`RESONATORS`; the study names it in ``[resonator] kind``.
+
+The direct band solver (`optgrade.dispersion._direct`) uses this interface only, so any registered
+type runs through it; the compiled surrogate knows the axial rod's point function only
+(:attr:`Resonator.has_compiled_points`).
 """
 
 from __future__ import annotations
@@ -50,7 +54,8 @@ class Resonator(ABC):
         """The first ``n_modes`` resonance frequencies with the base held (Hz), increasing."""
 
     def validity_notes(self, freq_max: float) -> list[str]:
-        """Plain sentences on where this resonator model is stretched up to ``freq_max`` (Hz)."""
+        """Plain sentences on where this resonator model is stretched up to ``freq_max`` (Hz);
+        the band solver appends them to its own model-validity warnings."""
         return []
 
     @property

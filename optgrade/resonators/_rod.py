@@ -97,6 +97,18 @@ class Rod(Resonator):
             height, self.diameter, self.youngs_modulus, self.density, head_mass, n_modes
         )
 
+    def validity_notes(self, freq_max: float) -> list[str]:
+        """Where thin-rod axial theory is stretched up to ``freq_max`` (Hz): d > lambda_r / 5
+        (`is_thin_rod`), and always that bending modes are not represented."""
+        out = []
+        if not bool(np.all(is_thin_rod(freq_max, self))):
+            out.append(
+                f"rod diameter {self.diameter:.4g} m exceeds a fifth of the bar wavelength at "
+                f"{freq_max:.4g} Hz: thin-rod theory is stretched"
+            )
+        out.append("axial rod motion only: bending modes of the rods are not represented")
+        return out
+
     @property
     def has_compiled_points(self) -> bool:
         return True
