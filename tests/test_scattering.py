@@ -55,7 +55,7 @@ def tables():
 
 def _table_value(tab, f, x):
     idx, wts = stencils(tab, np.array([x]))
-    rest = np.sum(np.asarray(tab.table)[0, f, idx[0]] * wts[0])
+    rest = np.sum(np.asarray(tab.table)[0, idx[0], f] * wts[0])
     pc = tab.pole
     return rest + 1j * pc.res[f] * pc.s_kr[f] ** 2 * np.exp(1j * pc.kr[f] * abs(x))
 

@@ -32,7 +32,7 @@ Tables hold the smooth rest (everything but the pole term) on a separation grid 
 segments (spacing (x - d)/40 near the shortest separation, lambda_T/32 far away) and at x = 0,
 plus the four bulk-radiation tables (shear / compressional, power and angle moments over the
 forward half of the cones) that `optgrade.propagation._scattering` needs. Separations are
-interpolated with 8-point Lagrange stencils (accuracy measured in tests/test_scattering.py).
+interpolated with 6-point Lagrange stencils (accuracy measured in tests/test_scattering.py).
 
 Cache: like the dispersion tables (key = hash of every input and ``FORMAT_VERSION``, checksum
 in a side file, atomic writes, stale or corrupt files rebuilt), directory $OPTGRADE_CACHE or
@@ -65,12 +65,12 @@ __all__ = [
     "bulk_densities",
 ]
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 N_GL = 16  # Gauss-Legendre order per panel
 N_LAGUERRE = 28  # Gauss-Laguerre nodes of the rotated tail
-N_STENCIL = 8  # Lagrange stencil (points)
+N_STENCIL = 6  # Lagrange stencil (points)
 N_STATIC = 160  # row harmonics summed exactly in the self term (static part)
-N_DYNAMIC = 24  # row harmonics whose dynamic self-term part is summed
+N_DYNAMIC = 16  # row harmonics whose dynamic self-term part is summed
 PPW = 32  # grid points per shear wavelength (far segments)
 NEAR = 40  # grid points per (x - d) near the shortest separation
 
@@ -137,41 +137,68 @@ def _dynamic_values(xi, s2, kl2, kt2, mu, q2, static_c, out):
         out[i] = (_compliance(k2, kl2, kt2, mu, False) - static_c / cmath.sqrt(k2)) * s2[i]
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=True)
 def _accumulate(xi, wv, seg_x0, seg_h, seg_start, seg_n, out, use_cos):
-    """out[i] += sum_q wv[q] cos(xi_q x_i) (or exp(i xi_q x_i)) on uniform segments, by the
-    rotation recurrence exp(i xi (x + h)) = exp(i xi x) exp(i xi h)."""
+    """out[r, i] += sum_q wv[r, q] cos(xi_q x_i) (or exp(i xi_q x_i)) on uniform segments.
+
+    Grid point by grid point, all nodes at once: the phasors exp(i xi_q x) advance by
+    exp(i xi_q h) (a recurrence along x, independent across nodes, so the inner loop over q
+    vectorises); renormalised every 64 steps."""
+    n_r, n_q = wv.shape
+    er = np.empty(n_q)
+    ei = np.empty(n_q)
+    sr = np.empty(n_q)
+    si = np.empty(n_q)
+    wr = np.ascontiguousarray(wv.real)
+    wi = np.ascontiguousarray(wv.imag)
     for s in range(seg_x0.size):
-        x0 = seg_x0[s]
-        h = seg_h[s]
-        i0 = seg_start[s]
-        for q in range(xi.size):
-            e = cmath.exp(1j * xi[q] * x0)
-            step = cmath.exp(1j * xi[q] * h)
-            wq = wv[q]
-            for i in range(seg_n[s]):
+        for q in range(n_q):
+            e = cmath.exp(1j * xi[q] * seg_x0[s])
+            st = cmath.exp(1j * xi[q] * seg_h[s])
+            er[q], ei[q], sr[q], si[q] = e.real, e.imag, st.real, st.imag
+        for i in range(seg_n[s]):
+            col = seg_start[s] + i
+            for r in range(n_r):
+                acc_r = 0.0
+                acc_i = 0.0
                 if use_cos:
-                    out[i0 + i] += wq * e.real
+                    for q in range(n_q):
+                        acc_r += wr[r, q] * er[q]
+                        acc_i += wi[r, q] * er[q]
                 else:
-                    out[i0 + i] += wq * e
-                e *= step
-                if (i & 63) == 63:  # renormalise the unit phasor
-                    e /= abs(e)
+                    for q in range(n_q):
+                        acc_r += wr[r, q] * er[q] - wi[r, q] * ei[q]
+                        acc_i += wr[r, q] * ei[q] + wi[r, q] * er[q]
+                out[r, col] += complex(acc_r, acc_i)
+            for q in range(n_q):
+                a = er[q] * sr[q] - ei[q] * si[q]
+                ei[q] = er[q] * si[q] + ei[q] * sr[q]
+                er[q] = a
+            if (i & 63) == 63:
+                for q in range(n_q):
+                    m = 1.0 / math.sqrt(er[q] * er[q] + ei[q] * ei[q])
+                    er[q] *= m
+                    ei[q] *= m
 
 
 @njit(cache=True)
-def _tail(xg, d, x0r, s2t, kl2, kt2, mu, q2, amp, kr2, lag_x, lag_we, out):
+def _tail(xg, d, x0r, tau, wt, s2t, kl2, kt2, mu, q2, amp, kr2, symmetric, out):
     """(1/pi) int_X0^inf f(xi) cos(xi x) dxi for every grid x, f = G S^2 - p, on the rotated
-    contours xi = X0 +- i t (t = tau/(x - d), Gauss-Laguerre in tau); s2t[dir, i, k] holds S^2
-    at those nodes (dir 0 up, 1 down)."""
+    contours xi = X0 +- i t, t = tau/(x - d) (Gauss-Laguerre nodes tau[i, k] with weights
+    wt[i, k] exp(tau), zero-padded); s2t[dir, i, k] holds S^2 there (dir 0 up, 1 down). With
+    ``symmetric`` (lossless substrate: f(conj xi) = conj f(xi)) the down path is the conjugate
+    of the up path."""
     for i in range(xg.size):
         x = xg[i]
         y = x - d
+        ph = cmath.exp(1j * x0r * x)
         acc = 0j
-        for k in range(lag_x.size):
-            t = lag_x[k] / y
-            wk = lag_we[k] / y
-            for sgn in range(2):
+        for k in range(tau.shape[1]):
+            if wt[i, k] == 0.0:
+                break
+            t = tau[i, k] / y
+            wk = wt[i, k] / y * math.exp(-t * x)
+            for sgn in range(1 if symmetric else 2):
                 sg = 1.0 if sgn == 0 else -1.0
                 xi = complex(x0r, sg * t)
                 k2 = xi * xi + q2
@@ -179,8 +206,25 @@ def _tail(xg, d, x0r, s2t, kl2, kt2, mu, q2, amp, kr2, lag_x, lag_we, out):
                 if amp != 0.0:
                     val -= amp / (xi * xi - kr2)
                 # up: d xi = i dt, exp(i xi x); down: d xi = -i dt, exp(-i xi x)
-                acc += wk * (1j * sg) * val * cmath.exp(1j * sg * xi * x)
+                term = (1j * sg) * val * (ph if sgn == 0 else np.conj(ph))
+                if symmetric:
+                    acc += wk * 2.0 * term.real  # up + conj(up) with the factor i folded in
+                else:
+                    acc += wk * term
         out[i] += acc / (2.0 * math.pi)
+
+
+def _laguerre_sets(y: np.ndarray, x_cut: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per-point Gauss-Laguerre nodes and weights x exp(node) (zero-padded): N_LAGUERRE nodes
+    where X0 (x - d) < 40 (the integrand varies on the node scale), 14 beyond."""
+    n = y.size
+    tau = np.zeros((n, N_LAGUERRE))
+    wt = np.zeros((n, N_LAGUERRE))
+    x_s, w_s = np.polynomial.laguerre.laggauss(14)
+    near = x_cut * y < 40.0
+    tau[near], wt[near] = _LAG_X, _LAG_WE
+    tau[~near, :14], wt[~near, :14] = x_s, w_s * np.exp(x_s)
+    return tau, wt
 
 
 # ----------------------------------------------------------------------------- numpy helpers
@@ -407,11 +451,12 @@ class GreenTables:
 
     Attributes
     ----------
-    table : ndarray, complex, shape (5, n_freq, 1 + n_x)
+    table : ndarray, complex, shape (5, 1 + n_x, n_freq)
         [0]: smooth rest of g (everything but the pole term i Res S(kR)^2 exp(i kR |x|));
         [1], [2]: forward shear / compressional power tables B(x) = (1/2 pi) int_0^k dens S^2
-        exp(i xi x) dxi; [3], [4]: the same weighted by the radiation angle (rad). Column 0 is
-        x = 0, columns 1.. the grid `grid`.
+        exp(i xi x) dxi; [3], [4]: the same weighted by the radiation angle (rad). Row 0 of
+        the second axis is x = 0, rows 1.. the grid `grid`; frequency is the contiguous axis
+        (the per-layout gathers run along it).
     pole : PoleConstants per frequency.
     """
 
@@ -421,6 +466,7 @@ class GreenTables:
         self.omega = 2 * np.pi * self.freq
         sub = spec.substrate
         self._sp = _speeds(spec)
+        self._row_nodes: list | None = None
         self.pole = pole_constants(sub, self.omega, spec.diameter, spec.model)
         kt_max = float(self.omega.max()) / spec.ct
         if spec.model == "lattice":
@@ -439,16 +485,16 @@ class GreenTables:
 
     # -- build -------------------------------------------------------------------------
     def build(self) -> np.ndarray:
-        """Compute all tables (complex (5, n_freq, 1 + n_x))."""
+        """Compute all tables (complex (5, 1 + n_x, n_freq))."""
         spec = self.spec
         nf, nx = self.freq.size, self.grid.size
-        out = np.zeros((5, nf, 1 + nx), dtype=complex)
+        out = np.zeros((5, 1 + nx, nf), dtype=complex)
         harm = self._harmonics()
         fixed = self._fixed_parts(harm)
         for f in range(nf):
-            self._one_frequency(f, harm, fixed, out[:, f])
+            self._one_frequency(f, harm, fixed, out[:, :, f])
         if spec.model == "lattice":
-            out[0, :, 0] += self._row_static_self()
+            out[0, 0, :] += self._row_static_self()
         return out
 
     def _harmonics(self) -> list[tuple[float, int]]:
@@ -481,8 +527,10 @@ class GreenTables:
         hi_xi, hi_w = _panels(xa, x0, n_pan)
         xg = self.grid.x
         y = xg - spec.diameter
-        t = _LAG_X[None, :] / y[:, None]
-        fixed: dict[str, Any] = {"hi": (hi_xi, hi_w), "xa": xa, "tail": [], "axis_n": []}
+        tau, wt = _laguerre_sets(y, x0)
+        t = tau / y[:, None]
+        fixed: dict[str, Any] = {"hi": (hi_xi, hi_w), "xa": xa, "tail": [], "axis_n": [],
+                                 "lag": (tau, wt)}
         for q2, n_keep in harm:
             up = x0 + 1j * t[:n_keep]
             nodes = np.stack([up, np.conj(up)])
@@ -535,11 +583,14 @@ class GreenTables:
                             + [fixed["hi_s2"]])
         val = np.empty(xi.size, dtype=complex)
         _axis_values(xi, s2, kl2, kt2, mu, 0.0, amp, kr * kr, val)
-        rest = np.zeros(g.size, dtype=complex)
-        _accumulate(xi, val * wq / np.pi, g.x0, g.h, g.start, g.n, rest, True)
+        rest = np.zeros((1, g.size), dtype=complex)
+        _accumulate(xi, (val * wq / np.pi)[None, :], g.x0, g.h, g.start, g.n, rest, True)
+        rest = rest[0]
         xg = g.x
-        _tail(xg, spec.diameter, self.x_cut, fixed["tail"][0], kl2, kt2, mu, 0.0, amp, kr * kr,
-              _LAG_X, _LAG_WE, rest)
+        tau, wt = fixed["lag"]
+        sym = spec.loss_factor == 0.0
+        _tail(xg, spec.diameter, self.x_cut, tau, wt, fixed["tail"][0], kl2, kt2, mu, 0.0, amp,
+              kr * kr, sym, rest)
         self_term = np.sum(val * wq) / np.pi + self._self_tail0(w, kl2, kt2, mu, nu, amp, kr,
                                                                 fixed)
         rows = zip(harm[1:], fixed["tail"][1:], fixed["axis_n"][1:], strict=True)
@@ -547,10 +598,11 @@ class GreenTables:
             xs, ws, s2n = axis
             vn = np.empty(xs.size, dtype=complex)
             _axis_values(xs, s2n, kl2, kt2, mu, q2, 0.0, 0j, vn)
-            part = np.zeros(n_keep, dtype=complex)
-            _accumulate(xs, vn * ws / np.pi, *_truncate(g, n_keep), part, True)
-            _tail(xg[:n_keep], spec.diameter, self.x_cut, s2t, kl2, kt2, mu, q2, 0.0, 0j,
-                  _LAG_X, _LAG_WE, part)
+            part = np.zeros((1, n_keep), dtype=complex)
+            _accumulate(xs, (vn * ws / np.pi)[None, :], *_truncate(g, n_keep), part, True)
+            part = part[0]
+            _tail(xg[:n_keep], spec.diameter, self.x_cut, tau[:n_keep], wt[:n_keep], s2t, kl2,
+                  kt2, mu, q2, 0.0, 0j, sym, part)
             rest[:n_keep] += 2.0 * part  # harmonics +n and -n
         if spec.model == "lattice":
             self_term += self._row_dynamic_self(kl2, kt2, mu, nu)
@@ -607,15 +659,19 @@ class GreenTables:
     def _row_dynamic_self(self, kl2, kt2, mu, nu) -> complex:
         """Sum over 1 <= |n| <= N_DYNAMIC of (1/pi) int_0^inf (G - G_s)(k_n) S(k_n)^2 dxi."""
         spec = self.spec
-        u, wu = _panels(0.0, 10.0, 80)
+        if self._row_nodes is None:
+            u, wu = _panels(0.0, 10.0, 80)
+            nodes = []
+            for n in range(1, N_DYNAMIC + 1):
+                q = 2 * np.pi * n / spec.row_pitch
+                s2 = form_factor(q * np.cosh(u), spec.diameter, "lattice") ** 2
+                nodes.append((q, q * np.sinh(u), s2 * wu * q * np.cosh(u)))
+            self._row_nodes = nodes
         total = 0j
-        for n in range(1, N_DYNAMIC + 1):
-            q = 2 * np.pi * n / spec.row_pitch
-            xs = q * np.sinh(u)
-            s2 = form_factor(q * np.cosh(u), spec.diameter, "lattice") ** 2
-            vals = np.empty(u.size, dtype=complex)
-            _dynamic_values(xs, s2, kl2, kt2, mu, q * q, (1.0 - nu) / mu, vals)
-            total += 2.0 * np.sum(vals * wu * q * np.cosh(u))
+        vals = np.empty(self._row_nodes[0][1].size, dtype=complex)
+        for q, xs, s2w in self._row_nodes:
+            _dynamic_values(xs, s2w, kl2, kt2, mu, q * q, (1.0 - nu) / mu, vals)
+            total += 2.0 * np.sum(vals)
         return total / np.pi
 
     def _bulk(self, f: int, low, out: np.ndarray) -> None:
@@ -630,16 +686,16 @@ class GreenTables:
         th_t = np.arcsin(np.clip(xi / kt, 0, 1))
         th_l = np.arcsin(np.clip(xi / kl, 0, 1))
         g = self.grid
-        for row, vals in ((1, d_t), (2, d_l), (3, d_t * th_t), (4, d_l * th_l)):
-            wv = (wq * vals * s2 / (2 * np.pi)).astype(complex)
-            out[row, 0] = np.sum(wv)
-            acc = np.zeros(g.size, dtype=complex)
-            _accumulate(xi, wv, g.x0, g.h, g.start, g.n, acc, False)
-            out[row, 1:] = acc
+        wv = np.array([d_t, d_l, d_t * th_t, d_l * th_l]) * (wq * s2 / (2 * np.pi))
+        wv = wv.astype(complex)
+        out[1:, 0] = wv.sum(axis=1)
+        acc = np.zeros((4, g.size), dtype=complex)
+        _accumulate(xi, wv, g.x0, g.h, g.start, g.n, acc, False)
+        out[1:, 1:] = acc
 
     # -- cache -------------------------------------------------------------------------
     def _load_or_build(self, cache_dir) -> np.ndarray:
-        shape = (5, self.freq.size, 1 + self.grid.size)
+        shape = (5, 1 + self.grid.size, self.freq.size)
         if cache_dir is False:
             return self.build()
         root = Path(cache_dir) if cache_dir is not None else _default_cache_dir()
@@ -725,8 +781,8 @@ def green_tables(spec: GreenSpec, cache_dir=None) -> GreenTables:
 
 @njit(cache=True)
 def _stencil_kernel(x, d, seg_x0, seg_h, seg_start, seg_n, seg_lo, idx, wts):
-    """8-point Lagrange stencil (table column indices, offset 1 for the x = 0 column) of every
-    separation |x| > d; x = 0 maps to column 0 with weight 1."""
+    """Lagrange stencil (N_STENCIL table rows, offset 1 for the x = 0 row) of every separation
+    |x| > d; x = 0 maps to row 0 with weight 1."""
     m = idx.shape[1]
     for p in range(x.size):
         ax = abs(x[p])
@@ -753,8 +809,8 @@ def _stencil_kernel(x, d, seg_x0, seg_h, seg_start, seg_n, seg_lo, idx, wts):
 
 
 def stencils(tables: GreenTables, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Column indices and Lagrange weights (n, 8) of separations x (m) into ``tables.table``;
-    refuses separations outside the tabulated range (0 or x_lo..x_hi)."""
+    """Row indices and Lagrange weights (n, N_STENCIL) of separations x (m) into the tables'
+    separation axis; refuses separations outside the tabulated range (0 or x_lo..x_hi)."""
     x = np.ascontiguousarray(np.abs(np.asarray(x, dtype=float)).ravel())
     spec = tables.spec
     bad = (x != 0) & ((x < spec.x_lo * (1 - 1e-12)) | (x > spec.x_hi * (1 + 1e-12)))

@@ -83,67 +83,78 @@ class ScatteringResult:
     resonator_power: np.ndarray
 
 
+@njit(cache=True, fastmath=True)
+def _gather(table, idx, wts, out):
+    """out[p, :] = sum_s wts[p, s] table[idx[p, s], :] (Lagrange interpolation of a table for
+    every pair, all frequencies at once; real views, so the inner loop vectorises)."""
+    n2 = table.shape[1]
+    for p in range(idx.shape[0]):
+        for f in range(n2):
+            out[p, f] = 0.0
+        for s in range(idx.shape[1]):
+            row = idx[p, s]
+            w = wts[p, s]
+            for f in range(n2):
+                out[p, f] += w * table[row, f]
+
+
+def _gathered(table, idx, wts) -> np.ndarray:
+    """Interpolated table values (n_pairs, n_freq) complex; table (n_col, n_freq) complex."""
+    t = np.ascontiguousarray(table).view(np.float64)
+    out = np.empty((idx.shape[0], t.shape[1]))
+    _gather(t, idx, wts, out)
+    return out.view(np.complex128)
+
+
 @njit(cache=True)
-def _fill(table, idx, wts, x, bc, kr, res, skr, m):
-    """Foldy matrix m[f] = diag(b c_j) - g(x_j - x_k); g = tabulated rest (8-point Lagrange) +
-    the pole term i Res S(kR)^2 exp(i kR |x|) (from per-resonator phasors)."""
+def _fill(gp, g0, jj, kk, bc, ph, iph, pole, m):
+    """Foldy matrix m[f] = diag(b c_j) - g(x_j - x_k): interpolated rest gp[p, f] of pair p =
+    (jj, kk) plus the pole term pole[f] exp(i kR (x_k - x_j)) = pole ph[k] iph[j]."""
     n_f, n = m.shape[0], m.shape[1]
-    ph = np.empty(n, dtype=np.complex128)
     for f in range(n_f):
         for j in range(n):
-            ph[j] = np.exp(1j * kr[f] * x[j])
-        pole = 1j * res[f] * skr[f] * skr[f]
-        p = 0
-        for j in range(n):
-            m[f, j, j] = bc[f, j] - (table[f, 0] + pole)
-            for k in range(j + 1, n):
-                v = 0j
-                for s in range(idx.shape[1]):
-                    v += table[f, idx[p, s]] * wts[p, s]
-                v += pole * ph[k] / ph[j]
-                m[f, j, k] = -v
-                m[f, k, j] = -v
-                p += 1
+            m[f, j, j] = bc[f, j] - (g0[f] + pole[f])
+    for p in range(jj.size):
+        j = jj[p]
+        k = kk[p]
+        for f in range(n_f):
+            v = -(gp[p, f] + pole[f] * ph[k, f] * iph[j, f])
+            m[f, j, k] = v
+            m[f, k, j] = v
 
 
-@njit(cache=True)
-def _bulk(tb, idx, wts, forces, n_f, n, out_p, out_a, per):
-    """Quadratic forms of the four bulk tables: forward and backward power (out_p[c, dir, f],
-    c = shear, compressional) and angle moments (out_a), per-resonator power per[c, dir, f, j]."""
-    for f in range(n_f):
-        for c in range(2):
-            b0 = tb[c, f, 0].real
-            a0 = tb[2 + c, f, 0].real
-            for j in range(n):
-                q = abs(forces[f, j]) ** 2
-                for dr in range(2):
-                    per[c, dr, f, j] = b0 * q
-                    out_a[c, dr, f] += a0 * q
-            p = 0
-            for j in range(n):
-                fj = forces[f, j]
-                for k in range(j + 1, n):
-                    fk = forces[f, k]
-                    vb = 0j
-                    va = 0j
-                    for s in range(idx.shape[1]):
-                        vb += tb[c, f, idx[p, s]] * wts[p, s]
-                        va += tb[2 + c, f, idx[p, s]] * wts[p, s]
-                    # B(x_j - x_k) = conj(B(s)), B(x_k - x_j) = B(s), s = x_k - x_j > 0
-                    cjk = np.conj(fj) * fk
-                    # forward: sum conj(F_j) F_k B(x_j - x_k)
-                    per[c, 0, f, j] += (cjk * np.conj(vb)).real
-                    per[c, 0, f, k] += (np.conj(cjk) * vb).real
-                    per[c, 1, f, j] += (cjk * vb).real
-                    per[c, 1, f, k] += (np.conj(cjk) * np.conj(vb)).real
-                    out_a[c, 0, f] += 2.0 * (cjk * np.conj(va)).real
-                    out_a[c, 1, f] += 2.0 * (cjk * va).real
-                    p += 1
-            for dr in range(2):
-                tot = 0.0
-                for j in range(n):
-                    tot += per[c, dr, f, j]
-                out_p[c, dr, f] = tot
+@njit(cache=True, fastmath=True)
+def _bulk(gb, ga, b0, a0, jj, kk, ft, per, mom):
+    """Quadratic forms of one channel's power table B and angle table A (forward, backward).
+
+    gb, ga: interpolated B(s), A(s) of each pair (s = x_k - x_j > 0), b0, a0: their x = 0
+    values; ft (n, n_f) forces. per[dir, j, f] += each resonator's share (sum over its row of
+    the Hermitian form; the pair term is shared equally), mom[dir, f] the angle moment.
+    B(x_j - x_k) = conj(B(s)) and B(x_k - x_j) = B(s): forward Re(conj(F_j) F_k conj(B)),
+    backward Re(conj(F_j) F_k B)."""
+    n, n_f = ft.shape
+    for j in range(n):
+        for f in range(n_f):
+            q = ft[j, f].real ** 2 + ft[j, f].imag ** 2
+            per[0, j, f] += b0[f].real * q
+            per[1, j, f] += b0[f].real * q
+            mom[0, f] += a0[f].real * q
+            mom[1, f] += a0[f].real * q
+    for p in range(jj.size):
+        j = jj[p]
+        k = kk[p]
+        for f in range(n_f):
+            c = np.conj(ft[j, f]) * ft[k, f]
+            vb = gb[p, f]
+            va = ga[p, f]
+            fwd = c.real * vb.real + c.imag * vb.imag
+            bwd = c.real * vb.real - c.imag * vb.imag
+            per[0, j, f] += fwd
+            per[0, k, f] += fwd
+            per[1, j, f] += bwd
+            per[1, k, f] += bwd
+            mom[0, f] += 2.0 * (c.real * va.real + c.imag * va.imag)
+            mom[1, f] += 2.0 * (c.real * va.real - c.imag * va.imag)
 
 
 def solve_row(
@@ -180,20 +191,31 @@ def solve_row(
     idx, wts = stencils(tables, x[kk] - x[jj])
     pc = tables.pole
     kr, res, skr = pc.kr, pc.res, pc.s_kr
-    tab = np.asarray(tables.table)
+    tab = tables.table
+    ph = np.exp(1j * x[:, None] * kr[None, :])  # (n, n_f)
+    iph = np.exp(-1j * x[:, None] * kr[None, :])
     m = np.empty((n_f, n, n), dtype=complex)
-    _fill(tab[0], idx, wts, x, row_pitch * c, kr, res, skr, m)
-    rhs = skr[:, None] * np.exp(1j * kr[:, None] * x[None, :])
+    _fill(_gathered(tab[0], idx, wts), np.asarray(tab[0, 0]), jj, kk, row_pitch * c, ph, iph,
+          1j * res * skr * skr, m)
+    rhs = skr[:, None] * ph.T
     forces = np.linalg.solve(m, rhs[..., None])[..., 0]
-    a_plus = np.sum(forces * np.exp(-1j * kr[:, None] * x[None, :]), axis=1)
-    r_j = 1j * (res * skr)[:, None] * forces * np.exp(1j * kr[:, None] * x[None, :])
+    ft = np.ascontiguousarray(forces.T)
+    a_plus = np.sum(ft * iph, axis=0)
+    r_j = 1j * (res * skr)[:, None] * forces * ph.T
     t_amp = 1.0 + 1j * res * skr * a_plus
     r_amp = np.sum(r_j, axis=1)
     p_inc = w / (4.0 * res.real)
     out_p = np.zeros((2, 2, n_f))
     out_a = np.zeros((2, 2, n_f))
     per_b = np.zeros((2, 2, n_f, n))
-    _bulk(tab[1:], idx, wts, forces, n_f, n, out_p, out_a, per_b)
+    for ch in range(2):
+        per_c = np.zeros((2, n, n_f))
+        mom = np.zeros((2, n_f))
+        _bulk(_gathered(tab[1 + ch], idx, wts), _gathered(tab[3 + ch], idx, wts),
+              np.asarray(tab[1 + ch, 0]), np.asarray(tab[3 + ch, 0]), jj, kk, ft, per_c, mom)
+        per_b[ch] = per_c.transpose(0, 2, 1)
+        out_p[ch] = per_c.sum(axis=1)
+        out_a[ch] = mom
     scale = (0.5 * w / p_inc)[:, None]
     absorbed_j = -0.5 * w[:, None] * row_pitch * c.imag * np.abs(forces) ** 2 / p_inc[:, None]
     per = np.empty((6, n_f, n))
