@@ -22,6 +22,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.integrate import quad
 
+import optgrade.propagation._scattering  # noqa: F401  (registers "scattering")
 from optgrade.dispersion import direct_local_modes
 from optgrade.ground import Substrate, surface_compliance
 from optgrade.propagation._green import (
@@ -239,3 +240,56 @@ def test_long_uniform_row_gives_bloch_wavenumber(model):
         if abs(k_ref.imag) > 1e-4 * abs(k_ref.real):
             assert abs(abs(k_est.imag) - abs(k_ref.imag)) <= 0.05 * abs(k_ref.imag)
         assert abs(1.0 - sol["fractions"][:, i].sum()) <= 1e-6
+
+
+def test_table_cache_reload_and_corrupt_rebuild(tmp_path):
+    """Disk cache like the dispersion tables: second build loads (memory-mapped, identical);
+    a corrupted table file or a stale checksum is detected and rebuilt."""
+    spec = _spec("line", [120e3, 180e3], x_hi=0.05)
+    first = GreenTables(spec, cache_dir=tmp_path)
+    assert not first.was_loaded and first.cache_path.exists()
+    ref = np.array(first.table)  # a copy: first.table maps the file damaged below
+    again = GreenTables(spec, cache_dir=tmp_path)
+    assert again.was_loaded and isinstance(again.table, np.memmap)
+    np.testing.assert_array_equal(np.asarray(again.table), ref)
+    raw = bytearray(first.cache_path.read_bytes())
+    raw[-64:] = b"\x00" * 64  # damage the end of the data
+    first.cache_path.write_bytes(bytes(raw))
+    rebuilt = GreenTables(spec, cache_dir=tmp_path)
+    assert not rebuilt.was_loaded
+    np.testing.assert_array_equal(np.asarray(rebuilt.table), ref)
+    other = GreenTables(_spec("line", [120e3, 181e3], x_hi=0.05), cache_dir=tmp_path)
+    assert not other.was_loaded  # a different input is a different key
+
+
+def test_refuses_separations_outside_table(tables):
+    """A layout closer or longer than the tabulated separations is refused, naming the field."""
+    tab = tables["line"]
+    c = np.ones((tab.omega.size, 2), dtype=complex) * 1e-8
+    with pytest.raises(ValueError, match="layout"):
+        solve_row(tab, np.array([0.0, 2e-3]), c, B)
+    with pytest.raises(ValueError, match="layout"):
+        solve_row(tab, np.array([0.0, 0.5]), c, B)
+    with pytest.raises(ValueError, match="shortest separation"):
+        GreenSpec(RHO, CL, CT, 0.0, "line", D, B, (1e5,), 0.9 * D, 0.1)
+
+
+def test_registered_model_gives_trace_contract():
+    """The model registered as ``scattering`` returns a Trace whose fractions sum to 1 and
+    whose bulk angles carry the sign of their channel (bench example study)."""
+    from pathlib import Path
+
+    from optgrade.layout import layout_from_cells
+    from optgrade.propagation import propagation_model
+    from optgrade.study import load_study
+
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "bench_backward_shear.toml")
+    model = propagation_model(study, "scattering", model="line", cache_dir=False)
+    lay = layout_from_cells(np.linspace(4e-3, 12e-3, 12), np.full(12, 9e-3), D)
+    tr = model.trace(lay, np.linspace(120e3, 180e3, 5))
+    np.testing.assert_allclose(tr.total(), 1.0, atol=1e-9)
+    assert np.all(np.abs(model.last_balance_error) < 1e-9)
+    assert np.all(tr.angle["backward_shear"] < 0) and np.all(tr.angle["forward_shear"] > 0)
+    pos = tr.position["backward_shear"]
+    assert np.all((pos >= 0) & (pos <= lay.length))

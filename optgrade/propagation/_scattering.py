@@ -47,10 +47,22 @@ from numba import njit
 from numpy.typing import ArrayLike
 
 from optgrade.layout import Layout
-from optgrade.propagation import CHANNELS, Trace, study_frequencies
+from optgrade.propagation import (
+    CHANNELS,
+    PROPAGATION_MODELS,
+    PropagationModel,
+    Trace,
+    study_frequencies,
+)
 from optgrade.propagation._green import GreenSpec, GreenTables, stencils
 
-__all__ = ["ScatteringResult", "scattering_trace", "solve_row", "tables_for_study"]
+__all__ = [
+    "ScatteringModel",
+    "ScatteringResult",
+    "scattering_trace",
+    "solve_row",
+    "tables_for_study",
+]
 
 
 @dataclass(frozen=True)
@@ -366,3 +378,39 @@ def scattering_trace(
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
     return ScatteringResult(trace, balance, sol["forces"], sol["T"], sol["R"], sol["per"])
 
+
+
+@PROPAGATION_MODELS.register
+class ScatteringModel(PropagationModel):
+    """The exact multiple-scattering row model behind the propagation interface (registered as
+    ``scattering``; the registry loads it once ``optgrade.propagation._scattering`` is listed
+    among its built-in modules or imported).
+
+    Parameters
+    ----------
+    study : Study
+    model : {"lattice", "line"}, optional
+        Footprint variant; default ``study.goal.model``.
+    cache_dir : path or False, optional
+        Green's-table cache (default $OPTGRADE_CACHE or ~/.cache/optgrade).
+    """
+
+    name = "scattering"
+
+    def __init__(self, study: Any, model: str | None = None, cache_dir=None) -> None:
+        super().__init__(study)
+        self.model = model or study.goal.model
+        self.cache_dir = cache_dir
+        #: energy-balance residual of the last `trace` call (per frequency; nan if lossy)
+        self.last_balance_error: np.ndarray | None = None
+
+    def result(self, layout: Layout, freq: ArrayLike | None = None) -> ScatteringResult:
+        """Full result (trace, balance error, forces, amplitudes) over ``freq`` (Hz)."""
+        f = self.frequencies(freq)
+        return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir)
+
+    def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
+        """Exact trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted)."""
+        res = self.result(layout, freq)
+        self.last_balance_error = res.balance_error
+        return res.trace
