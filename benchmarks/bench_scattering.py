@@ -84,13 +84,34 @@ def main() -> None:
             t_build = time.perf_counter() - t0
             _, peak = tracemalloc.get_traced_memory()
             tracemalloc.stop()
-            best, med = _timeit(lambda tab=tab: scattering_trace(study, lay, tables=tab))
+            best, med = _timeit(lambda tab=tab: scattering_trace(study, lay, tables=tab,
+                                                                 per_resonator=False))
+            full, _ = _timeit(lambda tab=tab: scattering_trace(study, lay, tables=tab))
             res = scattering_trace(study, lay, tables=tab)
             print(f"{model:8s} n_freq={n_f}: table build {t_build:6.2f} s, table "
                   f"{tab.table.nbytes / 2**20:5.1f} MiB, build peak {peak / 2**20:6.1f} MiB; "
-                  f"per layout {best * 1e3:6.1f} ms (median {med * 1e3:6.1f}); "
+                  f"per layout {best * 1e3:6.1f} ms (median {med * 1e3:6.1f}; with "
+                  f"per-resonator shares {full * 1e3:6.1f}); "
                   f"max |balance error| {np.nanmax(np.abs(res.balance_error)):.1e}")
+            _split(study, lay, tab)
         _wkb(study, lay, n_f)
+
+
+def _split(study, lay, tab):
+    """Time of the parts: gathers + fill, batched solve, channel evaluation."""
+    from optgrade.propagation import _scattering as sc
+    from optgrade.resonators import Rod, rod_compliance
+
+    res = study.resonator
+    rod = Rod(res.youngs_modulus, res.density, res.diameter, res.loss_factor)
+    c = rod_compliance(tab.omega[:, None], rod, lay.height[None, :], lay.head_mass[None, :])
+    n, n_f = lay.n_resonators, tab.omega.size
+    m = np.random.default_rng(0).random((n_f, n, n)) + 0j
+    rhs = np.ones((n_f, n, 1), dtype=complex)
+    t_solve, _ = _timeit(lambda: np.linalg.solve(m, rhs))
+    t_all, _ = _timeit(lambda: sc.solve_row(tab, lay.x, c, res.row_pitch, per_resonator=False))
+    print(f"          parts: batched LAPACK solve {t_solve * 1e3:5.1f} ms, rest (stencils, "
+          f"gathers, fill, channels) {(t_all - t_solve) * 1e3:5.1f} ms")
 
 
 def _wkb(study, lay, n_f):
@@ -101,7 +122,7 @@ def _wkb(study, lay, n_f):
     trace_study(st, lay, sur)
     best, med = _timeit(lambda: trace_study(st, lay, sur))
     tab = GreenTables(_spec(st, np.linspace(*st.goal.band, n_f), st.goal.model), cache_dir=False)
-    ex, _ = _timeit(lambda: scattering_trace(st, lay, tables=tab))
+    ex, _ = _timeit(lambda: scattering_trace(st, lay, tables=tab, per_resonator=False))
     print(f"WKB trace n_freq={n_f}: {best * 1e3:.1f} ms (median {med * 1e3:.1f}); exact "
           f"({st.goal.model}) / WKB = {ex / best:.1f}")
 

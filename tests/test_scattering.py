@@ -169,6 +169,10 @@ def test_energy_balance_random_rows(tables, data):
     sol = solve_row(tab, x, c, B)
     fr = sol["fractions"]
     assert np.all(np.abs(fr.sum(axis=0) - 1.0) <= 1e-6)
+    fast = solve_row(tab, x, c, B, per_resonator=False)  # pair sums by scatter + dot product
+    np.testing.assert_allclose(fast["fractions"], fr, rtol=1e-9, atol=1e-14)
+    np.testing.assert_allclose(fast["moments"], sol["moments"], rtol=1e-8, atol=1e-15)
+    np.testing.assert_allclose(sol["per"].sum(axis=2), fr[1:], rtol=1e-9, atol=1e-14)
     assert np.all(fr >= -1e-12)
     if eta == 0.0:
         assert np.all(np.abs(fr[6]) <= 1e-14)

@@ -83,8 +83,9 @@ class ScatteringResult:
         Forces per unit length F_j (N/m) for a unit incident surface amplitude (m).
     transmission, reflection : ndarray, complex, shape (n_freq,)
         Amplitudes T and R (dimensionless).
-    resonator_power : ndarray, shape (6, n_freq, n)
-        Each resonator's share of the reflected, four bulk and absorbed fractions.
+    resonator_power : ndarray, shape (6, n_freq, n), or None
+        Each resonator's share of the reflected, four bulk and absorbed (rods) fractions; None
+        when not asked for.
     """
 
     trace: Trace
@@ -92,7 +93,7 @@ class ScatteringResult:
     forces: np.ndarray
     transmission: np.ndarray
     reflection: np.ndarray
-    resonator_power: np.ndarray
+    resonator_power: np.ndarray | None
 
 
 @njit(cache=True, fastmath=True)
@@ -169,8 +170,86 @@ def _bulk(gb, ga, b0, a0, jj, kk, ft, per, mom):
             mom[1, f] += 2.0 * (c.real * va.real - c.imag * va.imag)
 
 
+@njit(cache=True, fastmath=True)
+def _scatter(idx, wts, jj, kk, ft, x, c0, c1):
+    """Adjoint of the gather: c0[row, f] = sum over pairs and stencil points of w conj(F_j) F_k
+    (c1 the same times x_j + x_k), so that every table's pair sum is one dot product."""
+    n_f = ft.shape[1]
+    cp = np.empty(n_f, dtype=np.complex128)
+    for p in range(jj.size):
+        j = jj[p]
+        k = kk[p]
+        xs = x[j] + x[k]
+        for f in range(n_f):
+            cp[f] = np.conj(ft[j, f]) * ft[k, f]
+        for s in range(idx.shape[1]):
+            row = idx[p, s]
+            w = wts[p, s]
+            for f in range(n_f):
+                v = w * cp[f]
+                c0[row, f] += v
+                c1[row, f] += xs * v
+
+
+@njit(cache=True, fastmath=True)
+def _forms(table, c0, c1, out):
+    """out[0] += sum_rows Re(c0 conj(T)) (forward pair sum), out[1] += Re(c0 T) (backward),
+    out[2], out[3] the same with c1 (position moments); per frequency."""
+    for r in range(c0.shape[0]):
+        for f in range(c0.shape[1]):
+            t = table[r, f]
+            a = c0[r, f]
+            b = c1[r, f]
+            out[0, f] += a.real * t.real + a.imag * t.imag
+            out[1, f] += a.real * t.real - a.imag * t.imag
+            out[2, f] += b.real * t.real + b.imag * t.imag
+            out[3, f] += b.real * t.real - b.imag * t.imag
+
+
+def _bulk_fast(tab, idx, wts, jj, kk, ft, x):
+    """Bulk powers (c, dir, f), angle moments and position moments without per-resonator
+    shares: one scatter of the pair coefficients, then a dot product per table."""
+    n, n_f = ft.shape
+    c0 = np.zeros(tab.shape[1:], dtype=complex)
+    c1 = np.zeros(tab.shape[1:], dtype=complex)
+    c0[0] = 0.0
+    _scatter(idx, wts, jj, kk, ft, x, c0, c1)
+    q = np.abs(ft) ** 2
+    sq, sxq = q.sum(axis=0), (x[:, None] * q).sum(axis=0)
+    out_p, out_a, pos = (np.zeros((2, 2, n_f)) for _ in range(3))
+    for ch in range(2):
+        fb = np.zeros((4, n_f))
+        fa = np.zeros((4, n_f))
+        _forms(tab[1 + ch], c0, c1, fb)
+        _forms(tab[3 + ch], c0, c1, fa)
+        b0, a0 = tab[1 + ch, 0].real, tab[3 + ch, 0].real
+        for dr in range(2):
+            out_p[ch, dr] = b0 * sq + 2.0 * fb[dr]
+            out_a[ch, dr] = a0 * sq + 2.0 * fa[dr]
+            pos[ch, dr] = b0 * sxq + fb[2 + dr]
+    return out_p, out_a, pos
+
+
+def _bulk_detailed(tab, idx, wts, jj, kk, ft, x):
+    """As `_bulk_fast`, plus each resonator's share per[c, dir, f, j] (pair values gathered)."""
+    n, n_f = ft.shape
+    out_p, out_a, pos = (np.zeros((2, 2, n_f)) for _ in range(3))
+    per_b = np.zeros((2, 2, n_f, n))
+    for ch in range(2):
+        per_c = np.zeros((2, n, n_f))
+        mom = np.zeros((2, n_f))
+        _bulk(_gathered(tab[1 + ch], idx, wts), _gathered(tab[3 + ch], idx, wts),
+              np.asarray(tab[1 + ch, 0]), np.asarray(tab[3 + ch, 0]), jj, kk, ft, per_c, mom)
+        per_b[ch] = per_c.transpose(0, 2, 1)
+        out_p[ch] = per_c.sum(axis=1)
+        out_a[ch] = mom
+        pos[ch] = per_c.transpose(0, 2, 1) @ x
+    return out_p, out_a, pos, per_b
+
+
 def solve_row(
-    tables: GreenTables, x: ArrayLike, compliance: ArrayLike, row_pitch: float
+    tables: GreenTables, x: ArrayLike, compliance: ArrayLike, row_pitch: float,
+    *, per_resonator: bool = True,
 ) -> dict[str, np.ndarray]:
     """Forces and channel powers of a row at the tables' frequencies.
 
@@ -183,12 +262,17 @@ def solve_row(
         Base compliance 1/Z_j of every resonator (m/N; `optgrade.resonators.rod_compliance`).
     row_pitch : float
         Row pitch b (m): the force per unit length is Z u / b.
+    per_resonator : bool
+        Also return every resonator's share of each channel (``per``; the channel map). The
+        fractions, positions and angles are the same without it (pair sums then run as one
+        scatter and a dot product per table, faster).
 
     Returns
     -------
     dict with ``forces`` (n_freq, n), ``T``, ``R`` (n_freq,), ``fractions`` (7, n_freq) in the
     order of CHANNELS, ``per`` (6, n_freq, n) per-resonator shares (reflected, four bulk,
-    absorbed), ``angle`` (4, n_freq) bulk mean angles (rad).
+    absorbed; None without ``per_resonator``), ``moments`` (7, n_freq) sum_j x_j share_j
+    (m, for the positions), ``angle`` (4, n_freq) bulk mean angles (rad).
     """
     x = np.ascontiguousarray(np.asarray(x, dtype=float))
     c = np.ascontiguousarray(np.asarray(compliance, dtype=complex))
@@ -217,51 +301,43 @@ def solve_row(
     t_amp = 1.0 + 1j * res * skr * a_plus
     r_amp = np.sum(r_j, axis=1)
     p_inc = w / (4.0 * res.real)
-    out_p = np.zeros((2, 2, n_f))
-    out_a = np.zeros((2, 2, n_f))
-    per_b = np.zeros((2, 2, n_f, n))
-    for ch in range(2):
-        per_c = np.zeros((2, n, n_f))
-        mom = np.zeros((2, n_f))
-        _bulk(_gathered(tab[1 + ch], idx, wts), _gathered(tab[3 + ch], idx, wts),
-              np.asarray(tab[1 + ch, 0]), np.asarray(tab[3 + ch, 0]), jj, kk, ft, per_c, mom)
-        per_b[ch] = per_c.transpose(0, 2, 1)
-        out_p[ch] = per_c.sum(axis=1)
-        out_a[ch] = mom
-    scale = (0.5 * w / p_inc)[:, None]
+    scale = 0.5 * w / p_inc
     absorbed_j = -0.5 * w[:, None] * row_pitch * c.imag * np.abs(forces) ** 2 / p_inc[:, None]
-    per = np.empty((6, n_f, n))
-    per[0] = (np.conj(r_amp)[:, None] * r_j).real
-    # order of CHANNELS: forward_shear, forward_compressional, backward_shear, backward_comp.
-    per[1], per[2] = per_b[0, 0] * scale, per_b[1, 0] * scale
-    per[3], per[4] = per_b[0, 1] * scale, per_b[1, 1] * scale
-    per[5] = absorbed_j
+    refl_j = (np.conj(r_amp)[:, None] * r_j).real
+    per = None
+    if per_resonator:
+        out_p, out_a, pos_b, per_b = _bulk_detailed(tab, idx, wts, jj, kk, ft, x)
+        # order of CHANNELS: forward_shear, forward_compressional, backward_shear, backward_c.
+        per = np.stack([refl_j, per_b[0, 0] * scale[:, None], per_b[1, 0] * scale[:, None],
+                        per_b[0, 1] * scale[:, None], per_b[1, 1] * scale[:, None], absorbed_j])
+    else:
+        out_p, out_a, pos_b = _bulk_fast(tab, idx, wts, jj, kk, ft, x)
     fractions = np.empty((7, n_f))
     fractions[0] = np.abs(t_amp) ** 2
     fractions[1] = np.abs(r_amp) ** 2
-    for i in range(4):
-        fractions[2 + i] = per[1 + i].sum(axis=1)
+    fractions[2], fractions[3] = out_p[0, 0] * scale, out_p[1, 0] * scale
+    fractions[4], fractions[5] = out_p[0, 1] * scale, out_p[1, 1] * scale
     fractions[6] = absorbed_j.sum(axis=1)
+    moments = np.array([fractions[0] * 0.0, refl_j @ x, pos_b[0, 0] * scale,
+                        pos_b[1, 0] * scale, pos_b[0, 1] * scale, pos_b[1, 1] * scale,
+                        absorbed_j @ x])
     with np.errstate(invalid="ignore", divide="ignore"):
         angle = np.array([
             out_a[0, 0] / out_p[0, 0], out_a[1, 0] / out_p[1, 0],
             -out_a[0, 1] / out_p[0, 1], -out_a[1, 1] / out_p[1, 1],
         ])
     return {"forces": forces, "T": t_amp, "R": r_amp, "fractions": fractions, "per": per,
-            "angle": angle}
+            "moments": moments, "angle": angle}
 
 
-def _positions(x, length, fr, per) -> dict[str, np.ndarray]:
-    """Power-weighted position (m) per channel; nan where the channel gets nothing."""
+def _positions(length, fr, moments) -> dict[str, np.ndarray]:
+    """Power-weighted position (m) per channel, moment / fraction; nan where the channel gets
+    nothing; the transmitted wave leaves at the row's end."""
     pos = {}
     for i, name in enumerate(CHANNELS):
-        if name == "transmitted_surface":
-            pos[name] = np.where(fr[0] > 0, length, np.nan)
-            continue
-        share = per[i - 1]
-        tot = share.sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
-            pos[name] = np.where(np.abs(tot) > 1e-300, share @ x / tot, np.nan)
+            val = np.full(fr.shape[1], length) if i == 0 else moments[i] / fr[i]
+        pos[name] = np.where(np.abs(fr[i]) > 1e-300, val, np.nan)
     return pos
 
 
@@ -272,8 +348,15 @@ def _make_trace(freq, layout, sol, kr, lossy) -> tuple[Trace, np.ndarray]:
     if lossy:
         fr[6] += balance  # the substrate's extra loss caused by the row (module docstring)
         balance = np.full(freq.size, np.nan)
-    x = np.asarray(layout.x, float)
-    pos = _positions(x, float(layout.length), fr, sol["per"])
+    moments = sol["moments"]
+    if lossy:
+        # the substrate's extra loss is placed where the forces excite the ground: the
+        # |F_j|^2-weighted mean position of the row
+        q = np.abs(sol["forces"]) ** 2
+        x_f = q @ np.asarray(layout.x, float) / q.sum(axis=1)
+        moments = moments.copy()
+        moments[6] = moments[6] + (fr[6] - sol["fractions"][6]) * x_f
+    pos = _positions(float(layout.length), fr, moments)
     ang = {c: np.full(freq.size, np.nan) for c in CHANNELS}
     ang["transmitted_surface"] = np.where(fr[0] > 0, 90.0, np.nan)
     ang["reflected_surface"] = np.where(fr[1] > 0, -90.0, np.nan)
@@ -336,6 +419,7 @@ def scattering_trace(
     model: str | None = None,
     cache_dir=None,
     tables: GreenTables | None = None,
+    per_resonator: bool = True,
 ) -> ScatteringResult:
     """Exact multiple-scattering trace of a layout over the study's band (or ``freq``, Hz).
 
@@ -352,6 +436,9 @@ def scattering_trace(
         Default ``study.goal.model``.
     tables : GreenTables, optional
         Prebuilt tables (their frequencies are used).
+    per_resonator : bool
+        Keep each resonator's share of every channel (``resonator_power``; the channel map);
+        False is faster and gives the same trace.
 
     Returns
     -------
@@ -373,7 +460,7 @@ def scattering_trace(
     w = tables.omega
     comp = rod_compliance(w[:, None], rod, np.asarray(layout.height, float)[None, :],
                           np.asarray(layout.head_mass, float)[None, :])
-    sol = solve_row(tables, layout.x, comp, float(res.row_pitch))
+    sol = solve_row(tables, layout.x, comp, float(res.row_pitch), per_resonator=per_resonator)
     lossy = float(study.substrate.loss_factor or 0.0) > 0.0
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
     return ScatteringResult(trace, balance, sol["forces"], sol["T"], sol["R"], sol["per"])
@@ -405,9 +492,11 @@ class ScatteringModel(PropagationModel):
         self.last_balance_error: np.ndarray | None = None
 
     def result(self, layout: Layout, freq: ArrayLike | None = None) -> ScatteringResult:
-        """Full result (trace, balance error, forces, amplitudes) over ``freq`` (Hz)."""
+        """Result (trace, balance error, forces, amplitudes; no per-resonator shares) over
+        ``freq`` (Hz)."""
         f = self.frequencies(freq)
-        return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir)
+        return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir,
+                                per_resonator=False)
 
     def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
         """Exact trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted)."""
