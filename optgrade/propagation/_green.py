@@ -510,9 +510,12 @@ class GreenTables:
         while True:
             q = 2 * np.pi * n / spec.row_pitch
             decay = np.sqrt(max(q**2 - kt_max**2, 0.0))
-            n_keep = int(np.searchsorted(xg, spec.diameter + 36.0 / decay))
-            if n_keep == 0:
+            # grid points are in segment order (padded segments overlap slightly), so keep
+            # everything up to the last point inside the cut-off separation
+            inside = np.nonzero(xg <= spec.diameter + 36.0 / decay)[0]
+            if inside.size == 0:
                 break
+            n_keep = int(inside[-1]) + 1
             out.append((q * q, n_keep))
             n += 1
         return out
