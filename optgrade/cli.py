@@ -1,10 +1,10 @@
 """Command line ``optgrade``: a thin argparse shell over the Python API.
 
 Subcommands live in ``optgrade/commands/<name>.py`` and are discovered from the fixed list
-:data:`optgrade.commands.COMMAND_NAMES`; a module that does not exist yet is simply absent from
-``--help``. Exit status: 0 success, 2 bad input (study or option; messages on stderr, no
-traceback), 1 unexpected failure (one line; set ``OPTGRADE_DEBUG=1`` for the traceback),
-130 interrupted.
+:data:`optgrade.commands.COMMAND_NAMES`; a module that fails to import is listed as unavailable
+and does not take the others down. Exit status: 0 success, 2 bad input (study or option;
+messages on stderr, no traceback), 1 unexpected failure (one line; set ``OPTGRADE_DEBUG=1``
+for the traceback), 130 interrupted.
 """
 
 from __future__ import annotations
@@ -29,17 +29,13 @@ def _is_debug() -> bool:
 
 
 def _discover() -> tuple[dict[str, ModuleType], dict[str, str]]:
-    """Import the subcommand modules that exist; return (modules, broken name -> reason)."""
+    """Import the subcommand modules; return (modules, broken name -> reason)."""
     modules: dict[str, ModuleType] = {}
     broken: dict[str, str] = {}
     for name in COMMAND_NAMES:
         module_name = f"optgrade.commands.{name}"
         try:
             modules[name] = importlib.import_module(module_name)
-        except ModuleNotFoundError as exc:
-            if exc.name == module_name:
-                continue  # not written yet
-            broken[name] = f"{type(exc).__name__}: {exc}"
         except Exception as exc:  # a broken module must not take the others down
             broken[name] = f"{type(exc).__name__}: {exc}"
             if _is_debug():
@@ -89,7 +85,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command in broken:
         print(f"optgrade {args.command}: unavailable ({broken[args.command]})", file=sys.stderr)
         return 1
-    run = getattr(args, "handler", None) or modules[args.command].run
+    run = modules[args.command].run
     try:
         status = run(args)
     except StudyError as exc:

@@ -88,16 +88,6 @@ def tip_mass_height(youngs_modulus: float, diameter: np.ndarray | float, head_ma
         return np.where(m > 0, np.sqrt(p_unit), np.inf)
 
 
-def buckling_ratio(study: Study, height: ArrayLike, head_mass: ArrayLike) -> np.ndarray:
-    """Dunkerley combination M g / P_cr(L) + (L / L_crit)^3; buckling when >= 1 (dimensionless)."""
-    e = study.resonator.youngs_modulus
-    d = study.resonator.diameter
-    lc = greenhill_height(e, study.resonator.density, d)
-    lt = tip_mass_height(e, d, head_mass)
-    h = np.asarray(height, dtype=float)
-    return (h / lc) ** 3 + (h / lt) ** 2
-
-
 def max_height(study: Study, head_mass: ArrayLike) -> np.ndarray:
     """Largest height allowed by slenderness and combined buckling for each head mass (m)."""
     m = np.atleast_1d(np.asarray(head_mass, dtype=float))

@@ -495,10 +495,6 @@ class Study(_Frozen):
 _HEADER = re.compile(r"^\s*\[\s*([^\[\]]+?)\s*\]\s*(#.*)?$")
 
 
-def _key_pattern(key: str) -> re.Pattern:
-    return re.compile(rf"^\s*(?:{re.escape(key)}|\"{re.escape(key)}\"|'{re.escape(key)}')\s*=")
-
-
 def _find_line(text: str | None, loc: tuple[Any, ...]) -> int | None:
     """1-based line of a field path in the TOML source (best effort; None when not found)."""
     if not text:
