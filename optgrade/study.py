@@ -280,6 +280,7 @@ class _SubstrateIn(_Raw):
     youngs_modulus: _Q("modulus", "modulus") | None = None
     poisson: Poisson | None = None
     loss_factor: LossFactor = 0.0
+    # reserved key: any value is taken here so that _resolve_substrate can refuse it by name
     plate_thickness: Any = None
     kind: Annotated[str, BeforeValidator(_registry_choice("optgrade.ground.GROUNDS"))] = (
         "halfspace"
