@@ -27,7 +27,6 @@ import numpy as np
 
 from optgrade import __version__, fabrication, objectives, profiles, search
 from optgrade._atomic import atomic_write
-from optgrade.objectives._common import wanted_fraction
 from optgrade.study import SITE_CAUTION
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -289,7 +288,8 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
             is_site: bool, trial_number: int | None) -> str:
     f = np.asarray(trace.frequency, dtype=float)
     # the same measure the search scored (blocking: insertion effect against bare ground)
-    wanted = np.nan_to_num(wanted_fraction(trace, study.goal.channel, layout, study), nan=0.0)
+    wanted = objectives.wanted_fraction(trace, study.goal.channel, layout, study)
+    wanted = np.nan_to_num(wanted, nan=0.0)
     meets = wanted >= study.goal.required_fraction
     h = np.asarray(layout.height) * 1e3
     lines = [

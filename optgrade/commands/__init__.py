@@ -21,6 +21,7 @@ from optgrade.errors import StudyError
 from optgrade.units import UnitError, parse_quantity
 
 if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
     from optgrade.study import Study
 
 __all__ = [
@@ -92,7 +93,7 @@ def open_study(path: str | Path) -> Study:
     return load_study(path)
 
 
-def open_layout(path: str | Path, option_name: str = "--layout"):
+def open_layout(path: str | Path, option_name: str = "--layout") -> Layout:
     """Read a machining table (``optgrade.layout.read_table``) for a subcommand.
 
     Table defects become :class:`StudyError` messages prefixed with the option name (exit 2).

@@ -23,6 +23,7 @@ from typing import TYPE_CHECKING, Any, ClassVar
 import numpy as np
 
 from optgrade._registry import Registry
+from optgrade.objectives._common import wanted_fraction
 
 if TYPE_CHECKING:  # pragma: no cover
     from optgrade.layout import Layout
@@ -41,6 +42,7 @@ __all__ = [
     "names",
     "register",
     "signed",
+    "wanted_fraction",
     "weighted_score",
 ]
 
