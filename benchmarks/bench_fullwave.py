@@ -107,7 +107,7 @@ def main(argv: list[str] | None = None) -> int:
     bw = memory_bandwidth()
     print(f"memory bandwidth (numpy, best of 5): copy {bw['copy_GBps']:.1f} GB/s, "
           f"triad {bw['triad_GBps']:.1f} GB/s")
-    grid = fw.plan_grid(medium, band, float(layout.length), 1e-3, quality=quality)
+    grid = fw.plan_grid(medium, band, float(layout.length), 1e-3, quality=quality, rods=rods)
     k_rate = kernel_rate(grid, medium)
     bound = bw["triad_GBps"] * 1e9 / BYTES_PER_UPDATE
     print(f"grid {grid.nx} x {grid.nz} = {grid.n_cells} cells, h = {grid.h * 1e3:.3g} mm, "
@@ -128,6 +128,7 @@ def main(argv: list[str] | None = None) -> int:
             "cell_updates_per_s_in_runs": updates / (run.seconds + ref.seconds),
             "cell_updates_per_s_overall": updates / wall, "peak_rss_GiB": rss,
             "max_balance_error": float(np.max(np.abs(split.balance_error))),
+            "self_check_failures": fw.self_checks(split, run, medium, rods, quality)[1],
         })
         r = results[-1]
         print(f"full check ({quality}): {wall:.1f} s wall, {r['steps']} steps "
@@ -136,7 +137,8 @@ def main(argv: list[str] | None = None) -> int:
               f"(recording and Fourier sums included), "
               f"{r['cell_updates_per_s_overall'] / 1e6:.1f} M/s overall; "
               f"peak RSS {rss:.2f} GiB; box energy balance within "
-              f"{100 * r['max_balance_error']:.2f} %")
+              f"{100 * r['max_balance_error']:.2f} %; self-checks "
+              f"{'passed' if not r['self_check_failures'] else r['self_check_failures']}")
     if args.json:
         Path(args.json).write_text(json.dumps({"bandwidth": bw, "kernel_rate": k_rate,
                                                "bound": bound, "runs": results}, indent=1))

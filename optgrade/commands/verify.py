@@ -10,6 +10,13 @@ channels and compares them with the surrogate's 2-D line model. Writes
   and ``fullwave`` (grid, timing, diagnostics); a ``caution`` for site-scale studies;
 - ``DIR/comparison.png`` (surrogate against full-wave, per channel), ``DIR/snapshots.png``
   (displacement field at four moments) and ``DIR/animation.gif`` (when Pillow is available).
+
+Every run checks itself (energy balance, closure, power into lossless rods, energy left at the
+end; bounds in ``optgrade.fullwave._solver.CHECK_BOUNDS``). A run outside a bound is reported
+as failed: ``"status": "failed"`` and a one-line ``reason`` in verify.json (figures still
+written), the reason on the terminal, exit status 3. An unstable run (non-finite fields, or
+energy growing after the source stopped) is stopped at once and reported the same way (no
+fractions: null in verify.json, no figures). Successful runs carry ``"status": "ok"``.
 """
 
 from __future__ import annotations
@@ -24,7 +31,9 @@ import numpy as np
 from optgrade._atomic import save_figure, write_json
 from optgrade.commands import add_study_argument, open_layout, open_output_dir, open_study
 
-__all__ = ["add_parser", "run", "run_verify"]
+__all__ = ["EXIT_FAILED", "add_parser", "run", "run_verify"]
+
+EXIT_FAILED = 3  # the full-wave run failed its own checks: no result to vouch for
 
 
 def add_parser(subparsers: Any) -> argparse.ArgumentParser:
@@ -89,6 +98,10 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
         payload["caution"] = SITE_CAUTION
     out.mkdir(parents=True, exist_ok=True)
     write_json(out / "verify.json", payload)
+    if ver.run is None:  # stopped as unstable: nothing to draw
+        say(f"[bold red]FAILED[/]: {ver.reason}")
+        say(f"wrote {out / 'verify.json'} (status failed; no figures)")
+        return payload
 
     import matplotlib
 
@@ -99,6 +112,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     fig = plt.figure(figsize=(13, 6.2), layout="constrained")
     pf.plot_comparison(fig, ver, lattice)
     note = " (site scale: see caution in verify.json)" if is_site else ""
+    if ver.status != "ok":
+        note += " - FAILED its own checks, not a result (see verify.json)"
     fig.suptitle(f"{study.meta.name}: full-wave 2-D check against the surrogate{note}")
     save_figure(fig, out / "comparison.png")
     plt.close(fig)
@@ -122,9 +137,10 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     say(f"[bold]{study.meta.name}[/]: {layout.x.size} resonators, {ver.frequency.size} "
         f"frequencies, grid {grid.nx} x {grid.nz} (h = {grid.h * 1e3:.3g} mm), "
         f"{ver.info['n_steps']} steps in {ver.info['seconds']:.1f} s")
+    bound = ver.info["checks"]["bounds"]["balance"]
     if ver.info["max_balance_error"] is not None:
         say(f"  energy balance within {100 * ver.info['max_balance_error']:.2f} % of the "
-            "incident power")
+            f"incident power (bound {100 * bound:g} %)")
     else:
         say("  lossy substrate: the box energy balance measures the absorbed power (no "
             "separate balance check)")
@@ -143,6 +159,8 @@ def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
     if is_site:
         say(f"[yellow]{SITE_CAUTION}[/]")
     say(f"wrote {out / 'verify.json'} and {n_files - 1} figure files")
+    if ver.status != "ok":
+        say(f"[bold red]FAILED[/]: {ver.reason}")
     return payload
 
 
@@ -154,6 +172,13 @@ def run(args: argparse.Namespace) -> int:
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
     console = Console(highlight=False)
-    run_verify(study, layout, out, is_fast=args.fast, is_animation=not args.no_animation,
-               is_lattice=not args.no_lattice, console=console)
+    payload = run_verify(study, layout, out, is_fast=args.fast,
+                         is_animation=not args.no_animation, is_lattice=not args.no_lattice,
+                         console=console)
+    if payload.get("status") != "ok":
+        import sys
+
+        # the one-line reason also goes to stderr, for scripts that only read that
+        print(f"optgrade verify: failed: {payload.get('reason')}", file=sys.stderr)
+        return EXIT_FAILED
     return 0

@@ -139,18 +139,22 @@ def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
 
 @njit(cache=True)
 def step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc,
-              fp_start, fp_count, dt, h, tz, n_sub):  # pragma: no cover - compiled
-    """Advance every rod by one step (``n_sub`` sub-steps) and add its base force to ``tz``.
+              fp_start, fp_count, dt, h, tz):  # pragma: no cover - compiled
+    """Advance every rod by one step (the substrate's step) and add its base force to ``tz``.
 
     The rod base moves with the mean vertical velocity of its footprint (the nodes
-    ``fp_start .. fp_start + fp_count - 1`` of the surface) during the whole step, and presses
-    on that footprint with a uniform traction equal to its base compressive force at the end of
-    the step (the time level of the stresses; an average over the sub-steps would lag by a
-    fraction of a step and spoil the energy balance) divided by the footprint width.
-    Kelvin-Voigt damping: C = E A (e + visc de/dt).
+    ``fp_start .. fp_start + fp_count - 1`` of the surface) at the half step, and presses on
+    that footprint with a uniform traction equal to its base compressive force at the whole
+    step (the time level of the stresses) divided by the footprint width. Rod velocities live
+    at half steps, rod forces at whole steps, like the substrate's: substrate and rods together
+    are one leapfrog of M u'' = -K u with one symmetric stiffness K (the base spring's force on
+    the footprint is the gradient of its strain energy in the footprint's mean displacement),
+    stable while dt^2 lambda_max(M^-1 K) < 4 (docs/fullwave.md, "Stability"). The rods are
+    not sub-stepped: a rod advanced in sub-steps against a base velocity frozen over the step
+    breaks that symmetry and grew without bound (issue 14). Kelvin-Voigt damping:
+    C = E A (e + visc de/dt).
     """
     n_rods = rod_v.shape[0]
-    dts = dt / n_sub
     for r in range(n_rods):
         n = n_seg[r]
         vb = 0.0
@@ -159,14 +163,13 @@ def step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc,
         vb /= fp_count[r]
         rod_v[r, 0] = vb
         m = m_node[r]
-        for _ in range(n_sub):
-            for k in range(1, n):
-                rod_v[r, k] += dts * (rod_c[r, k] - rod_c[r, k - 1]) / m
-            rod_v[r, n] += dts * (-rod_c[r, n - 1]) / (0.5 * m + m_tip[r])
-            for k in range(n):
-                rate = (rod_v[r, k + 1] - rod_v[r, k]) / ds[r]
-                rod_e[r, k] += dts * rate
-                rod_c[r, k] = ea[r] * (rod_e[r, k] + visc[r] * rate)
+        for k in range(1, n):
+            rod_v[r, k] += dt * (rod_c[r, k] - rod_c[r, k - 1]) / m
+        rod_v[r, n] += dt * (-rod_c[r, n - 1]) / (0.5 * m + m_tip[r])
+        for k in range(n):
+            rate = (rod_v[r, k + 1] - rod_v[r, k]) / ds[r]
+            rod_e[r, k] += dt * rate
+            rod_c[r, k] = ea[r] * (rod_e[r, k] + visc[r] * rate)
         t = rod_c[r, 0] / (fp_count[r] * h)
         for i in range(fp_start[r], fp_start[r] + fp_count[r]):
             tz[i] += t
@@ -176,7 +179,7 @@ def step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc,
 def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
             ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi, src, i_source, tz,
             rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
-            fp_count, n_sub, sel, tau):  # pragma: no cover - compiled
+            fp_count, sel, tau):  # pragma: no cover - compiled
     """Steps n0 .. n1-1 in one call (velocity, rods, surface traction, stress).
 
     ``src[n]`` is the source traction at time (n + 1) dt on surface node ``i_source``;
@@ -190,7 +193,7 @@ def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
         tz[i_source] = src[n]
         if rod_v.shape[0] > 0:
             step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
-                      fp_count, dt, h, tz, n_sub)
+                      fp_count, dt, h, tz)
         step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
                     az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz, sel, tau)
         if is_uz:
@@ -212,12 +215,12 @@ def warm_up() -> None:
                 *p[4:], np.zeros(nx), np.zeros((3, nx, nz)), 0.0)
     step_rods(f[1], np.zeros((1, 3)), np.zeros((1, 2)), np.zeros((1, 2)), np.array([2]),
               np.array([1.0]), np.array([1.0]), np.array([0.0]), np.array([1.0]),
-              np.array([0.0]), np.array([1]), np.array([1]), 1e-3, 1.0, np.zeros(nx), 1)
+              np.array([0.0]), np.array([1]), np.array([1]), 1e-3, 1.0, np.zeros(nx))
     for n_rods in (0, 1):
         advance(0, 1, *f, np.zeros((nx, nz)), True, 1.0, 1.0, 1.0, 1e-3, 1.0, cx[0], cx[1],
                 cx[2], cx[3], cz[0], cz[1], cz[2], cz[3], np.zeros((8, nx, nz)), np.zeros(1),
                 1, np.zeros(nx), np.zeros((n_rods, 3)), np.zeros((n_rods, 2)),
                 np.zeros((n_rods, 2)), np.full(n_rods, 2), np.ones(n_rods), np.ones(n_rods),
                 np.zeros(n_rods), np.ones(n_rods), np.zeros(n_rods), np.ones(n_rods, np.int64),
-                np.ones(n_rods, np.int64), 1, np.zeros((3, nx, nz)), 0.0)
+                np.ones(n_rods, np.int64), np.zeros((3, nx, nz)), 0.0)
 

@@ -60,9 +60,15 @@ def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
     ax = axes.flat[-1]
     ax.plot(f_khz, 100 * ver.balance_error, "-", color="k", label="box energy balance")
     ax.plot(f_khz, 100 * (ver.closure - 1.0), "-", color="0.6", label="direct-flux closure - 1")
-    ax.axhline(2, color="r", lw=0.8, ls=":")
-    ax.axhline(-2, color="r", lw=0.8, ls=":")
-    ax.set_title("energy check (% of incident)", fontsize=9)
+    bound = 100 * float(ver.info.get("checks", {}).get("bounds", {}).get("balance", 0.02))
+    ax.axhline(bound, color="r", lw=0.8, ls=":", label=f"balance bound +-{bound:g} %")
+    ax.axhline(-bound, color="r", lw=0.8, ls=":")
+    lim = 10 * bound  # a failed run's huge values would flatten the panel
+    ax.set_ylim(max(-lim, ax.get_ylim()[0]), min(lim, ax.get_ylim()[1]))
+    title = "energy check (% of incident)"
+    if getattr(ver, "status", "ok") != "ok":
+        title += "\nFAILED: outside its bounds"
+    ax.set_title(title, fontsize=9)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7, loc="best")
     axes.flat[0].legend(fontsize=7, loc="best")
