@@ -47,13 +47,15 @@ def one_at_a_time(sur, h, a, m, freq):
     k = np.empty((2, h.size, freq.size), dtype=complex)
     fo = np.empty((2, h.size, freq.size), dtype=bool)
     for j, f in enumerate(freq):
-        k[:, :, j] = sur.local_modes(h, a, m, [f]).k[:, :, 0]
-        fo[:, :, j] = sur.last_first_order[:, :, 0]
+        one = sur.local_modes(h, a, m, [f])
+        k[:, :, j] = one.k[:, :, 0]
+        fo[:, :, j] = one.is_first_order[:, :, 0]
     return k, fo
 
 
 def _grid_call(sur, h, a, m, freq):
-    return sur.local_modes(h, a, m, freq).k, sur.last_first_order.copy()
+    modes = sur.local_modes(h, a, m, freq)
+    return modes.k, modes.is_first_order
 
 
 def check_study(name: str, seeds: int) -> str:

@@ -5,9 +5,9 @@ repeats is reported, with the median beside it):
 
 - the WKB march alone (``optgrade.propagation._wkb.march``) on precomputed local modes;
 - the surrogate call ``local_modes`` for the same cells (tables built beforehand), all points
-  and ``path_only`` (the points the march reads);
-- the total ``trace`` (``optgrade.propagation._wkb.trace``: path-only surrogate call + march), and the
-  same with every point solved (``path_only=False``);
+  and the row request ``WKB_PATH`` (the points the march reads);
+- the total ``trace`` (``optgrade.propagation._wkb.trace``: path-only surrogate call + march),
+  and the same with every point solved (``path_only=False``);
 - memory: tracemalloc peak and retained size after scoring N layouts in a row, to show it is
   flat in N (nothing accumulates).
 
@@ -32,7 +32,7 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from optgrade.layout import layout_from_cells  # noqa: E402
-from optgrade.propagation._wkb import march, trace  # noqa: E402
+from optgrade.propagation._wkb import WKB_PATH, march, trace  # noqa: E402
 
 N_CELLS, N_FREQ = 60, 256
 
@@ -107,7 +107,7 @@ def main() -> None:
         print(f"surrogate local_modes, all points: best {best_s * 1e3:.2f} ms, "
               f"median {med_s * 1e3:.2f} ms")
         call = lambda: surrogate.local_modes(lay.height, lay.spacing, lay.head_mass, freq,  # noqa: E731
-                                             path_only=True)
+                                             path=WKB_PATH)
         best_s, med_s = _timeit(call, repeat=15, number=2)
         print(f"surrogate local_modes, path only:  best {best_s * 1e3:.2f} ms, "
               f"median {med_s * 1e3:.2f} ms")

@@ -252,7 +252,7 @@ def test_channel_map_with_nothing_to_show_says_so():
 
 def test_nothing_past_the_turning_point_or_on_the_other_branch_is_read():
     """The march reads the followed branch up to its first cell without a root and the other
-    branch only at the entry cell (what ``local_modes(..., path_only=True)`` relies on):
+    branch only at the entry cell (what its row request ``WKB_PATH`` relies on):
     filling every other point with other values changes nothing."""
     rng = np.random.default_rng(5)
     n, nf = 30, 9
@@ -285,3 +285,35 @@ def test_nothing_past_the_turning_point_or_on_the_other_branch_is_read():
         np.testing.assert_array_equal(ref.angle[c], other.angle[c])
     np.testing.assert_array_equal(ref.eps_max, other.eps_max)
     np.testing.assert_array_equal(ref.phase, other.phase)
+
+
+def test_trace_asks_the_dispersion_for_its_path_and_reads_its_rayleigh_speed():
+    """`trace` asks the dispersion stage (`optgrade.dispersion.Dispersion`) for the march's row
+    request ``WKB_PATH`` (or every point with ``path_only=False``) and takes cR from its ``cr``
+    unless given: the entry step then reflects ((K1 - kR)/(K1 + kR))^2 with that kR (the
+    normal-incidence impedance-step estimate of the module docstring)."""
+    from optgrade.dispersion import Dispersion, RowPath
+    from optgrade.propagation import WKB_PATH, trace
+
+    freq = np.linspace(20e3, 60e3, 5)
+    lay = layout_from_cells(np.full(6, 5e-3), np.full(6, 3e-3), 1e-3)
+    kr = 2 * np.pi * freq / CR
+    modes = _modes(np.broadcast_to(1.5 * kr, (6, freq.size)))
+
+    class Toy:
+        cr = CR
+        paths: list = []
+
+        def local_modes(self, height, spacing, head_mass, f, *, path=None):
+            self.paths.append(path)
+            return modes
+
+    toy = Toy()
+    assert isinstance(toy, Dispersion)
+    tr = trace(lay, toy, freq)
+    np.testing.assert_allclose(tr.entry_reflection, (0.5 / 2.5) ** 2, rtol=1e-12)
+    trace(lay, toy, freq, path_only=False)
+    tr2 = trace(lay, toy, freq, cr=2.0 * CR)  # kR halved: K1 = 3 kR
+    np.testing.assert_allclose(tr2.entry_reflection, (2.0 / 4.0) ** 2, rtol=1e-12)
+    assert toy.paths == [WKB_PATH, None, WKB_PATH]
+    assert WKB_PATH == RowPath((0, 1))

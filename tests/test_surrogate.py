@@ -8,7 +8,17 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from optgrade.dispersion import LocalModes, Surrogate, direct_local_modes, surrogate_for_study
+from optgrade.dispersion import (
+    ABSENT,
+    FIRST_ORDER,
+    NOT_SOLVED,
+    ROOT,
+    LocalModes,
+    RowPath,
+    Surrogate,
+    direct_local_modes,
+    surrogate_for_study,
+)
 from optgrade.ground import Substrate
 from optgrade.resonators import Rod
 
@@ -102,12 +112,13 @@ def test_frequency_continuation_changes_nothing(which, bench_sur, site_sur):
     h, a, m = rng.uniform(h_lo, h_hi, 12), rng.uniform(a_lo, a_hi, 12), rng.uniform(m_lo, m_hi, 12)
     freq = np.linspace(*study.goal.band, 256)
     run = sur.local_modes(h, a, m, freq)
-    run_fo = sur.last_first_order.copy()
+    run_fo = run.is_first_order
     one_k = np.empty_like(run.k)
     one_fo = np.empty_like(run_fo)
     for j, f in enumerate(freq):
-        one_k[:, :, j] = sur.local_modes(h, a, m, [f]).k[:, :, 0]
-        one_fo[:, :, j] = sur.last_first_order[:, :, 0]
+        one = sur.local_modes(h, a, m, [f])
+        one_k[:, :, j] = one.k[:, :, 0]
+        one_fo[:, :, j] = one.is_first_order[:, :, 0]
     exists, kept = np.isfinite(one_k), np.isfinite(run.k)
     assert exists.sum() > 1000
     assert not (exists & ~kept).any(), "continuation dropped a branch the full scan finds"
@@ -142,21 +153,22 @@ def _rows(study, rng, n=60):
 
 @pytest.mark.parametrize("which", ["bench", "site"])
 def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
-    """``path_only`` solves only the points the WKB march reads (the branch chosen at the entry
-    cell, up to the first cell without a root). On a linear grading and three random rows of
-    60 cells x 128 frequencies of each example study: the march gives the same branches and
-    turning points and fractions within 1e-8; every point the march reads is solved, equal to
-    the full solve within 1e-6 (relative; frequency continuation runs over fewer frequencies
-    per cell); and far fewer roots are solved (self-consistency of a shortcut; the accuracy
+    """The WKB march's row request (``WKB_PATH``) solves only the points the march reads (the
+    branch chosen at the entry cell, up to the first cell without a root). On a linear grading
+    and three random rows of 60 cells x 128 frequencies of each example study: the march gives
+    the same branches and turning points and fractions within 1e-8; every point the march reads
+    is solved, equal to the full solve within 1e-6 (relative; frequency continuation runs over
+    fewer frequencies per cell) and with the same status; every other point has status
+    NOT_SOLVED; and far fewer roots are solved (self-consistency of a shortcut; the accuracy
     references are the direct-solve and full-wave checks)."""
-    from optgrade.propagation import CHANNELS, march
+    from optgrade.propagation import CHANNELS, WKB_PATH, march
 
     study, sur = bench_sur if which == "bench" else site_sur
     freq = np.linspace(*study.goal.band, 128)
     n_full = n_path = 0
     for lay in _rows(study, np.random.default_rng(3)):
         args = (lay.height, lay.spacing, lay.head_mass, freq)
-        full, part = sur.local_modes(*args), sur.local_modes(*args, path_only=True)
+        full, part = sur.local_modes(*args), sur.local_modes(*args, path=WKB_PATH)
         t_full = march(full, lay.x, lay.spacing, freq, study.substrate.cr)
         t_part = march(part, lay.x, lay.spacing, freq, study.substrate.cr)
         assert np.array_equal(t_full.branch, t_part.branch)
@@ -176,6 +188,15 @@ def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
         read[br, :, np.arange(freq.size)] = on_path.T
         read[:, 0, :] = True
         assert not (np.isfinite(part.k) & ~read).any()
+        # solved: those and the turning cell, whose status says it has no root
+        n_on = on_path.sum(axis=0)
+        turn = (t_full.branch >= 0) & (n_on < 60)
+        read[br[turn], n_on[turn], np.flatnonzero(turn)] = True
+        assert np.all(part.status[~read] == NOT_SOLVED)
+        assert np.all(part.status[br[turn], n_on[turn], np.flatnonzero(turn)] == ABSENT)
+        both = read & part.is_solved
+        assert np.array_equal(part.status[both], full.status[both])
+        assert part.is_solved[br, :, np.arange(freq.size)].T[on_path].all()
         n_full += int(np.isfinite(full.k).sum())
         n_path += int(np.isfinite(part.k).sum())
     assert n_path < 0.7 * n_full
@@ -315,10 +336,120 @@ def test_real_arithmetic_imaginary_compliance_matches_complex():
     """The kernel's real-arithmetic Im G below kT (channel split) equals Im of the complex
     surface compliance on both sides of kL, to 1e-12 relative (same formula, two arithmetics;
     steel-like speeds, values recalled from memory, only their ratio matters here)."""
-    from optgrade.dispersion._surrogate import _compliance, _im_compliance
+    from optgrade.ground._halfspace import compliance_at, compliance_im_at
 
     w, cl, ct, mu = 2 * np.pi * 150e3, 5900.0, 3200.0, 80e9
     kl2, kt2 = (w / cl) ** 2, (w / ct) ** 2
     for q in np.linspace(1e-3, 0.999, 41) * kt2:
-        ref = _compliance(q + 0j, kl2 + 0j, kt2 + 0j, mu + 0j).imag
-        assert _im_compliance(q, kl2, kt2, mu) == pytest.approx(ref, rel=1e-12, abs=0.0)
+        ref = compliance_at(q + 0j, kl2 + 0j, kt2 + 0j, mu + 0j).imag
+        assert compliance_im_at(q, kl2, kt2, mu) == pytest.approx(ref, rel=1e-12, abs=0.0)
+
+
+def test_status_says_which_points_are_roots(site_sur):
+    """The per-point status of a full call (contract in `optgrade.dispersion._modes`): every
+    point solved, k finite exactly at ROOT and FIRST_ORDER points; the direct solver fills the
+    same codes (self-consistency of the status bookkeeping on 12 random cells x 256 frequencies
+    of the site example, the study whose lossy soil gives first-order points)."""
+    study, sur = site_sur
+    rng = np.random.default_rng(11)
+    (h_lo, h_hi), (a_lo, a_hi) = study.layout.height, study.layout.spacing
+    h, a = rng.uniform(h_lo, h_hi, 12), rng.uniform(a_lo, a_hi, 12)
+    lm = sur.local_modes(h, a, 0.0, np.linspace(*study.goal.band, 256))
+    assert lm.status.dtype == np.int8 and lm.status.shape == lm.k.shape
+    assert set(np.unique(lm.status)) <= {ABSENT, ROOT, FIRST_ORDER}
+    has_root = (lm.status == ROOT) | (lm.status == FIRST_ORDER)
+    assert np.array_equal(np.isfinite(lm.k), has_root)
+    assert (lm.status == ROOT).sum() > 1000 and (lm.status == ABSENT).sum() > 0
+    ref = direct_local_modes(sur.substrate, sur.rod, sur.row_pitch, h[:2], a[:2], 0.0,
+                             np.linspace(*study.goal.band, 8), sur.model)
+    assert set(np.unique(ref.status)) <= {ABSENT, ROOT, FIRST_ORDER}
+    assert np.array_equal(np.isfinite(ref.k), ref.status != ABSENT)
+
+
+def test_row_request_follows_the_callers_entry_order(bench_sur):
+    """A row request with the upper branch first (``RowPath((1, 0))``): at the entry cell
+    branch 1 is solved at every frequency and branch 0 only where branch 1 has no root; along
+    the row the followed branch is solved up to and including its first cell without a root,
+    equal to the full solve within 1e-6 (relative), and nothing else is solved."""
+    study, sur = bench_sur
+    # the entry rod (8 mm) has the upper branch over part of the band, the lower over the rest
+    h = np.linspace(8e-3, study.layout.height[1], 60)
+    a = np.full(60, 0.5 * sum(study.layout.spacing))
+    freq = np.linspace(*study.goal.band, 128)
+    args = (h, a, 0.0, freq)
+    full, part = sur.local_modes(*args), sur.local_modes(*args, path=RowPath((1, 0)))
+    assert part.is_solved[1, 0].all()
+    upper_at_entry = np.isfinite(full.k[1, 0])
+    assert upper_at_entry.any() and (~upper_at_entry).any()
+    assert np.array_equal(part.is_solved[0, 0], ~upper_at_entry)
+    br = np.where(upper_at_entry, 1, np.where(np.isfinite(full.k[0, 0]), 0, -1))
+    expected = np.zeros(full.k.shape, dtype=bool)
+    for j in np.flatnonzero(br >= 0):
+        ok = np.isfinite(full.k[br[j], :, j])
+        n = int(np.argmin(ok)) + 1 if not ok.all() else ok.size
+        expected[br[j], :n, j] = True
+    expected[:, 0] |= part.is_solved[:, 0]
+    assert np.array_equal(part.is_solved, expected)
+    on = expected & np.isfinite(full.k)
+    assert np.array_equal(np.isfinite(part.k), on)
+    assert np.max(np.abs(part.k[on] - full.k[on]) / np.abs(full.k[on])) < 1e-6
+
+
+def test_row_request_refuses_bad_branches():
+    for bad in ((), (0, 0), (2,), (1, 3)):
+        with pytest.raises(ValueError, match="entry_order"):
+            RowPath(bad)
+
+
+@pytest.mark.parametrize("lossy", [False, True])
+def test_compiled_point_functions_match_the_numpy_physics(lossy):
+    """The half-space's compiled point functions (`optgrade.ground._halfspace`, what the kernel
+    calls) against its numpy functions (what the table build and the direct solver call; those
+    are checked against published values in tests/test_halfspace.py) on 2000 random complex
+    xi^2 about the cone edges: Rayleigh function and compliance within 1e-12 (relative), the
+    slopes against a central difference of the numpy form within 1e-5, the shear share and the
+    lossless Re G / Im G on the real axis within 1e-12. Steel-like speeds, values recalled from
+    memory; only their ratios matter."""
+    from optgrade.ground import Substrate, compliance_sq, rayleigh_function, shear_share
+    from optgrade.ground._halfspace import (
+        compliance_at,
+        compliance_im_at,
+        compliance_re_at,
+        compliance_slope_at,
+        rayleigh_at,
+        rayleigh_slope_at,
+        shear_share_at,
+    )
+
+    sub = Substrate(7800.0, 5900.0, 3200.0, 0.03 if lossy else 0.0)
+    w = 2 * np.pi * 100e3
+    clc, ctc = sub.complex_speeds
+    kl2, kt2, mu = (w / clc) ** 2, (w / ctc) ** 2, sub.complex_mu
+    rng = np.random.default_rng(5)
+    xi = w / sub.ct * rng.uniform(0.05, 3.0, 2000) * np.exp(1j * rng.uniform(-0.05, 0.05, 2000))
+    q = xi * xi
+    r_np = rayleigh_function(xi, w, clc, ctc)
+    g_np = compliance_sq(q, w, sub)
+    for j in range(q.size):
+        assert rayleigh_at(q[j], kl2, kt2) == pytest.approx(r_np[j], rel=1e-12)
+        g, dg = compliance_slope_at(q[j], kl2, kt2, mu)
+        assert compliance_at(q[j], kl2, kt2, mu) == pytest.approx(g_np[j], rel=1e-12)
+        assert g == pytest.approx(g_np[j], rel=1e-12)
+        hq = 1e-6 * abs(q[j])
+        fd = (compliance_sq(q[j] + hq, w, sub) - compliance_sq(q[j] - hq, w, sub)) / (2 * hq)
+        assert dg == pytest.approx(fd, rel=1e-5)
+        rr, drr, _ = rayleigh_slope_at(q[j], kl2, kt2)
+        assert rr == pytest.approx(r_np[j], rel=1e-12)
+        fd = (rayleigh_function(np.sqrt(q[j] + hq), w, clc, ctc)
+              - rayleigh_function(np.sqrt(q[j] - hq), w, clc, ctc)) / (2 * hq)
+        assert drr == pytest.approx(fd, rel=1e-5)
+    kl2r, kt2r, mur = (w / sub.cl) ** 2, (w / sub.ct) ** 2, sub.mu
+    qr = kt2r * rng.uniform(0.01, 3.0, 500)
+    g_r = compliance_sq(qr, w, sub.lossless())
+    share = shear_share(qr, kl2r, kt2r)
+    for j in range(qr.size):
+        assert compliance_re_at(qr[j], kl2r, kt2r, mur) == pytest.approx(g_r[j].real, rel=1e-12)
+        assert shear_share_at(qr[j], kl2r, kt2r) == pytest.approx(share[j], rel=1e-12)
+        if qr[j] < kt2r:
+            im = compliance_im_at(qr[j], kl2r, kt2r, mur)
+            assert im == pytest.approx(g_r[j].imag, rel=1e-12)

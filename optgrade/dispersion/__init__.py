@@ -1,5 +1,5 @@
 """Dispersion stage: local Bloch modes of each cell (lattice sums, direct band solver, fast
-surrogate, and the factory that picks one of them for a study)."""
+surrogate with its compiled kernel), the row request and the dispersion protocol."""
 
 from __future__ import annotations
 
@@ -13,7 +13,26 @@ from optgrade.dispersion._direct import (  # noqa: F401
     solve_points,
     validity_warnings,
 )
-from optgrade.dispersion._factory import DirectDispersion, dispersion_for_study  # noqa: F401
+from optgrade.dispersion._factory import (  # noqa: F401
+    DirectDispersion,
+    dispersion_for_study,
+)
+from optgrade.dispersion._kernel import solve_grid  # noqa: F401
+from optgrade.dispersion._kernel_roots import (  # noqa: F401
+    FD_RETRY,
+    GAP_KEEP,
+    GAP_RESCAN,
+    GAP_RESCAN_MAX,
+    GAP_STEP,
+    ILLINOIS_TOL,
+    MAX_ILLINOIS,
+    N_LOSS_STAGES,
+    N_NEWTON,
+    N_NEWTON_D,
+    N_SCAN,
+    NEWTON_ACCEPT,
+    NEWTON_TOL,
+)
 from optgrade.dispersion._lattice import (  # noqa: F401
     MODELS,
     default_harmonics,
@@ -23,36 +42,33 @@ from optgrade.dispersion._lattice import (  # noqa: F401
     main_orders,
     radiation_parts,
 )
+from optgrade.dispersion._modes import (  # noqa: F401
+    ABSENT,
+    FIRST_ORDER,
+    NOT_SOLVED,
+    ROOT,
+    Dispersion,
+    LocalModes,
+    RowPath,
+)
 from optgrade.dispersion._surrogate import (  # noqa: F401
-    FD_RETRY,
     FORMAT_VERSION,
     FREQ_PAD,
-    GAP_KEEP,
-    GAP_RESCAN,
-    GAP_RESCAN_MAX,
-    GAP_STEP,
-    ILLINOIS_TOL,
     LEVEL_STEP,
-    MAX_ILLINOIS,
     N_FREQ,
     N_KAPPA,
-    N_LOSS_STAGES,
-    N_NEWTON,
-    N_NEWTON_D,
-    N_SCAN,
-    NEWTON_ACCEPT,
-    NEWTON_TOL,
-    LocalModes,
     Surrogate,
     default_cache_dir,
-    solve_grid,
     surrogate_for_study,
 )
 
 __all__ = [
+    "ABSENT",
     "Bands",
     "Branch",
     "Cell",
+    "Dispersion",
+    "FIRST_ORDER",
     "FD_RETRY",
     "FORMAT_VERSION",
     "FREQ_PAD",
@@ -66,6 +82,7 @@ __all__ = [
     "MAX_ILLINOIS",
     "MODELS",
     "NEWTON_ACCEPT",
+    "NOT_SOLVED",
     "NEWTON_TOL",
     "N_FREQ",
     "N_KAPPA",
@@ -73,6 +90,8 @@ __all__ = [
     "N_NEWTON",
     "N_NEWTON_D",
     "N_SCAN",
+    "ROOT",
+    "RowPath",
     "Surrogate",
     "default_cache_dir",
     "DirectDispersion",

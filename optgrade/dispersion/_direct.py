@@ -509,9 +509,10 @@ def direct_local_modes(
 
     Returns
     -------
-    optgrade.dispersion._surrogate.LocalModes
+    optgrade.dispersion.LocalModes
+        Every point solved: status ROOT, FIRST_ORDER or ABSENT.
     """
-    from optgrade.dispersion._surrogate import LocalModes
+    from optgrade.dispersion._modes import LocalModes, status_from
 
     if model not in MODELS:
         raise ValueError(f"model must be one of {MODELS}, got {model!r}")
@@ -528,10 +529,12 @@ def direct_local_modes(
     n_main = main_orders(float(ap.max()), float(w.max()) / substrate.cr, model)
     rest = _direct_rest(w, ap, substrate, row_pitch, rod.radius, model, n_main)
     res = solve_points(w, iz, ap, substrate, row_pitch, rod.radius, model, rest, n_main)
+    k = res["k"].reshape(2, n_cells, n_freq)
     return LocalModes(
-        k=res["k"].reshape(2, n_cells, n_freq),
+        k=k,
         shares=res["shares"].reshape(2, 5, n_cells, n_freq),
         angle=res["angle"].reshape(2, 4, n_cells, n_freq),
+        status=status_from(k, res["is_first_order"].reshape(2, n_cells, n_freq)),
     )
 
 

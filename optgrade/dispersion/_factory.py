@@ -18,7 +18,8 @@ from numpy.typing import ArrayLike
 
 from optgrade.dispersion._direct import direct_local_modes, validity_warnings
 from optgrade.dispersion._lattice import MODELS
-from optgrade.dispersion._surrogate import Surrogate, surrogate_for_study
+from optgrade.dispersion._modes import Dispersion, RowPath
+from optgrade.dispersion._surrogate import surrogate_for_study
 from optgrade.ground import Ground, ground_of
 from optgrade.resonators import Resonator, resonator_of
 
@@ -91,10 +92,12 @@ class DirectDispersion:
         spacing: ArrayLike,
         head_mass: ArrayLike,
         freq: ArrayLike,
+        *,
+        path: RowPath | None = None,
     ) -> LocalModes:
         """Local Bloch modes of cells (arrays broadcast together: height m, spacing m, head
-        mass kg) at frequencies ``freq`` (Hz); see `direct_local_modes`. Every point is solved
-        (no path-only shortcut)."""
+        mass kg) at frequencies ``freq`` (Hz); see `direct_local_modes`. Every point is solved,
+        whatever the row request ``path``."""
         return direct_local_modes(
             self.substrate,
             self.rod,
@@ -109,7 +112,7 @@ class DirectDispersion:
 
 def dispersion_for_study(
     study: Study, model: str | None = None, cache_dir=None
-) -> Surrogate | DirectDispersion:
+) -> Dispersion:
     """The dispersion engine for a validated study.
 
     The compiled surrogate (`Surrogate.from_study`, tables cached in ``cache_dir``) where both

@@ -54,22 +54,26 @@ its path only (cells past the turning point are never read).
 
 from __future__ import annotations
 
-import inspect
 import math
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
 from numba import njit
 from numpy.typing import ArrayLike
 
 from optgrade.channels import CHANNELS
+from optgrade.dispersion._modes import Dispersion, RowPath
 from optgrade.layout import Layout
 from optgrade.propagation._base import PROPAGATION_MODELS, PropagationModel, study_frequencies
 from optgrade.propagation._trace import Trace
 
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import Study
+
 __all__ = [
     "ADIABATIC_LIMIT",
     "Trace",
+    "WKB_PATH",
     "march",
     "trace",
     "WKBMarch",
@@ -150,6 +154,61 @@ def march(
 
 
 @njit(cache=True)
+def _path_of(k, f):
+    """Branch the march follows at frequency index f (0 lower where the entry cell has it, else
+    1 upper, -1 none) and the number of cells it crosses before the first without a root."""
+    k00 = k[0, 0, f]
+    k10 = k[1, 0, f]
+    if math.isfinite(k00.real) and math.isfinite(k00.imag):
+        br = 0
+    elif math.isfinite(k10.real) and math.isfinite(k10.imag):
+        br = 1
+    else:
+        return -1, 0
+    n_path = 0
+    while n_path < k.shape[1]:
+        kj = k[br, n_path, f]
+        if not (math.isfinite(kj.real) and math.isfinite(kj.imag)):
+            break
+        n_path += 1
+    return br, n_path
+
+
+@njit(cache=True)
+def _book_channels(f, br, n_path, sh, w_f, w_r, angle, x, a, fr, pos, ang):
+    """The five decay channels' fractions, positions and angles at frequency index f from the
+    cells' shares sh and the forward / return weights w_f, w_r of the path."""
+    # a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
+    swap = (2, 3, 0, 1, 4)
+    for c in range(5):
+        cs = swap[c]
+        leak = 0.0
+        xs = 0.0
+        for j in range(n_path):
+            part = sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]
+            leak += part
+            xs += part * (x[j] + 0.5 * a[j])
+        fr[2 + c, f] = leak
+        if leak > 0.0:
+            pos[2 + c, f] = xs / leak
+        if c < 4:
+            # a return-path part of channel c has the mirrored angle of channel swap[c]
+            num = 0.0
+            den = 0.0
+            for j in range(n_path):
+                af = angle[br, c, j, f]
+                ar = angle[br, cs, j, f]
+                if math.isfinite(af):
+                    num += sh[c, j] * af * w_f[j]
+                    den += sh[c, j] * w_f[j]
+                if math.isfinite(ar):
+                    num -= sh[cs, j] * ar * w_r[j]
+                    den += sh[cs, j] * w_r[j]
+            if den > 0.0:
+                ang[2 + c, f] = math.degrees(num / den)
+
+
+@njit(cache=True)
 def _march_kernel(k, shares, angle, x, a, freq, cr):
     """The march of `march`, one frequency at a time over the cells of its path. Returns
     fractions, positions and angles (7, n_freq) in the order of CHANNELS, eps_max, branch,
@@ -165,8 +224,6 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
     entry = np.ones(n_freq)
     phase = np.full(n_freq, np.nan)
     x_end = x[n_cells - 1] + a[n_cells - 1]
-    # a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
-    swap = np.array([2, 3, 0, 1, 4])
     tau = np.zeros(n_cells)
     cum = np.zeros(n_cells)
     sh = np.zeros((5, n_cells))
@@ -174,22 +231,9 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
     w_r = np.zeros(n_cells)
     for f in range(n_freq):
         # 1. branch chosen at the entry cell, then followed up to the first cell without root
-        k00 = k[0, 0, f]
-        k10 = k[1, 0, f]
-        if math.isfinite(k00.real) and math.isfinite(k00.imag):
-            br = 0
-        elif math.isfinite(k10.real) and math.isfinite(k10.imag):
-            br = 1
-        else:
-            br = -1
-        n_path = 0
+        br, n_path = _path_of(k, f)
         if br >= 0:
             branch[f] = br
-            while n_path < n_cells:
-                kj = k[br, n_path, f]
-                if not (math.isfinite(kj.real) and math.isfinite(kj.imag)):
-                    break
-                n_path += 1
         is_turning = n_path < n_cells
         # 2. entry step
         kr = 2.0 * math.pi * freq[f] / cr
@@ -222,32 +266,7 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
             scale = p_in / s_sum
             w_f[j] = math.exp(tau[j] - cum[j]) * gone * scale
             w_r[j] = math.exp(cum[j] - total) * gone * p_turn * scale if p_turn > 0.0 else 0.0
-        for c in range(5):
-            cs = swap[c]
-            leak = 0.0
-            xs = 0.0
-            for j in range(n_path):
-                part = sh[c, j] * w_f[j] + sh[cs, j] * w_r[j]
-                leak += part
-                xs += part * (x[j] + 0.5 * a[j])
-            fr[2 + c, f] = leak
-            if leak > 0.0:
-                pos[2 + c, f] = xs / leak
-            if c < 4:
-                # a return-path part of channel c has the mirrored angle of channel swap[c]
-                num = 0.0
-                den = 0.0
-                for j in range(n_path):
-                    af = angle[br, c, j, f]
-                    ar = angle[br, cs, j, f]
-                    if math.isfinite(af):
-                        num += sh[c, j] * af * w_f[j]
-                        den += sh[c, j] * w_f[j]
-                    if math.isfinite(ar):
-                        num -= sh[cs, j] * ar * w_r[j]
-                        den += sh[cs, j] * w_r[j]
-                if den > 0.0:
-                    ang[2 + c, f] = math.degrees(num / den)
+        _book_channels(f, br, n_path, sh, w_f, w_r, angle, x, a, fr, pos, ang)
         # 5. exit
         reflected = entry[f] + p_in * back_out
         transmitted = p_in * through
@@ -276,32 +295,15 @@ def _march_kernel(k, shares, angle, x, a, freq, cr):
     return fr, pos, ang, eps_max, branch, x_turn, entry, phase
 
 
-def _rayleigh_speed_of(surrogate: Any) -> float:
-    """Rayleigh speed (m/s) of the substrate behind a surrogate (duck-typed lookup)."""
-    for path in ("cr", "substrate.cr", "substrate_cr"):
-        obj = surrogate
-        try:
-            for part in path.split("."):
-                obj = getattr(obj, part)
-        except AttributeError:
-            continue
-        if obj is not None and np.isfinite(float(obj)):
-            return float(obj)
-    raise AttributeError("surrogate does not expose the substrate's Rayleigh speed (cr)")
-
-
-def accepts_path_only(surrogate: Any) -> bool:
-    """Whether ``surrogate.local_modes`` accepts the ``path_only`` keyword."""
-    try:
-        params = inspect.signature(surrogate.local_modes).parameters
-    except (TypeError, ValueError):
-        return False
-    return "path_only" in params
+#: the points the march reads (what it asks the dispersion stage for): per frequency the
+#: branch chosen at the entry cell, the lower (surface) branch first, followed up to and
+#: including the first cell without a root (steps 1 and 4 of the module docstring)
+WKB_PATH = RowPath(entry_order=(0, 1))
 
 
 def trace(
     layout: Layout,
-    surrogate: Any,
+    dispersion: Dispersion,
     freq: ArrayLike,
     *,
     cr: float | None = None,
@@ -313,42 +315,45 @@ def trace(
     ----------
     layout : Layout
         The graded row (SI).
-    surrogate : object
-        Anything with ``local_modes(height, spacing, head_mass, freq) -> LocalModes`` (the fast
-        surrogate, or a direct solver with the same method).
+    dispersion : Dispersion
+        The dispersion stage (`optgrade.dispersion.Dispersion`: ``cr`` and
+        ``local_modes(height, spacing, head_mass, freq, *, path=None) -> LocalModes``), e.g. the
+        fast surrogate or the direct solver.
     freq : array_like
         Frequencies (Hz).
     cr : float, optional
-        Rayleigh speed of the substrate (m/s); read from the surrogate when omitted.
+        Rayleigh speed of the substrate (m/s); ``dispersion.cr`` when omitted.
     path_only : bool
-        Ask the surrogate for the points the march reads only (``local_modes(...,
-        path_only=True)``, where its ``local_modes`` takes that keyword); the trace is the same.
+        Ask for the points the march reads only (the row request `WKB_PATH`); the trace is the
+        same as from every point.
 
     Returns
     -------
     Trace
     """
     freq = np.atleast_1d(np.asarray(freq, dtype=float))
-    args = (layout.height, layout.spacing, layout.head_mass, freq)
-    if path_only and accepts_path_only(surrogate):
-        modes = surrogate.local_modes(*args, path_only=True)
-    else:
-        modes = surrogate.local_modes(*args)
-    speed = _rayleigh_speed_of(surrogate) if cr is None else float(cr)
+    modes = dispersion.local_modes(
+        layout.height,
+        layout.spacing,
+        layout.head_mass,
+        freq,
+        path=WKB_PATH if path_only else None,
+    )
+    speed = float(dispersion.cr) if cr is None else float(cr)
     return march(modes, layout.x, layout.spacing, freq, speed)
 
 
 def trace_study(
-    study: Any, layout: Layout, surrogate: Any = None, *, path_only: bool = True
+    study: Study, layout: Layout, dispersion: Dispersion | None = None, *, path_only: bool = True
 ) -> Trace:
     """Trace a layout over the study's goal band, building the study's surrogate if needed."""
-    if surrogate is None:
+    if dispersion is None:
         from optgrade.dispersion import surrogate_for_study
 
-        surrogate = surrogate_for_study(study)
+        dispersion = surrogate_for_study(study)
     return trace(
         layout,
-        surrogate,
+        dispersion,
         study_frequencies(study),
         cr=float(study.substrate.cr),
         path_only=path_only,
@@ -362,16 +367,18 @@ class WKBMarch(PropagationModel):
     Parameters
     ----------
     study : Study
-    dispersion : object, optional
-        Anything with ``local_modes(height, spacing, head_mass, freq)`` (the study's surrogate
-        when omitted, for ``model`` or the study's ``goal.model``).
+    dispersion : Dispersion, optional
+        The dispersion stage (`optgrade.dispersion.Dispersion`; the study's own when omitted,
+        for ``model`` or the study's ``goal.model``). The march asks it for `WKB_PATH` only.
     model : str, optional
         Lattice-sum variant of the dispersion ("lattice", "line", "homogenised").
     """
 
     name = "wkb"
 
-    def __init__(self, study: Any, dispersion: Any = None, model: str | None = None) -> None:
+    def __init__(
+        self, study: Study, dispersion: Dispersion | None = None, model: str | None = None
+    ) -> None:
         super().__init__(study)
         if dispersion is None:
             from optgrade.dispersion import dispersion_for_study
