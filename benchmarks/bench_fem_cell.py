@@ -93,7 +93,7 @@ def line_f(k: float, head_mass: float, f_guess: float) -> float:
 
 
 def _bands_k(freq: np.ndarray, head_mass: float) -> np.ndarray:
-    """Branch 0 of optgrade.dispersion._direct.solve_bands(model="line") at freq (Hz); nan if unavailable."""
+    """Branch 0 of optgrade.dispersion.solve_bands(model="line") at freq (Hz), nan if absent."""
     try:
         from optgrade.dispersion import Cell, solve_bands
     except ImportError:
@@ -257,9 +257,10 @@ def timings(n_k: int, repeat: int) -> None:
         sub, rod = _engine()
         cell = Cell(sub, rod, HEIGHT, SPACING, ROW_PITCH, 0.0)
         t, tm, c, _ = _timed(lambda: solve_bands(cell, freq, model="line"), repeat)
-        rows.append((f"optgrade.dispersion._direct.solve_bands(model='line'), {n_k} frequencies", t, tm, c, n_k))
+        label = f"optgrade.dispersion.solve_bands(model='line'), {n_k} frequencies"
+        rows.append((label, t, tm, c, n_k))
     except ImportError as exc:
-        rows.append((f"optgrade.dispersion._direct not importable ({exc.name})", np.nan, np.nan, np.nan,
+        rows.append((f"optgrade.dispersion not importable ({exc.name})", np.nan, np.nan, np.nan,
                      n_k))
     t, tm, c, _ = _timed(lambda: [line_k(f, 0.0) for f in freq], repeat)
     rows.append((f"line model, brentq on lattice_sum, {n_k} frequencies", t, tm, c, n_k))

@@ -49,7 +49,7 @@ __all__ = [
     "study_from_text",
 ]
 
-#: Caution carried by every site-scale output (physics.md section 8); one wording everywhere.
+#: Caution carried by every site-scale output (docs/physics.md section 8); one wording everywhere.
 SITE_CAUTION = (
     "CAUTION (site scale): simplified model (thin axial rods on a homogeneous elastic half-space, "
     "adiabatic propagation); soil layering and the coupling of the posts to the ground are not "

@@ -184,7 +184,7 @@ def test_line_model_lattice_sum_matches_fe(case, fe_rod, fe_head):
 @pytest.mark.slow
 @pytest.mark.parametrize("case", ["rod", "head_mass"])
 def test_solve_bands_line_lower_branch_matches_fe(case, fe_rod, fe_head):
-    """`optgrade.dispersion._direct.solve_bands(model="line")`: lower bound branch through the FE points.
+    """`optgrade.dispersion.solve_bands(model="line")`: lower bound branch through the FE points.
 
     Issue 3 requirement, as the user sees it: at each FE frequency below the zone edge (>= 5
     per case, all below the gap) the band solver's branch 0 is bound (K'' = 0) and its K agrees
@@ -241,7 +241,7 @@ def test_solve_bands_line_upper_branch_matches_fe(fe_rod):
 @pytest.mark.slow
 @pytest.mark.parametrize("case", ["rod", "head_mass"])
 def test_surrogate_line_lower_branch_matches_fe(case, fe_rod, fe_head, tmp_path):
-    """`optgrade.dispersion._surrogate.Surrogate(model="line").local_modes`: branch 0 through the FE points.
+    """`optgrade.dispersion.Surrogate(model="line").local_modes`: branch 0 through the FE points.
 
     The fast path the search and propagation stages use, checked against the same FE
     reference: bound and within 2 % in K at every FE frequency below the zone edge (>= 5).

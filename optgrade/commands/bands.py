@@ -37,7 +37,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = ["add_parser", "run", "run_bands", "SITE_CAUTION"]
 
-#: Printed and written for site-scale studies (physics.md section 8).
+#: Printed and written for site-scale studies (docs/physics.md section 8).
 
 RADIATING = ("forward_shear", "forward_compressional", "backward_shear", "backward_compressional")
 SHARES = RADIATING + ("absorbed",)

@@ -19,12 +19,12 @@ from optgrade.study import SITE_CAUTION, Study, first_resonance_range
 
 __all__ = ["SITE_CAUTION", "add_parser", "derived_figures", "run", "study_warnings"]
 
-#: Caution carried by every site-scale output (physics.md section 8).
+#: Caution carried by every site-scale output (docs/physics.md section 8).
 
 #: Standard gravity (m/s^2) for self-weight checks.
 GRAVITY = 9.80665
 #: Greenhill coefficient for a uniform column fixed at the base and free at the top under its own
-#: weight, L_crit = (7.837 E I / (rho g A))^(1/3) (physics.md section 8; A. G. Greenhill 1881;
+#: weight, L_crit = (7.837 E I / (rho g A))^(1/3) (docs/physics.md section 8; A. G. Greenhill 1881;
 #: S. P. Timoshenko and J. M. Gere, *Theory of Elastic Stability*, 1961, section 2.10).
 GREENHILL = 7.837
 #: Safety factor asked of the head-mass buckling check (our choice, common practice order).
@@ -56,7 +56,7 @@ def greenhill_height(diameter: float, youngs_modulus: float, density: float) -> 
     """Self-weight buckling height of a solid round post, fixed base, free top (m).
 
     L_crit = (7.837 E I / (rho g A))^(1/3) with I / A = d^2 / 16 for a solid circle
-    (Greenhill 1881; Timoshenko and Gere 1961, section 2.10; physics.md section 8).
+    (Greenhill 1881; Timoshenko and Gere 1961, section 2.10; docs/physics.md section 8).
     """
     return (GREENHILL * youngs_modulus * diameter**2 / (16.0 * density * GRAVITY)) ** (1.0 / 3.0)
 
@@ -93,7 +93,7 @@ def derived_figures(study: Study) -> dict[str, Any]:
 
 
 def study_warnings(study: Study, figures: dict[str, Any] | None = None) -> list[str]:
-    """Warnings about a valid study (physics.md sections 4, 5 and 8)."""
+    """Warnings about a valid study (docs/physics.md sections 4.5, 5.8 and 8)."""
     fig = figures or derived_figures(study)
     sub, res, lay, goal, fab = (study.substrate, study.resonator, study.layout, study.goal,
                                 study.fabrication)

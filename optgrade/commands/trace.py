@@ -1,7 +1,7 @@
 """``optgrade trace STUDY --layout TABLE.csv --out DIR``: where a layout sends the power.
 
 Reads the study and a resonator table, computes the local modes of every cell over the study's
-goal band with the fast surrogate, marches the Rayleigh wave along the row (WKB, physics.md
+goal band with the fast surrogate, marches the Rayleigh wave along the row (WKB, docs/physics.md
 section 6) and writes
 
 - ``DIR/trace.json``: ``frequency_hz``, ``fractions`` / ``position_m`` / ``angle_deg`` (one list
@@ -33,7 +33,7 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = ["SITE_CAUTION", "add_parser", "run", "run_trace"]
 
-#: Printed and written for site-scale studies (physics.md section 8).
+#: Printed and written for site-scale studies (docs/physics.md section 8).
 
 FIGURES = ("elevation.png", "dispersion.png", "channel_map.png", "fractions.png")
 

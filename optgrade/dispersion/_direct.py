@@ -1,4 +1,4 @@
-"""Bloch band solver for one resonator cell: bound and leaky branches (physics.md section 5).
+"""Bloch band solver for one resonator cell: bound and leaky branches (docs/physics.md section 5.4).
 
 The dispersion relation is D(K, w) = 1/Z(w) - Sigma(K, w) = 0 (`optgrade.dispersion._lattice`).
 We split
@@ -465,7 +465,7 @@ def validity_warnings(
 ) -> list[str]:
     """Model-validity warnings for a frequency band (plain sentences).
 
-    * sideways radiation: 2 pi / b < kT (physics.md section 5);
+    * sideways radiation: 2 pi / b < kT (docs/physics.md section 5.8);
     * grating regime: kR >= 2 pi / a (informational; more main harmonics are used);
     * the resonator type's own notes (`Resonator.validity_notes`; for the axial rod: thin-rod
       theory stretched where d > lambda_r / 5, bending modes not represented).

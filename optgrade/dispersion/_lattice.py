@@ -1,4 +1,4 @@
-"""Lattice sums Sigma(K, w) of a periodic resonator array on a ground (physics.md section 5).
+"""Lattice sums Sigma(K, w) of a periodic resonator array on a ground (docs/physics.md section 5.1).
 
 The array supports a Bloch wave exp(i K x) at angular frequency w when 1/Z(w) = Sigma(K, w),
 with Z the base stiffness of one resonator (`optgrade.resonators.Resonator`). The ground enters
@@ -221,7 +221,7 @@ def lattice_sum(
     radius : float
         Contact radius r (m): rod radius (disc, 3-D) or half the strip width (2-D line).
     model : {"lattice", "line", "homogenised"}
-        See the module docstring (physics.md section 5).
+        See the module docstring (docs/physics.md section 5.1).
     n_harmonics : int, optional
         Half-width M of the static box in m (n scaled to the same |xi|); default |xi| r <= 12.
     exclude_main : bool or int
@@ -291,7 +291,7 @@ def radiation_parts(
 
     Each harmonic (m, n) with |xi_mn| < kT radiates; its Im G S^2/(a b) (computed for the
     lossless ground) is split into shear and compressional power (`Ground.shear_share`) and booked
-    forward if K' + 2 pi m/a > 0, backward otherwise (physics.md section 5).
+    forward if K' + 2 pi m/a > 0, backward otherwise (docs/physics.md section 5.6).
 
     Returns
     -------

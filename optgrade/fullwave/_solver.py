@@ -2,7 +2,7 @@
 
 The substrate is an elastic half-space cut to a finite box with convolutional perfectly matched
 layers (CPML) on the two far sides and the bottom and a free surface on top. The resonators are
-the 2-D line variant of the dispersion model (physics.md sections 5 and 7): every row of rods is
+the 2-D line variant of the dispersion model (docs/physics.md ss. 5.1 and 7): every row of rods is
 smeared along y, each rod is an axial bar with stiffness E A / b, mass rho_r A / b and head mass
 M / b per unit length of the row, standing on a strip of width d (its diameter) through which it
 presses with uniform traction and whose mean vertical velocity it follows.
@@ -40,7 +40,7 @@ Channel split (per frequency, normalised by a run without resonators, the *refer
 - Energy balance: the net power of the total field leaving the closed box plus the power the
   rods absorb must vanish; ``balance_error`` is its size relative to the incident power.
 
-All quantities inside are SI. Time dependence of the phasors is exp(-i w t) (physics.md).
+All quantities inside are SI. Time dependence of the phasors is exp(-i w t) docs/physics.md s. 2.
 """
 
 from __future__ import annotations
@@ -901,7 +901,7 @@ def force_radiation(freq: np.ndarray, x_nodes: np.ndarray, weights: np.ndarray,
     tractions, so its bulk radiation follows from the rod forces alone (no receiver line).
     Plane strain, potentials phi = A exp(i xi x - alpha z), psi = B exp(i xi x - beta z) with
     the outgoing branches alpha = -i sqrt(kL^2 - xi^2), beta = -i sqrt(kT^2 - xi^2) inside the
-    cones (physics.md conventions), free of shear traction and with szz(0) = -T(xi)
+    cones (docs/physics.md section 2), free of shear traction and with szz(0) = -T(xi)
     (Achenbach 1973, Lamb's problem; from memory). The downward flux -Re(sxz vx* + szz vz*) of
     the compressional (phi) and the shear (psi) part, each on its own, is integrated over its
     cone, (1/2 pi) int d xi (Parseval), with xi = k sin(t) (removes the cone-edge square roots).

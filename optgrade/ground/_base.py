@@ -50,7 +50,7 @@ class Ground(ABC):
 
     @abstractmethod
     def compliance_sq(self, xi2: ArrayLike, w: ArrayLike) -> np.ndarray:
-        """Vertical surface compliance G as a function of xi^2 (complex; docs/physics.md s. 3)."""
+        """Vertical surface compliance G as a function of xi^2 (complex; docs/physics.md s. 3.1)."""
 
     @abstractmethod
     def pole_function(self, xi: ArrayLike, w: ArrayLike) -> np.ndarray:

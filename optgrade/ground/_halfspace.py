@@ -1,9 +1,9 @@
 """The elastic half-space: Rayleigh function, Rayleigh root and vertical surface compliance.
 
-Conventions (physics.md section 2): time dependence exp(-i w t), z into the solid, vertical load
+Conventions (docs/physics.md s. 2): time dependence exp(-i w t), z into the solid, vertical load
 and displacement positive into the solid, SI units throughout.
 
-Outgoing branch (physics.md section 3): alpha = sqrt(xi^2 - kL^2) with Re alpha >= 0, taken as
+Outgoing branch (docs/physics.md s. 3.2): alpha = sqrt(xi^2 - kL^2) with Re alpha >= 0, taken as
 -i sqrt(kL^2 - xi^2) (principal root) inside the cone. The choice between the two forms is made on
 Re xi^2 against Re kL^2 (resp. kT^2), so the same expression continues analytically when a
 complex Bloch wavenumber moves off the real axis (leaky modes live on the improper sheet of the
@@ -159,7 +159,7 @@ def vertical_wavenumber(xi2: ArrayLike, k2: ArrayLike) -> np.ndarray:
     -------
     ndarray, complex
         sqrt(xi^2 - k^2) where Re xi^2 >= Re k^2, and -i sqrt(k^2 - xi^2) (principal roots) inside
-        the cone (physics.md section 3). On the real xi axis Re >= 0 (decaying or downgoing); off
+        the cone (docs/physics.md s. 3.2). On the real xi axis Re >= 0 (decaying or downgoing); off
         the axis the same expression is the analytic continuation used for leaky roots.
     """
     xi2 = np.asarray(xi2, dtype=complex)
@@ -236,7 +236,7 @@ def surface_compliance(xi: ArrayLike, w: ArrayLike, substrate: Substrate) -> np.
     """Vertical surface compliance G(xi, w) of the half-space, outgoing branch.
 
     G = - alpha kT^2 / (mu R(xi)) relates the vertical surface displacement to the vertical
-    surface traction in the wavenumber domain (physics.md section 3). The same expression serves
+    surface traction in the wavenumber domain (docs/physics.md s. 3.1). The same expression serves
     a 2-D line load (xi = horizontal wavenumber) and a 3-D point load (xi = |2-D wavevector|).
 
     Parameters

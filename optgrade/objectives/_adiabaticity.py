@@ -1,6 +1,6 @@
 """Goal ``adiabaticity`` (minimised penalty): how far the grading leaves the validity of the
 adiabatic (WKB) march, mean over the band of max(0, eps_max / 0.1 - 1), where eps_max is the
-largest adiabaticity parameter |K_{j+1} - K_j| / (a_j K_j^2) on the path (physics.md sec. 6:
+largest adiabaticity parameter |K_{j+1} - K_j| / (a_j K_j^2) on the path (docs/physics.md s. 6.6:
 results with eps above about 0.1 are outside the model's validity)."""
 
 from __future__ import annotations

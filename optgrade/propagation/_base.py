@@ -63,7 +63,7 @@ class PropagationModel(ABC):
 
 #: Registered propagation models by name.
 PROPAGATION_MODELS: Registry[PropagationModel] = Registry(
-    "propagation model", builtin=("optgrade.propagation._wkb",)
+    "propagation model", builtin=("optgrade.propagation._wkb", "optgrade.propagation._scattering")
 )
 
 

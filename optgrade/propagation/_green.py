@@ -1,6 +1,6 @@
 """Strip- or disc-averaged surface Green's function of the half-space, tabulated per study.
 
-The finite-row model (physics.md section 6b) couples resonator j to resonator k through
+The finite-row model (docs/physics.md section 13) couples resonator j to resonator k through
 
     g(x, w) = sum_n (1/2 pi) int G(k_n, w) S(k_n)^2 exp(i xi x) dxi,   k_n^2 = xi^2 + q_n^2,
 
@@ -10,7 +10,7 @@ only, strip of width d, S = sin(xi d/2)/(xi d/2). ``"lattice"`` (3-D row): rows 
 radius r = d/2 at pitch b across, in phase, S = 2 J1(k r)/(k r), q_n = 2 pi n/b; the n != 0
 terms are evanescent while q_1 exceeds the Rayleigh wavenumber (checked, else refused).
 
-Evaluation, per frequency (conventions of physics.md section 2: exp(-i w t), outgoing contour
+Evaluation, per frequency (conventions of docs/physics.md section 2: exp(-i w t), outgoing contour
 below +kR and above -kR):
 
 1. Rayleigh pole, analytically: p(xi) = A/(xi^2 - kR^2), A = 2 kR Res S(kR)^2, whose transform
@@ -84,7 +84,7 @@ _LAG_WE = _LAG_W * np.exp(_LAG_X)
 
 @njit(cache=True)
 def _vert(d, principal):
-    """sqrt(d) on the outgoing branch (-i sqrt(-d) inside the cone, physics.md section 3) on the
+    """sqrt(d) on the outgoing branch (-i sqrt(-d) inside the cone, docs/physics.md s. 3.2) on the
     real axis, or the principal root on the rotated contour (analytic continuation there)."""
     if (not principal) and d.real < 0.0:
         return -1j * cmath.sqrt(-d)
@@ -234,7 +234,7 @@ def form_factor(k: np.ndarray, diameter: float, model: str) -> np.ndarray:
     """Footprint form factor S(k) (dimensionless), complex k allowed.
 
     Strip of width d (``"line"``): sin(k d/2)/(k d/2); disc of radius d/2 (``"lattice"``):
-    2 J1(k r)/(k r) (physics.md sections 5 and 6b).
+    2 J1(k r)/(k r) (docs/physics.md section 13).
     """
     k = np.asarray(k)
     if model == "line":
@@ -316,7 +316,7 @@ def bulk_densities(sub, w: float, xi: np.ndarray) -> tuple[np.ndarray, np.ndarra
     """Radiated power densities per unit xi of a unit surface traction, shear and compressional
     (real xi inside the cones; W per (N/m)^2 per (1/m) up to the factor w/2 and 1/(2 pi)).
 
-    From the free-surface potentials under a normal traction t (physics.md section 6b):
+    From the free-surface potentials under a normal traction t (docs/physics.md section 13):
     A = -t (2 xi^2 - kT^2)/(mu R), B = 2 i xi alpha t/(mu R); the vertical power fluxes
     rho w^3 nu |.|^2 / 2 divided by w/2 give dens_L = rho w^2 nu_L (2 xi^2 - kT^2)^2/(mu^2 |R|^2),
     dens_T = rho w^2 nu_T 4 xi^2 |alpha|^2/(mu^2 |R|^2); dens_L + dens_T = Im G (tested). For a

@@ -1,4 +1,4 @@
-"""Exact model of a finite resonator row: multiple scattering on the half-space (physics.md 6b).
+"""Exact model of a finite resonator row: multiple scattering (docs/physics.md s. 13).
 
 Each resonator j presses on its footprint (strip of width d for ``"line"``, rows of discs at
 pitch b for ``"lattice"``) with a force per unit length along y F_j = (Z_j / b) u_j, u_j the
@@ -9,7 +9,7 @@ wave of unit vertical surface amplitude, u_inc(x) = exp(i kR x), every frequency
     (diag(b c_j) - g(x_j - x_k)) F = S(kR) exp(i kR x_j),   c_j = 1/Z_j (compliance, m/N),
 
 the Foldy multiple-scattering system (compliance form: finite at the rod resonances, where
-c_j = 0). From the forces (physics.md 6b; Res = residue of G at +kR, S = footprint factor):
+c_j = 0). From the forces (docs/physics.md s. 13; Res = residue of G at +kR, S = footprint factor):
 
 - transmitted amplitude T = 1 + i Res S(kR) sum_j F_j exp(-i kR x_j), reflected
   R = i Res S(kR) sum_j F_j exp(+i kR x_j); fractions |T|^2, |R|^2 (incident Rayleigh power

@@ -1,4 +1,4 @@
-"""Adiabatic (WKB) propagation of a Rayleigh wave along a graded resonator row (physics.md s. 6).
+"""Adiabatic (WKB) propagation of a Rayleigh wave along a graded row (docs/physics.md s. 6).
 
 For every frequency the march starts at the entry resonator (x = 0) with unit incident surface
 power and follows one local Bloch branch cell by cell:
@@ -34,7 +34,7 @@ power and follows one local Bloch branch cell by cell:
 
 The fractions of the seven channels sum to 1 for every frequency by construction (telescoping
 products; checked to 1e-9 in the tests). Adiabaticity along the forward path:
-``eps_j = |K_{j+1} - K_j| / (a_j |K_j|^2)`` (physics.md section 6); ``eps_max`` is its largest
+``eps_j = |K_{j+1} - K_j| / (a_j |K_j|^2)`` (docs/physics.md s. 6.6); ``eps_max`` is its largest
 value between cells that both carry the wave (0 when fewer than two do), and
 ``is_adiabatic = eps_max <= 0.1``. Turning points themselves are not counted: total reflection
 there is the standard WKB turning-point result.
@@ -80,7 +80,7 @@ __all__ = [
     "trace_study",
 ]
 
-#: eps above this marks a result outside the adiabatic model's validity (physics.md s. 6).
+#: eps above this marks a result outside the adiabatic model's validity (docs/physics.md s. 6.6).
 ADIABATIC_LIMIT = 0.1
 
 

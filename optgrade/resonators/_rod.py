@@ -1,4 +1,4 @@
-"""Base dynamic stiffness of surface resonators (physics.md section 4).
+"""Base dynamic stiffness of surface resonators (docs/physics.md section 4).
 
 Z(w) is the vertical force the resonator applies to the surface per unit vertical base
 displacement, both positive into the solid, for time dependence exp(-i w t). A rigid mass gives
@@ -180,7 +180,7 @@ def rod_stiffness(
     """Base dynamic stiffness Z(w) of an axial rod with an optional head mass (N/m).
 
     Z = E A k_r (tan(k_r L) + q) / (1 - q tan(k_r L)), q = M w^2 / (E A k_r), k_r = w / c_r
-    (thin-rod theory, physics.md section 4; written with sin/cos to stay finite).
+    (thin-rod theory, docs/physics.md section 4.1; written with sin/cos to stay finite).
 
     Parameters
     ----------
@@ -209,7 +209,7 @@ def rod_compliance(
     """Inverse base stiffness 1/Z(w) of a rod with head mass (m/N); zero at the resonances.
 
     Same model as `rod_stiffness`; this is the quantity the Bloch dispersion relation
-    1/Z = Sigma needs (physics.md section 5), finite at the rod resonances.
+    1/Z = Sigma needs (docs/physics.md section 5.1), finite at the rod resonances.
     """
     num, den = _rod_parts(w, rod, height, head_mass)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -221,7 +221,7 @@ def oscillator_stiffness(
 ) -> np.ndarray:
     """Base stiffness of a lumped mass-spring oscillator (N/m).
 
-    Z = M w^2 w0^2 (1 - i eta) / (w0^2 (1 - i eta) - w^2) (physics.md section 4; the spring
+    Z = M w^2 w0^2 (1 - i eta) / (w0^2 (1 - i eta) - w^2) (docs/physics.md section 4.4; the spring
     carries the complex stiffness k (1 - i eta)).
 
     Parameters
@@ -301,7 +301,7 @@ def rod_resonances(
 def is_thin_rod(freq: ArrayLike, rod: Rod) -> np.ndarray:
     """Whether thin-rod theory holds: d <= lambda_r / 5 with lambda_r = c_r / f (bool array).
 
-    Rule of thumb (common practice, stated in physics.md section 4).
+    Rule of thumb (common practice, stated in docs/physics.md section 4.5).
     """
     freq = np.asarray(freq, dtype=float)
     return rod.diameter <= rod.bar_speed / np.maximum(freq, 1e-300) / 5.0
