@@ -24,12 +24,16 @@ from __future__ import annotations
 import argparse
 import os
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from optgrade._atomic import save_figure, write_json
 from optgrade.commands import add_study_argument, open_layout, open_output_dir, open_study
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.study import Study
 
 __all__ = ["EXIT_FAILED", "add_parser", "run", "run_verify"]
 
@@ -64,7 +68,7 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
     return parser
 
 
-def run_verify(study: Any, layout: Any, out: Path, *, is_fast: bool = False,
+def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False,
                is_animation: bool = True, is_lattice: bool = True, console: Any = None) -> dict:
     """Verify ``layout`` for ``study`` and write verify.json and the figures into ``out``.
 

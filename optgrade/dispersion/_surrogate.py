@@ -38,7 +38,7 @@ import os
 import tempfile
 from functools import cached_property
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -63,6 +63,9 @@ from optgrade.dispersion._lattice import (
 from optgrade.dispersion._modes import NOT_SOLVED, LocalModes, RowPath
 from optgrade.ground import Substrate
 from optgrade.resonators import Rod, rod_constants
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import Study
 
 __all__ = ["Surrogate", "surrogate_for_study", "FORMAT_VERSION", "default_cache_dir"]
 
@@ -173,7 +176,7 @@ class Surrogate:
 
     # -- construction -------------------------------------------------------------------
     @classmethod
-    def from_study(cls, study: Any, model: str | None = None, cache_dir=None) -> Surrogate:
+    def from_study(cls, study: Study, model: str | None = None, cache_dir=None) -> Surrogate:
         """Surrogate for a validated study: its substrate, resonator, spacing range and goal
         band (padded by `FREQ_PAD`); model defaults to ``study.goal.model``."""
         sub = study.substrate
@@ -340,7 +343,7 @@ class Surrogate:
         return ground, lattice, grids, rod_constants(self.rod)
 
 
-def surrogate_for_study(study: Any, model: str | None = None, cache_dir=None) -> Surrogate:
+def surrogate_for_study(study: Study, model: str | None = None, cache_dir=None) -> Surrogate:
     """Shorthand for `Surrogate.from_study` (used by the propagation stage)."""
     return Surrogate.from_study(study, model=model, cache_dir=cache_dir)
 

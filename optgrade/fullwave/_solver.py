@@ -49,7 +49,7 @@ import math
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -57,6 +57,10 @@ from optgrade.fullwave import _kernel as _k
 from optgrade.ground import rayleigh_speed
 from optgrade.propagation import CHANNELS
 from optgrade.study import SITE_CAUTION
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.layout import Layout
+    from optgrade.study import Study
 
 BULK = CHANNELS[2:6]
 
@@ -1288,14 +1292,14 @@ def self_checks(split: ChannelSplit, run: RunRecord, medium: Medium, rods: RodRo
     return figures, reasons
 
 
-def medium_of(study: Any) -> Medium:
+def medium_of(study: Study) -> Medium:
     """Substrate of a study as a :class:`Medium`."""
     s = study.substrate
     return Medium(rho=float(s.density), cl=float(s.cl), ct=float(s.ct),
                   loss_factor=float(s.loss_factor or 0.0))
 
 
-def rods_of(study: Any, layout: Any) -> RodRow:
+def rods_of(study: Study, layout: Layout) -> RodRow:
     """Rods of a layout with the study's resonator material, as a :class:`RodRow`."""
     r = study.resonator
     n = layout.x.size
@@ -1356,7 +1360,7 @@ def compare(split_fractions: dict, split_position: dict, trace: Any,
     return out
 
 
-def verify(study: Any, layout: Any, *, quality: str = "normal", progress: bool = True,
+def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: bool = True,
            n_snapshots: int = 40, surrogate: Any = None) -> Verification:
     """Full-wave check of ``layout`` under ``study`` (2-D line model), compared with the
     surrogate's trace of the same layout.
@@ -1485,7 +1489,7 @@ def _run_pair_progress(medium: Medium, rods: RodRow, band: tuple[float, float],
 
 def _unstable_verification(exc: UnstableRun, medium: Medium, rods: RodRow,
                            band: tuple[float, float], freq: np.ndarray, length: float,
-                           quality: str, seconds: float, study: Any) -> Verification:
+                           quality: str, seconds: float, study: Study) -> Verification:
     """A failed :class:`Verification` for a run stopped by :class:`UnstableRun`: no
     fractions (NaN, written as null), the reason and where the run stopped."""
     grid = plan_grid(medium, band, length, float(np.min(rods.diameter)), quality=quality,

@@ -40,7 +40,7 @@ angle-weighted cone integrals (deg from the normal, negative = backward); surfac
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numba import njit
@@ -55,6 +55,9 @@ from optgrade.propagation import (
     study_frequencies,
 )
 from optgrade.propagation._green import GreenSpec, GreenTables, stencils
+
+if TYPE_CHECKING:  # pragma: no cover
+    from optgrade.study import Study
 
 __all__ = [
     "ScatteringModel",
@@ -382,7 +385,7 @@ _MEMO: dict[str, GreenTables] = {}
 
 
 def tables_for_study(
-    study: Any, layout: Layout | None = None, freq: ArrayLike | None = None,
+    study: Study, layout: Layout | None = None, freq: ArrayLike | None = None,
     *, model: str | None = None, cache_dir=None,
 ) -> GreenTables:
     """Green's-function tables for a study (kept in memory and on disk per key).
@@ -412,7 +415,7 @@ def tables_for_study(
 
 
 def scattering_trace(
-    study: Any,
+    study: Study,
     layout: Layout,
     freq: ArrayLike | None = None,
     *,
@@ -484,7 +487,7 @@ class ScatteringModel(PropagationModel):
 
     name = "scattering"
 
-    def __init__(self, study: Any, model: str | None = None, cache_dir=None) -> None:
+    def __init__(self, study: Study, model: str | None = None, cache_dir=None) -> None:
         super().__init__(study)
         self.model = model or study.goal.model
         self.cache_dir = cache_dir
