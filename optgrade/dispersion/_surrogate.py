@@ -35,7 +35,6 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import tempfile
 from functools import cached_property
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -43,6 +42,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import ArrayLike
 
+from optgrade._table_cache import default_cache_dir, read_cached, write_cached
 from optgrade.dispersion._kernel import (
     KernelCells,
     KernelGround,
@@ -78,12 +78,6 @@ N_KAPPA = 49
 N_FREQ = 97
 #: relative padding of the frequency range in `Surrogate.from_study`
 FREQ_PAD = 0.05
-
-
-def default_cache_dir() -> Path:
-    """Cache directory: $OPTGRADE_CACHE or ~/.cache/optgrade."""
-    env = os.environ.get("OPTGRADE_CACHE")
-    return Path(env) if env else Path.home() / ".cache" / "optgrade"
 
 
 def _spacing_levels(lo: float, hi: float) -> np.ndarray:
@@ -245,15 +239,15 @@ class Surrogate:
         path = root / f"tables-{key}.npy"
         meta_path = root / f"tables-{key}.json"
         self.cache_path = path
-        table = _read_cached(path, meta_path, key, self._shape())
+        table = read_cached(path, meta_path, key, self._shape(), FORMAT_VERSION)
         if table is not None:
             self.was_loaded = True
             return table
         table = self.build_table()
         try:
             root.mkdir(parents=True, exist_ok=True)
-            _write_cached(path, meta_path, key, table)
-            loaded = _read_cached(path, meta_path, key, self._shape())
+            write_cached(path, meta_path, key, table, FORMAT_VERSION)
+            loaded = read_cached(path, meta_path, key, self._shape(), FORMAT_VERSION)
             if loaded is not None:
                 return loaded
         except OSError:
@@ -348,38 +342,3 @@ def surrogate_for_study(study: Study, model: str | None = None, cache_dir=None) 
     return Surrogate.from_study(study, model=model, cache_dir=cache_dir)
 
 
-def _sha256(arr: np.ndarray) -> str:
-    return hashlib.sha256(np.ascontiguousarray(arr).view(np.uint8)).hexdigest()
-
-
-def _read_cached(path: Path, meta_path: Path, key: str, shape) -> np.ndarray | None:
-    try:
-        meta = json.loads(meta_path.read_text())
-        if meta.get("key") != key or meta.get("format") != FORMAT_VERSION:
-            return None
-        table = np.load(path, mmap_mode="r", allow_pickle=False)
-        if table.shape != tuple(shape) or table.dtype != np.complex128:
-            return None
-        if _sha256(table) != meta.get("sha256"):
-            return None
-        return table
-    except (OSError, ValueError, json.JSONDecodeError, TypeError, AttributeError):
-        return None
-
-
-def _atomic_write(path: Path, write) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> None:
-    _atomic_write(path, lambda fh: np.save(fh, table, allow_pickle=False))
-    meta = {"key": key, "format": FORMAT_VERSION, "sha256": _sha256(table), "shape": table.shape}
-    _atomic_write(meta_path, lambda fh: fh.write(json.dumps(meta).encode()))

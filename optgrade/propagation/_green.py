@@ -46,7 +46,6 @@ import hashlib
 import json
 import math
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -54,6 +53,8 @@ from typing import Any
 import numpy as np
 from numba import njit
 from scipy.special import j1, jv, sici, zeta
+
+from optgrade._table_cache import default_cache_dir, read_cached, write_cached
 
 __all__ = [
     "FORMAT_VERSION",
@@ -701,19 +702,19 @@ class GreenTables:
         shape = (5, 1 + self.grid.size, self.freq.size)
         if cache_dir is False:
             return self.build()
-        root = Path(cache_dir) if cache_dir is not None else _default_cache_dir()
+        root = Path(cache_dir) if cache_dir is not None else default_cache_dir()
         key = self.spec.key()
         path, meta_path = root / f"green-{key}.npy", root / f"green-{key}.json"
         self.cache_path = path
-        table = _read_cached(path, meta_path, key, shape)
+        table = read_cached(path, meta_path, key, shape, FORMAT_VERSION)
         if table is not None:
             self.was_loaded = True
             return table
         table = self.build()
         try:
             root.mkdir(parents=True, exist_ok=True)
-            _write_cached(path, meta_path, key, table)
-            loaded = _read_cached(path, meta_path, key, shape)
+            write_cached(path, meta_path, key, table, FORMAT_VERSION)
+            loaded = read_cached(path, meta_path, key, shape, FORMAT_VERSION)
             if loaded is not None:
                 return loaded
         except OSError:
@@ -732,49 +733,6 @@ def _truncate(g: Grid, n_keep: int):
         start.append(g.start[s])
         n.append(min(g.n[s], n_keep - g.start[s]))
     return np.array(x0), np.array(h), np.array(start, dtype=np.int64), np.array(n, dtype=np.int64)
-
-
-def _default_cache_dir() -> Path:
-    env = os.environ.get("OPTGRADE_CACHE")
-    return Path(env) if env else Path.home() / ".cache" / "optgrade"
-
-
-def _sha256(arr: np.ndarray) -> str:
-    return hashlib.sha256(np.ascontiguousarray(arr).view(np.uint8)).hexdigest()
-
-
-def _read_cached(path: Path, meta_path: Path, key: str, shape) -> np.ndarray | None:
-    try:
-        meta = json.loads(meta_path.read_text())
-        if meta.get("key") != key or meta.get("format") != FORMAT_VERSION:
-            return None
-        table = np.load(path, mmap_mode="r", allow_pickle=False)
-        if table.shape != tuple(shape) or table.dtype != np.complex128:
-            return None
-        if _sha256(table) != meta.get("sha256"):
-            return None
-        return table
-    except (OSError, ValueError, json.JSONDecodeError, TypeError, AttributeError):
-        return None
-
-
-def _atomic_write(path: Path, write) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.name, suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _write_cached(path: Path, meta_path: Path, key: str, table: np.ndarray) -> None:
-    _atomic_write(path, lambda fh: np.save(fh, table, allow_pickle=False))
-    meta = {"key": key, "format": FORMAT_VERSION, "sha256": _sha256(table),
-            "shape": list(table.shape)}
-    _atomic_write(meta_path, lambda fh: fh.write(json.dumps(meta).encode()))
 
 
 def green_tables(spec: GreenSpec, cache_dir=None) -> GreenTables:
