@@ -1,6 +1,13 @@
 """Exports of one search trial: machining table, drawing, figure sheet, result, report.
 
-Files written into DIR, each atomically (temporary file in DIR, then ``os.replace``):
+The set is written as a unit: every file is first written into a private staging folder inside
+DIR; only when all of them exist is the old manifest ``export.json`` removed, the files moved into
+place (``os.replace``) and the new manifest written last, with each file's size and sha256. A
+set whose manifest is missing or does not match its files is incomplete
+(:func:`check_export`): a kill or a full disk while writing leaves either the previous set with
+its manifest or a set without one, never a silent mix of two trials.
+
+Files of the set:
 
 ``table.csv``    machining table via :func:`optgrade.layout.write_table` (header: study name,
                  units, datum, material, date; plus trial, study hash and, at site scale, the
@@ -11,15 +18,19 @@ Files written into DIR, each atomically (temporary file in DIR, then ``os.replac
                  optimisation history, Pareto front (multi-objective) or a summary panel;
 ``result.json``  predicted performance by frequency and channel, objective values, study hash,
                  trial number, fabrication check;
-``report.txt``   short plain-text report, with the site-scale caution where it applies.
+``report.txt``   short plain-text report, with the site-scale caution where it applies;
+``export.json``  the manifest (written last).
 """
 
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import json
 import math
 import os
+import shutil
+import tempfile
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -36,7 +47,18 @@ if TYPE_CHECKING:  # pragma: no cover
     from optgrade.propagation import Trace
     from optgrade.study import Study
 
-__all__ = ["SITE_CAUTION", "export_layout", "export_trial"]
+__all__ = ["EXPORT_FILES", "MANIFEST", "SITE_CAUTION", "ExportError", "check_export",
+           "export_layout", "export_trial"]
+
+#: The files of an export set, in the order they are moved into place.
+EXPORT_FILES = ("table.csv", "layout.dxf", "sheet.png", "result.json", "report.txt")
+#: The manifest, written after every file of the set is in place.
+MANIFEST = "export.json"
+MANIFEST_FORMAT = 1
+
+
+class ExportError(ValueError):
+    """An export set that is incomplete or mixed (manifest missing or not matching)."""
 
 BENDING_NOTE = ("Rods are modelled in axial motion only; their bending modes (coupling to "
                 "horizontal motion) are not represented.")
@@ -224,13 +246,75 @@ def export_layout(
     pareto: tuple | None = None,
     extra: dict[str, Any] | None = None,
 ) -> dict[str, Path]:
-    """Trace ``layout`` and write all export files into ``out_dir``; returns their paths.
+    """Trace ``layout`` and write the export set into ``out_dir`` as a unit (module docstring);
+    returns the paths of its files (``table``, ``dxf``, ``sheet``, ``result``, ``report``,
+    ``manifest``).
 
     ``context`` is the search's evaluation context (built for ``study`` when omitted)."""
-    from optgrade.layout import write_table
-
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=".export-", dir=out))
+    try:
+        staged = _write_set(study, layout, stage, context=context, trial_number=trial_number,
+                            history=history, pareto=pareto, extra=extra)
+        return _commit_set(out, staged, study=study.meta.name, trial=trial_number,
+                           key=search.study_hash(study))
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def _file_record(path: Path) -> dict[str, Any]:
+    data = path.read_bytes()
+    return {"bytes": len(data), "sha256": hashlib.sha256(data).hexdigest()}
+
+
+def _commit_set(out: Path, staged: dict[str, Path], *, study: str, trial: int | None,
+                key: str) -> dict[str, Path]:
+    """Move a complete staged set into ``out``: old manifest off, files in, manifest last."""
+    records = {p.name: _file_record(p) for p in staged.values()}
+    (out / MANIFEST).unlink(missing_ok=True)  # from here until the end the set is incomplete
+    paths = {}
+    for name, path in staged.items():
+        final = out / path.name
+        os.replace(path, final)
+        paths[name] = final
+    manifest = {"format": MANIFEST_FORMAT, "study": study, "trial": trial, "study_hash": key,
+                "package_version": __version__, "files": records}
+    paths["manifest"] = _write_text(out / MANIFEST, json.dumps(manifest, indent=1) + "\n")
+    return paths
+
+
+def check_export(out_dir: str | os.PathLike) -> dict[str, Any]:
+    """The manifest of the export set in ``out_dir`` after checking every file against it.
+
+    Raises
+    ------
+    ExportError
+        No manifest (never finished, or interrupted while being replaced), an unreadable one,
+        or a file missing or different from what the manifest records.
+    """
+    out = Path(out_dir)
+    try:
+        manifest = json.loads((out / MANIFEST).read_text(encoding="utf-8"))
+        files = manifest["files"]
+    except FileNotFoundError:
+        raise ExportError(f"{out}: no {MANIFEST}: the export set is incomplete (interrupted "
+                          "or never finished); export again") from None
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise ExportError(f"{out / MANIFEST}: unreadable manifest ({exc})") from None
+    for name, rec in files.items():
+        path = out / name
+        if not path.is_file() or _file_record(path) != rec:
+            raise ExportError(f"{path}: does not match {MANIFEST} (trial {manifest.get('trial')}"
+                              "): the export set is mixed or damaged; export again")
+    return manifest
+
+
+def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number, history,
+               pareto, extra) -> dict[str, Path]:
+    """Write every file of the set into ``out`` (the staging folder)."""
+    from optgrade.layout import write_table
+
     context = context or search.make_context(study)
     trace = context.trace_fn(layout)
     names = search.goal_names(study)

@@ -32,6 +32,7 @@ _HOMES: dict[str, str] = {
         "is_multi_objective",
         "load_search",
         "make_context",
+        "mask_url",
         "open_storage",
         "recover_lost",
         "run_search",

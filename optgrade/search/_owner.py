@@ -36,8 +36,8 @@ import json
 import math
 import os
 import signal
-import socket
 import time
+import warnings
 from collections import deque
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -47,13 +47,32 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import optuna
+from optuna.exceptions import UpdateFinishedTrialError
 from optuna.trial import TrialState
 
 from optgrade import __version__, fabrication, objectives, profiles, propagation
 from optgrade.dispersion import RowPath
 from optgrade.propagation import PROPAGATION_MODELS, PropagationModel, Trace, WKBMarch
 from optgrade.search._errors import SearchError
+from optgrade.search._lease import (
+    HeartbeatThread,
+    admit,
+    count_state,
+    finished_trials,
+    new_owner_id,
+    owner_is_alive,
+    params_key,
+    recover_lost,
+    session_seed,
+)
 from optgrade.search._samplers import DEFAULT_SAMPLER, TPE_STARTUP, make_sampler
+from optgrade.search._storage import (
+    default_storage,
+    heartbeat_seconds,
+    is_heartbeat_storage,
+    mask_url,
+    open_storage,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from optgrade.layout import Layout
@@ -73,13 +92,17 @@ __all__ = [
     "load_search",
     "make_context",
     "make_sampler",
+    "mask_url",
     "open_storage",
+    "recover_lost",
     "run_search",
     "study_hash",
 ]
 
 #: Candidates per worker chunk when the study does not say.
 DEFAULT_CHUNK = 4
+#: Rounds in a row in which every asked candidate was dropped before the owner gives up.
+MAX_EMPTY_ASKS = 50
 #: Penalty subtracted from the weighted score of a layout that breaks a fabrication limit.
 INFEASIBLE_PENALTY = 10.0
 
@@ -280,51 +303,6 @@ def _score_chunk(
 # storage and sampler
 
 
-def default_storage(out_dir: str | os.PathLike) -> str:
-    """SQLite file ``DIR/study.db``."""
-    return f"sqlite:///{Path(out_dir).resolve() / 'study.db'}"
-
-
-def open_storage(url: str) -> Any:
-    """An optuna storage from a URL; ``journal:PATH`` opens optuna's journal file storage."""
-    if url.startswith("journal:"):
-        from optuna.storages.journal import JournalFileBackend, JournalStorage
-
-        path = url[len("journal:"):].removeprefix("//")
-        Path(path).parent.mkdir(parents=True, exist_ok=True)
-        return JournalStorage(JournalFileBackend(path))
-    is_sqlite = url.startswith("sqlite:///")
-    if is_sqlite:
-        Path(url[len("sqlite:///"):]).parent.mkdir(parents=True, exist_ok=True)
-    try:
-        store = optuna.storages.RDBStorage(url)
-    except Exception as exc:
-        raise SearchError("--storage", f"cannot open {url!r}: {exc}") from None
-    if is_sqlite:
-        _fast_sqlite(store)
-    return store
-
-
-def _fast_sqlite(store: Any) -> None:
-    """Write-ahead log with ``synchronous=NORMAL`` on SQLite connections.
-
-    Every committed transaction survives a crash or kill of the process (the log is in the OS
-    page cache); only a power cut or OS crash can lose the last commits. This makes a commit
-    about five times cheaper on this kind of disk (docs/search.md), and the owner commits some
-    fifteen times per trial.
-    """
-    from sqlalchemy import event
-
-    def on_connect(dbapi_conn: Any, record: Any) -> None:  # noqa: ARG001
-        cur = dbapi_conn.cursor()
-        cur.execute("PRAGMA journal_mode=WAL")
-        cur.execute("PRAGMA synchronous=NORMAL")
-        cur.close()
-
-    event.listen(store.engine, "connect", on_connect)
-    store.engine.dispose()  # reconnect with the pragmas
-
-
 def load_search(study: Study, storage: str) -> optuna.Study:
     """The stored optuna study of ``study`` (by ``study.meta.name``) in ``storage`` (a URL).
 
@@ -336,24 +314,14 @@ def load_search(study: Study, storage: str) -> optuna.Study:
     """
     store = open_storage(storage)
     if study.meta.name not in optuna.study.get_all_study_names(store):
-        raise SearchError("--storage", f"no study named {study.meta.name!r} in {storage}")
+        raise SearchError("--storage", f"no study named {study.meta.name!r} in "
+                          f"{mask_url(storage)}")
     ostudy = optuna.load_study(study_name=study.meta.name, storage=store)
     stored_hash = ostudy.user_attrs.get("study_hash")
     if stored_hash and stored_hash != study_hash(study):
         raise SearchError("STUDY", "this study file differs from the one the search ran with; "
                           "the layout would not match the stored trial")
     return ostudy
-
-
-def finished_trials(ostudy: optuna.Study) -> list[optuna.trial.FrozenTrial]:
-    """Trials that count towards the requested number (COMPLETE, or FAIL after scoring)."""
-    out = []
-    for t in ostudy.get_trials(deepcopy=False):
-        if t.state == TrialState.COMPLETE:
-            out.append(t)
-        elif t.state == TrialState.FAIL and not t.user_attrs.get("lost", False):
-            out.append(t)
-    return out
 
 
 def best_trial(ostudy: optuna.Study) -> optuna.trial.FrozenTrial | None:
@@ -364,40 +332,6 @@ def best_trial(ostudy: optuna.Study) -> optuna.trial.FrozenTrial | None:
     if len(ostudy.directions) > 1:
         complete = ostudy.best_trials or complete
     return max(complete, key=lambda t: (t.user_attrs.get("score", -math.inf), -t.number))
-
-
-def _owner_id() -> str:
-    return f"{socket.gethostname()}:{os.getpid()}"
-
-
-def _is_alive(owner: str) -> bool:
-    host, _, pid = owner.rpartition(":")
-    if host != socket.gethostname():
-        return True  # cannot tell: leave other hosts' trials alone
-    try:
-        os.kill(int(pid), 0)  # signal 0: existence check only, nothing is sent
-    except (ProcessLookupError, ValueError):
-        return False
-    except PermissionError:
-        return True
-    return int(pid) != os.getpid()  # our own pid: left by an earlier run in this process
-
-
-def recover_lost(ostudy: optuna.Study) -> int:
-    """Mark RUNNING trials of dead owners on this host FAIL (``lost``) and re-enqueue their
-    parameters. Returns the number recovered."""
-    storage = ostudy._storage
-    n = 0
-    for t in ostudy.get_trials(deepcopy=False, states=(TrialState.RUNNING,)):
-        owner = t.user_attrs.get("owner", "")
-        if owner and _is_alive(owner):
-            continue
-        storage.set_trial_user_attr(t._trial_id, "lost", True)
-        storage.set_trial_state_values(t._trial_id, TrialState.FAIL)
-        if t.params:
-            ostudy.enqueue_trial(t.params, user_attrs={"requeued_from": t.number})
-        n += 1
-    return n
 
 
 # ---------------------------------------------------------------------------------------------
@@ -472,6 +406,85 @@ def _progress(enabled: bool, total: int, done: int):
     return prog, task
 
 
+def _write_identity(ostudy: optuna.Study, study: Study, key: str) -> None:
+    """Identity attributes, written right after the study is created and before anything slow
+    (a run interrupted while building tables must not leave a study that accepts any file)."""
+    ostudy.set_user_attr("study_hash", key)  # first: what a resume checks
+    ostudy.set_user_attr("package_version", __version__)
+    ostudy.set_user_attr("study_file_sha256", file_hash(study))
+    ostudy.set_user_attr("search_space", sorted(profiles.search_space(study)))
+
+
+def _check_identity(ostudy: optuna.Study, study: Study, key: str) -> None:
+    """Refuse a stored study of another study file; adopt an empty one without identity."""
+    deadline = time.monotonic() + 2.0  # an owner that created it a moment ago is writing it
+    while True:
+        stored = ostudy.user_attrs.get("study_hash")
+        n_stored = ostudy._storage.get_n_trials(ostudy._study_id)
+        if stored is not None or n_stored > 0 or time.monotonic() > deadline:
+            break
+        time.sleep(0.1)
+    if stored is None:
+        if n_stored:
+            raise SearchError("STUDY", "the stored study has trials but no record of the study "
+                              "file it ran with, so this file cannot be checked against it; "
+                              "use a new --out or --storage")
+        _write_identity(ostudy, study, key)
+    elif stored != key:
+        raise SearchError("STUDY", "the study file changed since this search started "
+                          f"(stored hash {stored[:12]}, now {key[:12]}); use a new --out")
+
+
+def _open_study(store: Any, study: Study, url: str, *, is_resume: bool,
+                key: str) -> tuple[optuna.Study, bool, bool]:
+    """(optuna study, existed before, created by this run); identity written or checked."""
+    name = study.meta.name
+    exists = name in optuna.study.get_all_study_names(store)
+    refuse = SearchError("--resume", f"study {name!r} already exists in {mask_url(url)}; pass "
+                         "--resume to continue it or choose another --out/--storage")
+    if exists and not is_resume:
+        raise refuse
+    is_first = False
+    if not exists:
+        try:
+            optuna.create_study(storage=store, study_name=name, directions=directions(study))
+            is_first = True
+        except optuna.exceptions.DuplicatedStudyError:  # another owner created it just now
+            if not is_resume:
+                raise refuse from None
+            exists = True
+    ostudy = optuna.load_study(study_name=name, storage=store)
+    if is_first:
+        _write_identity(ostudy, study, key)
+    else:
+        _check_identity(ostudy, study, key)
+    return ostudy, exists, is_first
+
+
+def _seen_params(ostudy: optuna.Study) -> dict[tuple, int]:
+    """Parameter sets already scored or being scored in the study -> trial number."""
+    from optgrade.search._lease import is_counted
+
+    out = {}
+    for t in ostudy.get_trials(deepcopy=False):
+        if t.params and (is_counted(t) or t.state == TrialState.RUNNING):
+            out.setdefault(params_key(t.params), t.number)
+    return out
+
+
+def _worth_waiting(running: list, me: str, is_hb: bool) -> bool:
+    """Are other owners' running trials worth waiting for (they may still finish, or will be
+    found lost)? Trials of other hosts without heartbeats cannot be judged: not waited for."""
+    for t in running:
+        owner = t.user_attrs.get("owner", "")
+        if owner == me:
+            continue
+        if is_hb or (owner and owner.split(":")[0] == me.split(":")[0]
+                     and owner_is_alive(owner, me)):
+            return True
+    return False
+
+
 def run_search(
     study: Study,
     out_dir: str | os.PathLike,
@@ -488,18 +501,24 @@ def run_search(
     on_told: Callable[[int], None] | None = None,
     time_budget: float | None = None,
 ) -> SearchOutcome:
-    """Run (or resume) the search of ``study``; results in ``storage`` (default in ``out_dir``).
+    """Run (or resume, or join) the search of ``study``; results in ``storage`` (default in
+    ``out_dir``).
 
     Exports are not written here: pass the outcome to :func:`optgrade.export.export_trial`
-    (``optgrade search`` does).
+    (``optgrade search`` does). Several owners (processes, machines) may run on one storage
+    URL at once with ``is_resume=True``: together they finish exactly ``n_trials`` trials
+    (optgrade/search/_lease.py).
 
     Parameters
     ----------
-    n_trials : finished trials wanted in total (default ``study.search.trials``).
+    n_trials : finished trials wanted in total, for the whole study (default
+        ``study.search.trials``).
     n_jobs : worker processes (default ``study.search.workers``); 0 scores in the owner process.
     storage : optuna URL (default SQLite ``DIR/study.db``; ``journal:PATH`` for a journal file).
-    is_resume : continue an existing study of the same name (refused otherwise if it exists).
-    sampler : sampler name (default ``study.search.sampler``).
+    is_resume : continue or join an existing study of the same name (refused otherwise if it
+        exists); creates it if missing.
+    sampler : sampler name (default ``study.search.sampler``); seeded with the study seed in the
+        run that creates the study, with a seed derived from it and the owner id otherwise.
     chunk_size : candidates per worker task (default from ``study.search.batch_size``).
     pipeline : stand-in for the physics ``(study) -> (model or None, trace_fn)`` (tests).
     is_dry : skip all scoring (framework-ceiling measurement).
@@ -514,114 +533,219 @@ def run_search(
     n_jobs = int(n_jobs if n_jobs is not None else study.search.workers)
     url = storage or study.search.storage or default_storage(out_dir)
     store = open_storage(url)
-    name = study.meta.name
-    multi = is_multi_objective(study)
-    sampler_obj = make_sampler(sampler or study.search.sampler, int(study.meta.seed), multi)
     key = study_hash(study)
-
-    exists = name in optuna.study.get_all_study_names(store)
-    if exists and not is_resume:
-        raise SearchError("--resume", f"study {name!r} already exists in {url}; pass --resume "
-                          "to continue it or choose another --out/--storage")
-    ostudy = optuna.create_study(storage=store, study_name=name, directions=directions(study),
-                                 sampler=sampler_obj, load_if_exists=True)
-    attrs = ostudy.user_attrs
-    if exists and attrs.get("study_hash") not in (None, key):
-        raise SearchError("STUDY", "the study file changed since this search started "
-                          f"(stored hash {attrs.get('study_hash', '')[:12]}, now {key[:12]}); "
-                          "use a new --out")
-
+    owner = new_owner_id()
+    ostudy, exists, is_first = _open_study(store, study, url, is_resume=is_resume, key=key)
+    ostudy.sampler = make_sampler(sampler or study.search.sampler,
+                                  session_seed(int(study.meta.seed), owner, is_first),
+                                  is_multi_objective(study))
     context = None
     if not is_dry:
         context = make_context(study, pipeline)  # builds/loads the tables once, before workers
-    if not exists:
-        ostudy.set_user_attr("package_version", __version__)
-        ostudy.set_user_attr("study_hash", key)
-        ostudy.set_user_attr("study_file_sha256", file_hash(study))
+    if "table_hashes" not in ostudy.user_attrs:
         ostudy.set_user_attr("table_hashes", _table_hashes(context))
-        ostudy.set_user_attr("search_space", sorted(profiles.search_space(study)))
-
-    n_recovered = recover_lost(ostudy) if exists else 0
-    n_done = len(finished_trials(ostudy))
-    space = profiles.search_space(study)
+    n_recovered = recover_lost(ostudy, owner) if exists else 0
     chunk_size = int(chunk_size or max(1, (study.search.batch_size or DEFAULT_CHUNK * n_jobs)
                                        // max(n_jobs, 1)))
-    owner = _owner_id()
+    loop = _OwnerLoop(study, ostudy, owner, key, n_trials, n_jobs, chunk_size, pipeline, is_dry,
+                      context, t_start, on_told)
+    loop.n_recovered = n_recovered
+    prog, task = _progress(show_progress, n_trials, len(finished_trials(ostudy)))
+    with _sigint_flag() as flag, prog, HeartbeatThread(store, loop.trial_ids) as beats:
+        loop.beats = beats
+        loop.run(flag, time_budget, lambda n, rate, best: prog.update(
+            task, completed=n, rate=rate, best=f"{best:.4f}" if best is not None else "-"))
+    n_finished = len(finished_trials(ostudy))
+    return SearchOutcome(
+        storage=url, study_name=study.meta.name, n_finished=n_finished,
+        n_told_now=loop.told_now, n_recovered=loop.n_recovered,
+        n_pool_restarts=loop.pool_restarts, seconds=time.perf_counter() - t_start,
+        best_number=loop.best_number, best_score=loop.best_score,
+        is_interrupted=loop.is_interrupted and n_finished < n_trials, history=loop.history,
+        context=context,
+    )
 
-    told_now = 0
-    pool_restarts = 0
-    best = best_trial(ostudy)
-    best_score = best.user_attrs.get("score") if best else None
-    best_number = best.number if best else None
-    history: list[tuple[float, float]] = []
-    pending: dict[int, optuna.trial.Trial] = {}
-    inflight: deque = deque()  # (chunk list, future or None, n_attempts)
-    n_asked = 0
 
-    def ask_chunk(n: int) -> list[tuple[int, dict]]:
-        nonlocal n_asked
-        chunk = []
+class _OwnerLoop:
+    """The ask / score / tell loop of one owner (state shared by its small steps)."""
+
+    def __init__(self, study, ostudy, owner, key, n_trials, n_jobs, chunk_size, pipeline, is_dry,
+                 context, t_start, on_told) -> None:
+        self.study, self.ostudy, self.owner, self.key = study, ostudy, owner, key
+        self.n_trials, self.n_jobs, self.chunk_size = n_trials, n_jobs, chunk_size
+        self.pipeline, self.is_dry, self.context = pipeline, is_dry, context
+        self.t_start, self.on_told = t_start, on_told
+        self.space = profiles.search_space(study)
+        self.multi = is_multi_objective(study)
+        self.is_hb = is_heartbeat_storage(ostudy._storage)
+        self.pending: dict[int, optuna.trial.Trial] = {}
+        self.trial_ids: dict[int, int] = {}  # number -> trial id (the heartbeat thread reads it)
+        self.seen = _seen_params(ostudy)
+        self.told_now = self.pool_restarts = self.n_recovered = self.n_taken = 0
+        self.n_surplus = self.n_duplicates = 0
+        best = best_trial(ostudy)
+        self.best_score = best.user_attrs.get("score") if best else None
+        self.best_number = best.number if best else None
+        self.history: list[tuple[float, float]] = []
+        self.is_interrupted = False
+        self.beats: HeartbeatThread | None = None
+        self.last_recovery = time.monotonic()
+
+    # -- asking ---------------------------------------------------------------------------
+    def _drop(self, trial: optuna.trial.Trial, attr: str, value: Any) -> None:
+        """Fail an asked trial without scoring it (not counted); a re-enqueued candidate goes
+        back into the queue."""
+        self.pending.pop(trial.number, None)
+        self.trial_ids.pop(trial.number, None)
+        trial.set_user_attr(attr, value)
+        self.ostudy.tell(trial, state=TrialState.FAIL)
+        origin = trial.user_attrs.get("requeued_from") if hasattr(trial, "user_attrs") else None
+        if origin is not None and attr == "surplus":
+            self.ostudy.enqueue_trial(dict(trial.params), user_attrs={"requeued_from": origin},
+                                      skip_if_exists=False)
+
+    def ask_chunk(self, n: int) -> list[tuple[int, dict]]:
+        asked = []
         for _ in range(n):
-            trial = ostudy.ask(fixed_distributions=space)
-            trial.set_user_attr("owner", owner)
-            pending[trial.number] = trial
+            with warnings.catch_warnings():
+                # the owner records heartbeats itself (ask-and-tell, no Study.optimize):
+                # optuna's reminder that heartbeats are meant for optimize() does not apply
+                warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed")
+                trial = self.ostudy.ask(fixed_distributions=self.space)
+            if self.beats is not None:
+                self.beats.beat(trial._trial_id)  # before the tag: never untagged and unbeaten
+            trial.set_user_attr("owner", self.owner)
+            self.pending[trial.number] = trial
+            self.trial_ids[trial.number] = trial._trial_id
+            asked.append(trial)
+        ok = admit(self.ostudy, [t.number for t in asked], self.n_trials)
+        chunk = []
+        for trial in asked:
+            if trial.number not in ok:
+                self.n_surplus += 1
+                self._drop(trial, "surplus", True)
+                continue
+            pkey = params_key(trial.params)
+            origin = trial.user_attrs.get("requeued_from")
+            other = self.seen.get(pkey)
+            if other is not None and other != origin and other != trial.number:
+                self.n_duplicates += 1
+                self._drop(trial, "duplicate_of", int(other))
+                continue
+            self.seen[pkey] = trial.number
             chunk.append((trial.number, dict(trial.params)))
-        n_asked += n
         return chunk
 
-    def tell(res: dict[str, Any]) -> None:
-        nonlocal told_now, best_score, best_number
-        trial = pending.pop(res["number"])
-        if "error" in res:
-            trial.set_user_attr("error", res["error"])
-            ostudy.tell(trial, state=TrialState.FAIL)
-        elif res["violations"] and multi:  # off the Pareto front: told FAIL, kept for the record
-            trial.set_user_attr("error", "breaks a fabrication limit")
-            ostudy.tell(trial, state=TrialState.FAIL)
-        else:
-            # one write: the numbers behind the score (the sampler needs only the values)
-            trial.set_user_attr("score", res["score"])
-            ostudy.tell(trial, res["values"])
-            if best_score is None or res["score"] > best_score:
-                best_score, best_number = res["score"], res["number"]
-        told_now += 1
-        history.append((time.perf_counter() - t_start, best_score if best_score is not None
-                        else math.nan))
-        if on_told is not None:
-            on_told(told_now)
+    # -- telling --------------------------------------------------------------------------
+    def tell(self, res: dict[str, Any]) -> None:
+        trial = self.pending.pop(res["number"])
+        self.trial_ids.pop(res["number"], None)
+        try:
+            if "error" in res:
+                trial.set_user_attr("error", res["error"])
+                self.ostudy.tell(trial, state=TrialState.FAIL)
+            elif res["violations"] and self.multi:  # off the Pareto front: FAIL, kept
+                trial.set_user_attr("error", "breaks a fabrication limit")
+                self.ostudy.tell(trial, state=TrialState.FAIL)
+            else:
+                # one write: the numbers behind the score (the sampler needs only the values)
+                trial.set_user_attr("score", res["score"])
+                self.ostudy.tell(trial, res["values"])
+                if self.best_score is None or res["score"] > self.best_score:
+                    self.best_score, self.best_number = res["score"], res["number"]
+        except UpdateFinishedTrialError:
+            # taken as lost by another owner (our heartbeat missed the grace period): it was
+            # re-enqueued there and will be scored again; nothing is counted twice
+            self.n_taken += 1
+            return
+        self.told_now += 1
+        self.history.append((time.perf_counter() - self.t_start,
+                             self.best_score if self.best_score is not None else math.nan))
+        if self.on_told is not None:
+            self.on_told(self.told_now)
 
-    def submit(ex, chunk):
+    # -- the loop -------------------------------------------------------------------------
+    def _submit(self, ex, chunk):
         from concurrent.futures import Future
         from concurrent.futures.process import BrokenProcessPool
 
         try:
-            return ex.submit(_score_chunk, study, key, pipeline, chunk, is_dry)
+            return ex.submit(_score_chunk, self.study, self.key, self.pipeline, chunk,
+                             self.is_dry)
         except BrokenProcessPool as exc:  # the pool broke before this chunk got in
             fut = Future()
             fut.set_exception(exc)
             return fut
 
-    is_interrupted = False
-    prog, task = _progress(show_progress, n_trials, n_done)
-    with _sigint_flag() as flag, prog:
-        ex = _executor(n_jobs) if n_jobs > 0 else None
+    def _restart_pool(self, inflight: deque):
+        """A fresh pool after a worker died; chunks in flight re-submitted (split or failed
+        after repeated deaths)."""
+        self.pool_restarts += 1
+        ex = _executor(self.n_jobs)
+        redo = deque()
+        for item in inflight:
+            c, f, a = item
+            if f is not None and f.done() and f.exception() is None:
+                redo.append(item)  # finished before the crash: keep its result
+                continue
+            a += 1
+            if a >= 2 and len(c) > 1:  # split a chunk that kills workers
+                for single in c:
+                    redo.append([[single], self._submit(ex, [single]), a])
+            elif a >= 3:
+                for num, _ in c:
+                    self.tell({"number": num, "error": "worker process died twice"})
+            else:
+                redo.append([c, self._submit(ex, c), a])
+        return ex, redo
+
+    def _room(self) -> tuple[int, int, list]:
+        """(free places in the study's total, finished count, running trials), from storage;
+        lost trials of other owners are recovered once per heartbeat interval."""
+        if time.monotonic() - self.last_recovery > heartbeat_seconds():
+            self.last_recovery = time.monotonic()
+            self.n_recovered += recover_lost(self.ostudy, self.owner)
+        n_finished, running = count_state(self.ostudy)
+        return self.n_trials - n_finished - len(running), n_finished, running
+
+    def run(self, flag: dict, time_budget: float | None, progress: Callable) -> None:
+        ex = _executor(self.n_jobs) if self.n_jobs > 0 else None
+        inflight: deque = deque()  # (chunk list, future or None, n_attempts)
+        n_slots = max(self.n_jobs, 1)
+        n_empty = 0
         while True:
-            room = n_trials - n_done - told_now - sum(len(c[0]) for c in inflight)
-            is_over = time_budget is not None and time.perf_counter() - t_start > time_budget
-            while (not flag["stop"] and not is_over and room > 0
-                   and len(inflight) < max(n_jobs, 1)):
-                chunk = ask_chunk(min(chunk_size, room))
-                room -= len(chunk)
-                fut = submit(ex, chunk) if ex is not None else None
-                inflight.append([chunk, fut, 0])
+            is_over = (time_budget is not None
+                       and time.perf_counter() - self.t_start > time_budget)
+            is_asking = not flag["stop"] and not is_over
+            room, n_finished, running = self._room() if is_asking else (0, 0, [])
+            while is_asking and room > 0 and len(inflight) < n_slots:
+                chunk = self.ask_chunk(min(self.chunk_size, room))
+                room -= self.chunk_size
+                if chunk:
+                    fut = self._submit(ex, chunk) if ex is not None else None
+                    inflight.append([chunk, fut, 0])
             if not inflight:
+                if not is_asking:
+                    break
+                room, n_finished, running = self._room()
+                if room > 0:  # every asked candidate was dropped (surplus, duplicate)
+                    n_empty += 1
+                    if n_empty > MAX_EMPTY_ASKS:
+                        break  # the sampler repeats itself: stop rather than spin
+                    continue
+                if (n_finished < self.n_trials
+                        and _worth_waiting(running, self.owner, self.is_hb)):
+                    time.sleep(min(1.0, heartbeat_seconds() / 2))  # other owners' trials
+                    continue
                 break
-            chunk, fut, attempts = inflight[0]
+            n_empty = 0
+            chunk, fut, _attempts = inflight[0]
             try:
                 if fut is None:  # n_jobs == 0: score in the owner with its own context
-                    if context is not None:
-                        _CONTEXTS.setdefault(key, context)
-                    results = _score_chunk(study, key, pipeline, chunk, is_dry)
+                    if self.context is not None:
+                        _CONTEXTS.setdefault(self.key, self.context)
+                    results = _score_chunk(self.study, self.key, self.pipeline, chunk,
+                                           self.is_dry)
                 else:
                     results = fut.result()
             except Exception as exc:  # BrokenProcessPool / TerminatedWorkerError
@@ -629,41 +753,14 @@ def run_search(
 
                 if not isinstance(exc, BrokenProcessPool):
                     raise
-                pool_restarts += 1
-                ex = _executor(n_jobs)  # a fresh pool replaces the broken one
-                redo = deque()
-                for item in inflight:
-                    c, f, a = item
-                    if f is not None and f.done() and f.exception() is None:
-                        redo.append(item)  # finished before the crash: keep its result
-                        continue
-                    a += 1
-                    if a >= 2 and len(c) > 1:  # split a chunk that kills workers
-                        for single in c:
-                            redo.append([[single], submit(ex, [single]), a])
-                    elif a >= 3:
-                        for num, _ in c:
-                            tell({"number": num, "error": "worker process died twice"})
-                    else:
-                        redo.append([c, submit(ex, c), a])
-                inflight = redo
+                ex, inflight = self._restart_pool(inflight)
                 continue
             inflight.popleft()
             for res in results:
-                tell(res)
-            rate = told_now / max(time.perf_counter() - t_start, 1e-9)
-            prog.update(task, completed=n_done + told_now, rate=rate,
-                        best=f"{best_score:.4f}" if best_score is not None else "-")
-        is_interrupted = flag["stop"] and n_done + told_now < n_trials
-
-    seconds = time.perf_counter() - t_start
-    outcome = SearchOutcome(
-        storage=url, study_name=name, n_finished=len(finished_trials(ostudy)),
-        n_told_now=told_now, n_recovered=n_recovered, n_pool_restarts=pool_restarts,
-        seconds=seconds, best_number=best_number, best_score=best_score,
-        is_interrupted=is_interrupted, history=history, context=context,
-    )
-    return outcome
+                self.tell(res)
+            rate = self.told_now / max(time.perf_counter() - self.t_start, 1e-9)
+            progress(n_finished + self.told_now, rate, self.best_score)
+        self.is_interrupted = bool(flag["stop"])
 
 
 def _table_hashes(context: objectives.EvalContext | None) -> dict[str, str]:
