@@ -47,8 +47,18 @@ import numpy as np
 from numba import njit
 
 from optgrade.dispersion._kernel_roots import (
+    GAP_INT,
+    GAP_J,
     GAP_RESCAN,
     GAP_STEP,
+    HIST_W,
+    N_CNT,
+    N_CONT,
+    N_VIS,
+    POLE_SIGN,
+    PREV2_K,
+    PREV3_K,
+    PREV_K,
     _h,
     _scan_k,
     complex_root,
@@ -85,10 +95,16 @@ def solve_grid(w_arr, cells, ground, lattice, tables, out, entry_order):
 
     With ``entry_order`` empty every cell, frequency and branch is solved; otherwise the row
     request of the module docstring (branches tried at the entry cell, in that order)."""
-    nc = cells.spacing.size
+    # the named tuples are unpacked once here: every read of an array field from a tuple costs
+    # an atomic reference-count pair, which in the point loops took 10 % of the kernel's time
+    k_out, shares_out, angle_out, status_out = out
+    rest, idx, wts, k0, dk, w0, dw = tables
+    height, head_mass, spacing, rod_root, rod_slowness = cells
+    b, radius, model, coef, n_main = lattice
+    nc = spacing.size
     nf = w_arr.size
-    nw = tables.rest.shape[2]
-    table = np.empty((tables.rest.shape[1], nw), dtype=np.complex128)  # this cell's Rest
+    nw = rest.shape[2]
+    table = np.empty((rest.shape[1], nw), dtype=np.complex128)  # this cell's Rest
     is_blended = np.zeros(nw, dtype=np.bool_)  # which of its columns are filled
     parts = np.zeros(4)  # channel parts and their best harmonic, reset per root
     best = np.zeros(4)
@@ -104,72 +120,73 @@ def solve_grid(w_arr, cells, ground, lattice, tables, out, entry_order):
     path_br = np.zeros(nf, dtype=np.int64)
     path_on = np.ones(nf, dtype=np.bool_)
     for ic in range(nc):
-        a = cells.spacing[ic]
+        a = spacing[ic]
         g = 2.0 * math.pi / a
         # the Rest slice is blended column by column as frequencies need it, and kept for the
         # next cell when that cell has the same spacing
-        if not _same_blend(tables.idx, tables.wts, ic):
+        if not _same_blend(idx, wts, ic):
             is_blended[:] = False
-        state = _fresh_state()
+        cont, cnt = _fresh_state()
         for jf in range(nf):
             if is_row and ic > 0 and not path_on[jf]:
                 continue
             w = w_arr[jf]
-            iz, wi, wt = _frequency_point(w, ic, cells, tables, table, is_blended)
+            iz, wi, wt = _frequency_point(
+                w, height[ic], head_mass[ic], rod_root, rod_slowness, ic, rest, idx, wts, w0, dw,
+                table, is_blended,
+            )
             kr = w / ground.cr
-            p_lo, p_hi = _main_poles(kr, g, lattice.model, lattice.n_main)
-            zone = 0.5 * g if lattice.model == 2 else g
+            p_lo, p_hi = _main_poles(kr, g, model, n_main)
+            zone = 0.5 * g if model == 2 else g
             n_br = 2 if not is_row else (entry_order.size if ic == 0 else 1)
             if kr >= zone:
                 path_on[jf] = False  # no root on either branch: the path ends here
                 for ib in range(n_br):
                     br = _branch_of(ib, ic, jf, is_row, entry_order, path_br)
-                    out.status[br, ic, jf] = ABSENT
+                    status_out[br, ic, jf] = ABSENT
                 continue
             pt = (w, iz, a, g, wi, wt, kr, p_lo, p_hi, zone, kl2_arr[jf], kt2_arr[jf])
             for ib in range(n_br):
                 br = _branch_of(ib, ic, jf, is_row, entry_order, path_br)
-                if is_row and ic == 0 and _entry_has_root(out.k, entry_order, ib, jf):
+                if is_row and ic == 0 and _entry_has_root(k_out, entry_order, ib, jf):
                     continue
                 is_stored, total = _solve_branch(
-                    br, ic, jf, pt, table, state, ground, lattice, tables, out
+                    br, ic, jf, pt, table, cont, cnt, ground, lattice, b, radius, model, coef,
+                    n_main, k0, dk, k_out, status_out
                 )
                 if is_stored:
-                    _channel_split(br, ic, jf, pt, total, ground, lattice, out, parts, best)
+                    _channel_split(
+                        br, ic, jf, pt, total, ground, b, radius, model, coef, n_main, k_out,
+                        shares_out, angle_out, parts, best,
+                    )
             if is_row:
-                _advance_path(ic, jf, out.k, entry_order, path_br, path_on)
+                _advance_path(ic, jf, k_out, entry_order, path_br, path_on)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _fresh_state():
-    """Continuation state of one cell's two branches: roots of the last three visits, the
-    pole-side sign, the gap continuation (closest scan point, its margin, visits since the last
-    full scan, the rescan interval), the angular frequencies of the last three visits (newest
-    first) and the number of visits."""
-    return (
-        np.zeros(2),
-        np.zeros(2),
-        np.zeros(2),
-        np.zeros(2),
-        np.full(2, -1, dtype=np.int64),
-        np.zeros(2),
-        np.zeros(2, dtype=np.int64),
-        np.full(2, GAP_RESCAN, dtype=np.int64),
-        np.zeros((2, 3)),
-        np.zeros(2, dtype=np.int64),
-    )
+    """Continuation state of one cell's two branches, as two arrays with the columns named in
+    `optgrade.dispersion._kernel_roots`: real (2, N_CONT) -- roots of the last three visits,
+    pole-side sign, gap margin, angular frequencies of the last three visits (newest first);
+    integer (2, N_CNT) -- the gap continuation's closest scan point (-1: none), visits since
+    the last full scan, the rescan interval, the number of visits."""
+    cont = np.zeros((2, N_CONT))
+    cnt = np.zeros((2, N_CNT), dtype=np.int64)
+    for br in range(2):
+        cnt[br, GAP_J] = -1
+        cnt[br, GAP_INT] = GAP_RESCAN
+    return cont, cnt
 
 
-@njit(cache=True)
-def _frequency_point(w, ic, cells, tables, table, is_blended):
+@njit(cache=True, inline="always")
+def _frequency_point(w, h, m, rod_root, rod_slowness, ic, rest, idx, wts, w0, dw, table,
+                     is_blended):
     """The rod's compliance 1/Z (only where the kernel solves) and the table's frequency cell
     (index wi, weight wt) at w; blends the two Rest columns it reads if not yet done."""
-    z_num, z_den = rod_parts_at(
-        w, cells.height[ic], cells.head_mass[ic], cells.rod_root, cells.rod_slowness
-    )
+    z_num, z_den = rod_parts_at(w, h, m, rod_root, rod_slowness)
     iz = z_den / z_num if z_num != 0.0 else complex(math.inf, 0.0)
-    nw = tables.rest.shape[2]
-    t = (w - tables.w0) / tables.dw
+    nw = rest.shape[2]
+    t = (w - w0) / dw
     wi = int(math.floor(t))
     if wi < 0:
         wi = 0
@@ -178,12 +195,12 @@ def _frequency_point(w, ic, cells, tables, table, is_blended):
     wt = min(max(t - wi, 0.0), 1.0)
     for jw in (wi, wi + 1):
         if not is_blended[jw]:
-            _blend_column(tables.rest, tables.idx, tables.wts, ic, table, jw)
+            _blend_column(rest, idx, wts, ic, table, jw)
             is_blended[jw] = True
     return iz, wi, wt
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _main_poles(kr, g, model, n_main):
     """Nearest poles of the main harmonics below / above kR in (0, 2 pi / a) (-1 where none)."""
     p_lo = -1.0
@@ -222,7 +239,7 @@ def _entry_has_root(k, entry_order, ib, jf):
     return False
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _advance_path(ic, jf, k, entry_order, path_br, path_on):
     """Row request: the branch followed from the entry cell (the first of the entry order with
     a root), and the end of the path at the first cell where it has none."""
@@ -236,32 +253,32 @@ def _advance_path(ic, jf, k, entry_order, path_br, path_on):
         path_on[jf] = False
 
 
-@njit(cache=True)
-def _solve_branch(br, ic, jf, pt, table, state, ground, lattice, tables, out):
+@njit(cache=True, inline="always")
+def _solve_branch(br, ic, jf, pt, table, cont, cnt, ground, lattice, b, radius, model, coef,
+                  n_main, k0, dk, k_out, status_out):
     """Branch br at cell ic, frequency jf: the real-axis root (continued, gap-kept or scanned,
     then Illinois) and the complex K from it; stores K and its status (ABSENT where the branch
     has no root, or where its K is not finite, decays by more than K' or is a first-order
     estimate with K'' < 0). Returns (whether K was stored, Im(Sigma - 1/Z) at K')."""
     w, iz, a, g, wi, wt, kr, p_lo, p_hi, zone, kl2, kt2 = pt
-    prev_k, prev2_k, prev3_k, pole_sign, gap_j, gap_m, gap_n, gap_int, hist_w, n_vis = state
-    out.status[br, ic, jf] = ABSENT
+    status_out[br, ic, jf] = ABSENT
     # the previous visits of this branch (every frequency unless a row request skips some)
-    n_prev = n_vis[br]
-    w1 = hist_w[br, 0]
-    w2 = hist_w[br, 1] if n_prev > 1 else w1
-    w3 = hist_w[br, 2] if n_prev > 2 else w2
-    hist_w[br, 2] = hist_w[br, 1]
-    hist_w[br, 1] = w1
-    hist_w[br, 0] = w
-    n_vis[br] = n_prev + 1
+    n_prev = cnt[br, N_VIS]
+    w1 = cont[br, HIST_W]
+    w2 = cont[br, HIST_W + 1] if n_prev > 1 else w1
+    w3 = cont[br, HIST_W + 2] if n_prev > 2 else w2
+    cont[br, HIST_W + 2] = cont[br, HIST_W + 1]
+    cont[br, HIST_W + 1] = w1
+    cont[br, HIST_W] = w
+    cnt[br, N_VIS] = n_prev + 1
     # the gap continuation trusts only fine frequency steps
     is_fine_step = n_prev > 0 and abs(w - w1) <= GAP_STEP * w
-    root_real = prev_k[br]
-    root_prev2 = prev2_k[br]
-    root_prev3 = prev3_k[br]
-    prev3_k[br] = root_prev2
-    prev2_k[br] = root_real
-    prev_k[br] = 0.0
+    root_real = cont[br, PREV_K]
+    root_prev2 = cont[br, PREV2_K]
+    root_prev3 = cont[br, PREV3_K]
+    cont[br, PREV3_K] = root_prev2
+    cont[br, PREV2_K] = root_real
+    cont[br, PREV_K] = 0.0
     if br == 0:
         lo = kr
         hi = p_hi if p_hi > 0.0 else zone
@@ -273,21 +290,18 @@ def _solve_branch(br, ic, jf, pt, table, state, ground, lattice, tables, out):
         pole_lo = p_lo > 0.0
         pole_hi = True
     if not hi > lo * (1.0 + 1e-9):
-        gap_j[br] = -1
+        cnt[br, GAP_J] = -1
         return False, 0.0
-    b, radius, model, coef, n_main = lattice
     # everything the real-axis function needs besides K, for `_h`
     kl2_0 = (w / ground.cl) ** 2 + 0j
     kt2_0 = (w / ground.ct) ** 2 + 0j
-    k0, dk = tables.k0, tables.dk
     hx = (a, b, radius, model, kl2_0, kt2_0, ground.mu, coef, n_main, iz, table, k0, dk, wi, wt,
           lo, hi, pole_lo, pole_hi)
     # the pole-free Re D just off the Rayleigh pole keeps its sign (the sign of the pole's
     # residue): evaluated once per cell and branch, then reused
-    if pole_sign[br] == 0.0:
-        pole_sign[br] = 1.0 if _h(_scan_k(0, lo, hi, br), hx) > 0.0 else -1.0
-    s0 = pole_sign[br]
-    gap = (gap_j, gap_m, gap_n, gap_int)
+    if cont[br, POLE_SIGN] == 0.0:
+        cont[br, POLE_SIGN] = 1.0 if _h(_scan_k(0, lo, hi, br), hx) > 0.0 else -1.0
+    s0 = cont[br, POLE_SIGN]
     found = False
     is_continued = False  # the bracket comes from continuation, not from a scan
     ka = kb = ha = hb = 0.0
@@ -295,16 +309,18 @@ def _solve_branch(br, ic, jf, pt, table, state, ground, lattice, tables, out):
         found, is_continued, ka, ha, kb, hb = continued_bracket(
             br, w, w1, w2, w3, root_real, root_prev2, root_prev3, lo, hi, s0, hx
         )
-    if not found and root_real == 0.0 and gap_j[br] > 0 and is_fine_step:
-        if gap_holds(br, lo, hi, pole_lo, pole_hi, s0, hx, *gap):
+    if not found and root_real == 0.0 and cnt[br, GAP_J] > 0 and is_fine_step:
+        if gap_holds(br, lo, hi, pole_lo, pole_hi, s0, hx, cont, cnt):
             return False, 0.0
     if not found:
-        found, ka, ha, kb, hb = scan_bracket(br, lo, hi, pole_lo, pole_hi, s0, hx, *gap)
+        found, ka, ha, kb, hb = scan_bracket(
+            br, lo, hi, pole_lo, pole_hi, s0, hx, cont, cnt
+        )
         if not found:
             return False, 0.0
-    gap_j[br] = -1
+    cnt[br, GAP_J] = -1
     k_re = illinois(ka, ha, kb, hb, is_continued, lo, hi, br, hx)
-    prev_k[br] = k_re
+    cont[br, PREV_K] = k_re
     d0, dd0, r0, dr0, m0 = d_at_real_root(
         k_re, iz, a, table, k0, dk, wi, wt, lattice, kl2, kt2, ground.mu_lossy
     )
@@ -314,25 +330,26 @@ def _solve_branch(br, ic, jf, pt, table, state, ground, lattice, tables, out):
         return False, 0.0
     if not (math.isfinite(kk.real) and math.isfinite(kk.imag)) or abs(kk.imag) > kk.real:
         return False, 0.0
-    out.k[br, ic, jf] = kk
-    out.status[br, ic, jf] = FIRST_ORDER if is_first_order else ROOT
+    k_out[br, ic, jf] = kk
+    status_out[br, ic, jf] = FIRST_ORDER if is_first_order else ROOT
     return True, (m0 + r0 - iz).imag
 
 
-@njit(cache=True)
-def _channel_split(br, ic, jf, pt, total, ground, lattice, out, parts, best):
+@njit(cache=True, inline="always")
+def _channel_split(br, ic, jf, pt, total, ground, b, radius, model, coef, n_main, k_out, shares,
+                   angle, parts, best):
     """Channel parts and angles at K' of a stored root: each radiating main harmonic's Im T_m
     (lossless substrate) split into shear and compressional (`shear_share_at`), forward where
     K' + 2 pi m / a > 0; the rest of total = Im(Sigma - 1/Z) at K' is absorbed. Shares are the
     parts over their sum where K'' > 0, else 0."""
     w, a, g = pt[0], pt[2], pt[3]
-    b, radius, model, coef, n_main = lattice
     m_lo = 0 if model == 2 else -n_main
     m_hi = 1 if model == 2 else n_main
-    kk = out.k[br, ic, jf]
+    kk = k_out[br, ic, jf]
     kp = kk.real
     kl2r = (w / ground.cl) ** 2
     kt2r = (w / ground.ct) ** 2
+    mu_re = ground.mu.real
     for ch in range(4):
         parts[ch] = 0.0
         best[ch] = 0.0
@@ -341,7 +358,7 @@ def _channel_split(br, ic, jf, pt, total, ground, lattice, out, parts, best):
         xi2 = kx * kx
         if xi2 >= kt2r:
             continue
-        im = compliance_im_at(xi2, kl2r, kt2r, ground.mu.real)
+        im = compliance_im_at(xi2, kl2r, kt2r, mu_re)
         im = max(im * _ff2_re(xi2, radius, model, coef) / (a * b), 0.0)
         sh = shear_share_at(xi2, kl2r, kt2r)
         base = 0 if kx > 0.0 else 2
@@ -350,9 +367,9 @@ def _channel_split(br, ic, jf, pt, total, ground, lattice, out, parts, best):
             k2 = kt2r if typ == 0 else kl2r
             ch = base + typ
             parts[ch] += pm
-            if xi2 < k2 and (pm > best[ch] or math.isnan(out.angle[br, ch, ic, jf])):
+            if xi2 < k2 and (pm > best[ch] or math.isnan(angle[br, ch, ic, jf])):
                 best[ch] = pm
-                out.angle[br, ch, ic, jf] = math.asin(max(min(kx / math.sqrt(k2), 1.0), -1.0))
+                angle[br, ch, ic, jf] = math.asin(max(min(kx / math.sqrt(k2), 1.0), -1.0))
     if not math.isfinite(total):
         total = 0.0
     psum = parts[0] + parts[1] + parts[2] + parts[3]
@@ -360,5 +377,5 @@ def _channel_split(br, ic, jf, pt, total, ground, lattice, out, parts, best):
     ssum = psum + absorbed
     if kk.imag > 0.0 and ssum > 0.0:
         for ch in range(4):
-            out.shares[br, ch, ic, jf] = parts[ch] / ssum
-        out.shares[br, 4, ic, jf] = absorbed / ssum
+            shares[br, ch, ic, jf] = parts[ch] / ssum
+        shares[br, 4, ic, jf] = absorbed / ssum
