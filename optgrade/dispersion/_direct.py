@@ -221,6 +221,11 @@ def solve_points(
 ) -> dict[str, np.ndarray]:
     """Root engine of the direct solver (the surrogate's compiled kernel mirrors it).
 
+    Per branch: the bracket between the Rayleigh pole and the nearest harmonic pole
+    (`_branch_bounds`), the scan outwards from the pole (`_scan_brackets`), Illinois on the
+    real axis (`_illinois`), Newton to the complex root with its acceptance test
+    (`_complex_roots`) and the channel split of the accepted roots (`_store_roots`).
+
     Parameters
     ----------
     w, inv_z, a : ndarray (n,)
@@ -247,13 +252,14 @@ def solve_points(
     kr = w / substrate.cr
     g = 2.0 * np.pi / a
     is_homog = model == "homogenised"
-    orders = [0] if is_homog else list(range(-n_main, n_main))
     p_lo, p_hi = _pole_bounds(kr, g, n_main, is_homog)
-    out_k = np.full((2, n), np.nan + 0j)
-    out_sh = np.zeros((2, 5, n))
-    out_an = np.full((2, 4, n), np.nan)
-    out_leaky = np.zeros((2, n), dtype=bool)
-    out_fo = np.zeros((2, n), dtype=bool)
+    out = {
+        "k": np.full((2, n), np.nan + 0j),
+        "shares": np.zeros((2, 5, n)),
+        "angle": np.full((2, 4, n), np.nan),
+        "is_leaky": np.zeros((2, n), dtype=bool),
+        "is_first_order": np.zeros((2, n), dtype=bool),
+    }
 
     def h_of(K, sel, lo_s, hi_s, pole_lo, pole_hi):
         """Re(Sigma - 1/Z) times the pole factors of the bracket ends (pole-free)."""
@@ -264,129 +270,176 @@ def solve_points(
         f = f * np.where(pole_lo[sh], K - lo_s[sh], 1.0)
         return f * np.where(pole_hi[sh], hi_s[sh] - K, 1.0)
 
+    point = (w, a, inv_z, g)
+    lattice = (substrate, lossless, b, r, model, n_main)
     for branch in (0, 1):
-        if branch == 0:
-            lo = kr.copy()
-            hi = np.where(np.isfinite(p_hi), p_hi, 0.5 * g if is_homog else g)
-            pole_lo = np.ones(n, dtype=bool)
-            pole_hi = np.isfinite(p_hi)
-        else:
-            hi = kr.copy()
-            lo = np.where(np.isfinite(p_lo), p_lo, 1e-3 * kr)
-            pole_lo = np.isfinite(p_lo)
-            pole_hi = np.ones(n, dtype=bool)
-        valid = (hi > lo * (1.0 + 1e-9)) & (kr < (0.5 * g if is_homog else g))
-        idx = np.flatnonzero(valid)
-        if idx.size == 0:
+        bounds = _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog)
+        bracket = _scan_brackets(branch, bounds, h_of)
+        if bracket is None:
             continue
-        lo_i, hi_i, pl_i, ph_i = lo[idx], hi[idx], pole_lo[idx], pole_hi[idx]
-        # scan outwards from the Rayleigh pole, points clustered near it
-        u = (np.arange(1, _N_SCAN + 1) / _N_SCAN) ** 2
-        u[-1] = 1.0 - 1e-9
-        u = np.concatenate([[1e-9], u])
-        if branch == 0:
-            Ks = lo_i[:, None] + (hi_i - lo_i)[:, None] * u[None, :]
-        else:
-            Ks = hi_i[:, None] - (hi_i - lo_i)[:, None] * u[None, :]
-        H = h_of(Ks, idx, lo_i, hi_i, pl_i, ph_i)
-        # h keeps the sign of the pole's residue next to it; the first sign change outwards
-        # brackets the root
-        neg = np.sign(H) != np.sign(H[:, :1])
-        first = np.argmax(neg, axis=1)
-        found = neg[np.arange(idx.size), first] & (first > 0)
-        if not np.any(found):
-            continue
-        sel = idx[found]
-        j = first[found]
-        rows = np.flatnonzero(found)
-        ka, kb = Ks[rows, j - 1], Ks[rows, j]
-        ha, hb = H[rows, j - 1], H[rows, j]
-        lo_s, hi_s, pl_s, ph_s = lo_i[rows], hi_i[rows], pl_i[rows], ph_i[rows]
-        active = np.ones(sel.size, dtype=bool)
-        for _ in range(_MAX_ILLINOIS):
-            act = np.flatnonzero(active)
-            if act.size == 0:
-                break
-            den = hb[act] - ha[act]
-            safe = np.where(den != 0, den, 1.0)
-            kc = np.where(
-                den != 0,
-                (ka[act] * hb[act] - kb[act] * ha[act]) / safe,
-                0.5 * (ka[act] + kb[act]),
-            )
-            hc = h_of(kc, sel[act], lo_s[act], hi_s[act], pl_s[act], ph_s[act])
-            flip = np.sign(hc) != np.sign(hb[act])
-            ka_new = np.where(flip, kb[act], ka[act])
-            ha_new = np.where(flip, hb[act], 0.5 * ha[act])
-            moved = np.abs(kc - kb[act])
-            ka[act], ha[act] = ka_new, ha_new
-            kb[act], hb[act] = kc, hc
-            done = (
-                (np.abs(kb[act] - ka[act]) <= 1e-13 * np.abs(kc))
-                | (hc == 0)
-                | (moved <= 1e-13 * np.abs(kc))
-            )
-            active[act[done]] = False
-        k_re = kb
-        # complex root: Newton with exact main terms and Taylor-continued rest
-        w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
-        r0, dr0 = rest(k_re, sel)
-        m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model, n_main)
-        dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model, n_main)
-        d0 = iz_s - m0 - r0
-        dd0 = -(dm0 + dr0)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            k_first = k_re + 1j * (-d0.imag / dd0.real)
-        is_real = np.abs(d0.imag) <= 1e-14 * np.abs(iz_s)
-        kk = k_re.astype(complex)
-        step = np.zeros(sel.size, dtype=complex)
-        # substrate loss moves the Rayleigh pole off the axis; Newton on the pole-free D R_0
-        # reaches the lossy root directly (optional continuation stages in the loss factor)
-        n_stages = _N_LOSS_STAGES if substrate.loss_factor > 0 else 1
-        for stage in range(1, n_stages + 1):
-            eta = substrate.loss_factor * stage / n_stages
-            sub_s = substrate.with_loss(eta)
-            for _ in range(_N_NEWTON):
-                # Newton on D(K) R_0(K): the Rayleigh function of the m = 0 harmonic removes
-                # the nearby (loss-displaced) Rayleigh pole, widening Newton's basin
-                step = _newton_step(kk, k_re, w_s, a_s, iz_s, r0, dr0, sub_s, b, r, model, n_main)
-                step = np.where(is_real, 0.0, step)
-                kk = kk - step
-        ok = np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
-        # Newton must not cross a branch point of a radiating main harmonic
-        kt_s, kl_s = w_s / substrate.ct, w_s / substrate.cl
-        for mi in orders:
-            for edge in (kt_s, kl_s, -kt_s, -kl_s):
-                e = edge - mi * g[sel]
-                ok &= np.sign(kk.real - e) == np.sign(k_re - e)
-        ok &= kk.imag > -1e-9 * np.abs(kk)
-        kk = np.where(ok, kk, k_first)
-        fo = ~ok
-        # a first-order value with K'' < 0 (growth) is not a mode we can follow
-        kk = np.where(fo & (kk.imag < 0), np.nan, kk)
-        # drop overdamped roots
-        keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real)
-        kk = np.where(keep, kk, np.nan)
-        out_k[branch, sel] = kk
-        out_fo[branch, sel] = fo & keep
-        sh, an = _channels(kk.real, w_s, a_s, substrate, lossless, b, r, model, orders)
-        total = (m0 + r0 - iz_s).imag
-        total = np.where(np.isfinite(total), total, 0.0)
-        absorbed = np.maximum(total - sh.sum(axis=0), 0.0)
-        allp = np.concatenate([sh, absorbed[None]], axis=0)
-        ssum = allp.sum(axis=0)
-        has_decay = keep & (kk.imag > 0) & (ssum > 0)
-        out_sh[branch][:, sel] = np.where(has_decay, allp / np.where(ssum > 0, ssum, 1.0), 0.0)
-        an[:, ~keep] = np.nan
-        out_an[branch][:, sel] = an
-        out_leaky[branch, sel] = keep & np.any(np.isfinite(an), axis=0)
-    return {
-        "k": out_k,
-        "shares": out_sh,
-        "angle": out_an,
-        "is_leaky": out_leaky,
-        "is_first_order": out_fo,
-    }
+        sel, ka, kb, ha, hb, ends = bracket
+        k_re = _illinois(sel, ka, kb, ha, hb, ends, h_of)
+        kk, fo, m0, r0 = _complex_roots(k_re, sel, point, lattice, rest)
+        _store_roots(out, branch, sel, kk, fo, m0, r0, point, lattice)
+    return out
+
+
+def _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog):
+    """Real-axis bracket of a branch at every point: (lo, hi, pole_lo, pole_hi, valid). Branch
+    0 (lower, slow) lies between kR and the nearest harmonic pole above it (or the zone edge),
+    branch 1 (upper) between the nearest pole below kR (or 1e-3 kR) and kR; pole_lo / pole_hi
+    mark the ends that are poles; valid where the bracket is not empty and kR is inside the
+    zone (the homogenised model's zone edge is pi / a)."""
+    n = kr.size
+    zone = 0.5 * g if is_homog else g
+    if branch == 0:
+        lo = kr.copy()
+        hi = np.where(np.isfinite(p_hi), p_hi, zone)
+        pole_lo = np.ones(n, dtype=bool)
+        pole_hi = np.isfinite(p_hi)
+    else:
+        hi = kr.copy()
+        lo = np.where(np.isfinite(p_lo), p_lo, 1e-3 * kr)
+        pole_lo = np.isfinite(p_lo)
+        pole_hi = np.ones(n, dtype=bool)
+    valid = (hi > lo * (1.0 + 1e-9)) & (kr < zone)
+    return lo, hi, pole_lo, pole_hi, valid
+
+
+def _scan_brackets(branch, bounds, h_of):
+    """Scan outwards from the Rayleigh pole (points clustered quadratically near it): the
+    pole-free h keeps the sign of the pole's residue next to it, so the first sign change
+    outwards brackets the root. Returns None where no point has one, else (sel, ka, kb, ha, hb,
+    ends) with the points sel, the bracket and ends = (lo, hi, pole_lo, pole_hi) at sel."""
+    lo, hi, pole_lo, pole_hi, valid = bounds
+    idx = np.flatnonzero(valid)
+    if idx.size == 0:
+        return None
+    lo_i, hi_i, pl_i, ph_i = lo[idx], hi[idx], pole_lo[idx], pole_hi[idx]
+    u = (np.arange(1, _N_SCAN + 1) / _N_SCAN) ** 2
+    u[-1] = 1.0 - 1e-9
+    u = np.concatenate([[1e-9], u])
+    if branch == 0:
+        Ks = lo_i[:, None] + (hi_i - lo_i)[:, None] * u[None, :]
+    else:
+        Ks = hi_i[:, None] - (hi_i - lo_i)[:, None] * u[None, :]
+    H = h_of(Ks, idx, lo_i, hi_i, pl_i, ph_i)
+    neg = np.sign(H) != np.sign(H[:, :1])
+    first = np.argmax(neg, axis=1)
+    found = neg[np.arange(idx.size), first] & (first > 0)
+    if not np.any(found):
+        return None
+    j = first[found]
+    rows = np.flatnonzero(found)
+    ends = (lo_i[rows], hi_i[rows], pl_i[rows], ph_i[rows])
+    return idx[found], Ks[rows, j - 1], Ks[rows, j], H[rows, j - 1], H[rows, j], ends
+
+
+def _illinois(sel, ka, kb, ha, hb, ends, h_of):
+    """Illinois (regula falsi with the halving rule) on every bracket at once, to a relative
+    1e-13 in K; returns the real roots (1/m)."""
+    lo_s, hi_s, pl_s, ph_s = ends
+    active = np.ones(sel.size, dtype=bool)
+    for _ in range(_MAX_ILLINOIS):
+        act = np.flatnonzero(active)
+        if act.size == 0:
+            break
+        den = hb[act] - ha[act]
+        safe = np.where(den != 0, den, 1.0)
+        kc = np.where(
+            den != 0,
+            (ka[act] * hb[act] - kb[act] * ha[act]) / safe,
+            0.5 * (ka[act] + kb[act]),
+        )
+        hc = h_of(kc, sel[act], lo_s[act], hi_s[act], pl_s[act], ph_s[act])
+        flip = np.sign(hc) != np.sign(hb[act])
+        ka_new = np.where(flip, kb[act], ka[act])
+        ha_new = np.where(flip, hb[act], 0.5 * ha[act])
+        moved = np.abs(kc - kb[act])
+        ka[act], ha[act] = ka_new, ha_new
+        kb[act], hb[act] = kc, hc
+        done = (
+            (np.abs(kb[act] - ka[act]) <= 1e-13 * np.abs(kc))
+            | (hc == 0)
+            | (moved <= 1e-13 * np.abs(kc))
+        )
+        active[act[done]] = False
+    return kb
+
+
+def _complex_roots(k_re, sel, point, lattice, rest):
+    """Complex Bloch wavenumbers from the real-axis roots: Newton on the pole-free D R_0 with
+    exact main terms and the Taylor-continued Rest (optionally in stages of the substrate's
+    loss factor), accepted where it converged without crossing a branch point of a radiating
+    main harmonic and without growth; elsewhere the first-order estimate k_re - i Im D / Re D'.
+    Returns (K with nan where dropped, is_first_order, main terms and Rest at k_re)."""
+    w, a, inv_z, g = point
+    substrate, _, b, r, model, n_main = lattice
+    orders = [0] if model == "homogenised" else list(range(-n_main, n_main))
+    w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
+    r0, dr0 = rest(k_re, sel)
+    m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model, n_main)
+    dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model, n_main)
+    d0 = iz_s - m0 - r0
+    dd0 = -(dm0 + dr0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k_first = k_re + 1j * (-d0.imag / dd0.real)
+    is_real = np.abs(d0.imag) <= 1e-14 * np.abs(iz_s)
+    kk = k_re.astype(complex)
+    step = np.zeros(sel.size, dtype=complex)
+    # substrate loss moves the Rayleigh pole off the axis; Newton on the pole-free D R_0
+    # reaches the lossy root directly (optional continuation stages in the loss factor)
+    n_stages = _N_LOSS_STAGES if substrate.loss_factor > 0 else 1
+    for stage in range(1, n_stages + 1):
+        eta = substrate.loss_factor * stage / n_stages
+        sub_s = substrate.with_loss(eta)
+        for _ in range(_N_NEWTON):
+            # Newton on D(K) R_0(K): the Rayleigh function of the m = 0 harmonic removes
+            # the nearby (loss-displaced) Rayleigh pole, widening Newton's basin
+            step = _newton_step(kk, k_re, w_s, a_s, iz_s, r0, dr0, sub_s, b, r, model, n_main)
+            step = np.where(is_real, 0.0, step)
+            kk = kk - step
+    ok = np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
+    # Newton must not cross a branch point of a radiating main harmonic
+    kt_s, kl_s = w_s / substrate.ct, w_s / substrate.cl
+    for mi in orders:
+        for edge in (kt_s, kl_s, -kt_s, -kl_s):
+            e = edge - mi * g[sel]
+            ok &= np.sign(kk.real - e) == np.sign(k_re - e)
+    ok &= kk.imag > -1e-9 * np.abs(kk)
+    kk = np.where(ok, kk, k_first)
+    fo = ~ok
+    # a first-order value with K'' < 0 (growth) is not a mode we can follow
+    kk = np.where(fo & (kk.imag < 0), np.nan, kk)
+    # drop overdamped roots
+    keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real)
+    return np.where(keep, kk, np.nan), fo, m0, r0
+
+
+def _store_roots(out, branch, sel, kk, fo, m0, r0, point, lattice):
+    """Store a branch's roots at points sel into out, with the channel split: each radiating
+    main harmonic's part (`_channels`), the rest of Im(Sigma - 1/Z) absorbed; shares where
+    K'' > 0, angles and the leaky flag where a bulk channel radiates."""
+    w, a, inv_z, _ = point
+    substrate, lossless, b, r, model, n_main = lattice
+    orders = [0] if model == "homogenised" else list(range(-n_main, n_main))
+    w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
+    keep = np.isfinite(kk)
+    out["k"][branch, sel] = kk
+    out["is_first_order"][branch, sel] = fo & keep
+    sh, an = _channels(kk.real, w_s, a_s, substrate, lossless, b, r, model, orders)
+    total = (m0 + r0 - iz_s).imag
+    total = np.where(np.isfinite(total), total, 0.0)
+    absorbed = np.maximum(total - sh.sum(axis=0), 0.0)
+    allp = np.concatenate([sh, absorbed[None]], axis=0)
+    ssum = allp.sum(axis=0)
+    has_decay = keep & (kk.imag > 0) & (ssum > 0)
+    out["shares"][branch][:, sel] = np.where(
+        has_decay, allp / np.where(ssum > 0, ssum, 1.0), 0.0
+    )
+    an[:, ~keep] = np.nan
+    out["angle"][branch][:, sel] = an
+    out["is_leaky"][branch, sel] = keep & np.any(np.isfinite(an), axis=0)
 
 
 def _channels(kp, w, a, substrate, lossless, b, r, model, orders):
