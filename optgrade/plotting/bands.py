@@ -3,14 +3,14 @@
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
+from optgrade._atomic import save_figure
 from optgrade.dispersion import Bands
 
-__all__ = ["plot_bands"]
+__all__ = ["draw_attenuation", "draw_band_diagram", "plot_bands"]
 
 _COLORS = ("#1f4e9c", "#c0392b")
 
@@ -26,27 +26,85 @@ def _freq_unit(fmax: float) -> tuple[float, str]:
 def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) -> Path:
     """Draw the band diagram and the attenuation of each branch; write a PNG atomically.
 
-    Left: frequency against Bloch wavenumber K' (extended zone 0..2 pi/a), with the shear,
-    compressional and Rayleigh lines, their folded images 2 pi/a - k, the zone edge pi/a, the
-    rod resonances; bound parts drawn solid, leaky parts as dots coloured by K''/K'.
-    Right: attenuation K'' a (nepers per cell, log scale) of the leaky or lossy parts.
+    Left (`draw_band_diagram`): frequency against Bloch wavenumber K' (extended zone
+    0..2 pi/a), with the shear, compressional and Rayleigh lines, their folded images
+    2 pi/a - k, the zone edge pi/a, the rod resonances; bound parts drawn solid, leaky parts as
+    dots coloured by K''/K'. Right (`draw_attenuation`): attenuation K'' a (nepers per cell,
+    log scale) of the leaky or lossy parts.
     """
     # a bare Figure (no pyplot): the caller's plotting backend is left alone
     from matplotlib.figure import Figure
-    from matplotlib.lines import Line2D
 
+    fig = Figure(figsize=(11, 7), layout="constrained")
+    ax, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [2.2, 1]})
+    sc = draw_band_diagram(ax, bands)
+    if sc is not None:
+        cax = ax.inset_axes([0.955, 0.08, 0.018, 0.4])
+        cb = fig.colorbar(sc, cax=cax)
+        cax.yaxis.set_ticks_position("left")
+        cax.yaxis.set_label_position("left")
+        cb.set_label("log10(K''/K')")
+    draw_attenuation(ax2, bands)
+    ax2.set_yticklabels([])
+    ax2.set_ylabel("")
+    fig.suptitle(title or _default_title(bands), fontsize=11)
+    return save_figure(fig, path)
+
+
+def _default_title(bands: Bands) -> str:
+    cell = bands.cell
+    head = f", head mass {cell.head_mass:.4g} kg" if cell.head_mass else ""
+    return (
+        f"{bands.model} model: rod L = {cell.height:.4g} m, d = {cell.rod.diameter:.4g} m{head}, "
+        f"spacing a = {cell.spacing:.4g} m, row pitch b = {cell.row_pitch:.4g} m"
+    )
+
+
+def draw_band_diagram(ax, bands: Bands):
+    """Draw the band diagram of `plot_bands` (left panel) into ``ax``. Returns the scatter of
+    the leaky points (for a colour bar), or None where there are none."""
+    cell = bands.cell
+    f = bands.freq
+    scale, unit = _freq_unit(float(f.max()))
+    fs = f * scale
+    g = 2 * np.pi / cell.spacing
+    _draw_light_lines(ax, bands, fs, unit)
+    for lo, hi in bands.gaps:
+        ax.axhspan(lo * scale, hi * scale, color="#eeeeee", alpha=0.6, lw=0)
+    sc = None
+    for br, col in zip(bands.branches, _COLORS, strict=False):
+        k = br.k
+        kp = k.real
+        finite = np.isfinite(k)
+        ax.plot(np.where(finite & ~br.is_leaky, kp, np.nan), fs, color=col, lw=2.2)
+        leaky = finite & br.is_leaky
+        if leaky.any():
+            ratio = np.clip(k.imag[leaky] / kp[leaky], 1e-6, 1.0)
+            sc = ax.scatter(
+                kp[leaky], fs[leaky], c=np.log10(ratio), cmap="viridis_r", vmin=-6, vmax=0,
+                s=14, edgecolors=col, linewidths=0.6, zorder=3,
+            )
+            fo = leaky & br.is_first_order
+            if fo.any():
+                ax.scatter(kp[fo], fs[fo], marker="x", color="k", s=18, lw=0.8, zorder=4)
+    ax.set_xlim(0, g)
+    ax.set_ylim(fs.min(), fs.max())
+    ax.set_xlabel("Bloch wavenumber K' (rad/m), extended zone")
+    ax.set_ylabel(f"frequency ({unit})")
+    _band_legend(ax)
+    return sc
+
+
+def _draw_light_lines(ax, bands: Bands, fs, unit) -> None:
+    """Shear, compressional and Rayleigh lines with their folded images, the radiating regions
+    shaded, the zone edge and the rod resonances in the band."""
     cell = bands.cell
     sub = cell.substrate
     a = cell.spacing
     f = bands.freq
-    scale, unit = _freq_unit(float(f.max()))
-    fs = f * scale
     w = 2 * np.pi * f
     g = 2 * np.pi / a
-    fig = Figure(figsize=(11, 7), layout="constrained")
-    ax, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [2.2, 1]})
-    # light lines and folded images
-    kmax = g
+    scale, _ = _freq_unit(float(f.max()))
     styles = [
         (sub.ct, "shear  $k_T$", "#555555", "-"),
         (sub.cl, "compressional  $k_L$", "#999999", "-"),
@@ -55,130 +113,62 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
     for c, label, col, ls in styles:
         k = w / c
         ax.plot(k, fs, color=col, ls=ls, lw=1.0, label=label)
-        if c != sub.cr:
-            ax.plot(g - k, fs, color=col, ls=":", lw=1.0)
-        else:
-            ax.plot(g - k, fs, color=col, ls=":", lw=0.8)
+        ax.plot(g - k, fs, color=col, ls=":", lw=0.8 if c == sub.cr else 1.0)
     # radiating regions: forward (K' < kT) and backward (2 pi/a - K' < kT) shaded
     kt = w / sub.ct
-    ax.fill_betweenx(fs, 0, np.minimum(kt, kmax), color="#f2d7a6", alpha=0.35, lw=0)
-    ax.fill_betweenx(fs, np.maximum(g - kt, 0), kmax, color="#cfe0f3", alpha=0.45, lw=0)
+    ax.fill_betweenx(fs, 0, np.minimum(kt, g), color="#f2d7a6", alpha=0.35, lw=0)
+    ax.fill_betweenx(fs, np.maximum(g - kt, 0), g, color="#cfe0f3", alpha=0.45, lw=0)
     ax.axvline(np.pi / a, color="k", lw=0.8, ls="-.")
     ax.text(np.pi / a, fs.min(), r" $\pi/a$ (zone edge)", va="bottom", ha="left", fontsize=9)
     for i, fr in enumerate(bands.resonances):
         if f.min() <= fr <= f.max():
             ax.axhline(fr * scale, color="#7b3fa0", lw=0.9, ls="--")
-            ax.text(
-                kmax * 0.01,
-                fr * scale,
-                f"rod resonance {i + 1}",
-                color="#7b3fa0",
-                ha="left",
-                va="bottom",
-                fontsize=8,
-            )
-    for lo, hi in bands.gaps:
-        ax2.axhspan(lo * scale, hi * scale, color="#eeeeee", lw=0)
-        ax.axhspan(lo * scale, hi * scale, color="#eeeeee", alpha=0.6, lw=0)
-    sc = None
-    for br, col in zip(bands.branches, _COLORS, strict=False):
-        k = br.k
-        kp = k.real
-        finite = np.isfinite(k)
-        bound = finite & ~br.is_leaky
-        bound_line = np.where(bound, kp, np.nan)
-        ax.plot(bound_line, fs, color=col, lw=2.2)
-        leaky = finite & br.is_leaky
-        if leaky.any():
-            ratio = np.clip(k.imag[leaky] / kp[leaky], 1e-6, 1.0)
-            sc = ax.scatter(
-                kp[leaky],
-                fs[leaky],
-                c=np.log10(ratio),
-                cmap="viridis_r",
-                vmin=-6,
-                vmax=0,
-                s=14,
-                edgecolors=col,
-                linewidths=0.6,
-                zorder=3,
-            )
-            fo = leaky & br.is_first_order
-            if fo.any():
-                ax.scatter(kp[fo], fs[fo], marker="x", color="k", s=18, lw=0.8, zorder=4)
-        att = np.where(finite & (k.imag > 0), k.imag * a, np.nan)
-        ax2.plot(att, fs, color=col, lw=1.6, marker=".", ms=3)
-    ax.set_xlim(0, kmax)
-    ax.set_ylim(fs.min(), fs.max())
-    ax.set_xlabel("Bloch wavenumber K' (rad/m), extended zone")
-    ax.set_ylabel(f"frequency ({unit})")
-    handles, labels = ax.get_legend_handles_labels()
+            ax.text(g * 0.01, fr * scale, f"rod resonance {i + 1} ({fr * scale:.4g} {unit})",
+                    color="#7b3fa0", ha="left", va="bottom", fontsize=8)
+
+
+def _band_legend(ax) -> None:
+    from matplotlib.lines import Line2D
+
+    handles, _ = ax.get_legend_handles_labels()
     handles += [
         Line2D([], [], color=_COLORS[0], lw=2.2, label="lower branch, bound"),
         Line2D([], [], color=_COLORS[1], lw=2.2, label="upper branch, bound"),
-        Line2D(
-            [],
-            [],
-            color="w",
-            marker="o",
-            markeredgecolor="k",
-            markerfacecolor="#55a",
-            label="leaky (colour: K''/K')",
-        ),
+        Line2D([], [], color="w", marker="o", markeredgecolor="k", markerfacecolor="#55a",
+               label="leaky (colour: K''/K')"),
         Line2D([], [], color="k", ls=":", lw=1, label=r"folded lines $2\pi/a - k$"),
         Line2D([], [], color="k", marker="x", ls="", label="first-order K'' (branch point)"),
     ]
-    ax.legend(
-        handles=handles,
-        loc="upper left",
-        bbox_to_anchor=(0.0, -0.09),
-        ncol=4,
-        fontsize=8,
-        frameon=False,
-    )
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, -0.09), ncol=4,
+              fontsize=8, frameon=False)
     ax.text(
-        0.01,
-        0.99,
+        0.01, 0.99,
         "shaded: forward radiation $K'<k_T$ (orange), backward radiation\n"
         r"$2\pi/a-K'<k_T$ (blue), both (overlap); grey bands: no branch (gap)",
-        transform=ax.transAxes,
-        va="top",
-        fontsize=8,
+        transform=ax.transAxes, va="top", fontsize=8,
         bbox=dict(facecolor="white", alpha=0.8, lw=0),
     )
-    if sc is not None:
-        cax = ax.inset_axes([0.955, 0.08, 0.018, 0.4])
-        cb = fig.colorbar(sc, cax=cax)
-        cax.yaxis.set_ticks_position("left")
-        cax.yaxis.set_label_position("left")
-        cb.set_label("log10(K''/K')")
-    ax2.set_xscale("log")
+
+
+def draw_attenuation(ax, bands: Bands) -> None:
+    """Draw the attenuation panel of `plot_bands` (K'' a in Np per cell against frequency, log
+    scale; gaps shaded) into ``ax``."""
     from matplotlib.ticker import LogLocator, NullFormatter
 
-    ax2.xaxis.set_major_locator(LogLocator(base=10))
-    ax2.xaxis.set_minor_formatter(NullFormatter())
-    ax2.set_xlabel("attenuation K'' a (Np per cell)")
-    ax2.set_ylim(fs.min(), fs.max())
-    ax2.grid(True, which="both", alpha=0.3)
-    ax2.set_yticklabels([])
-    rod = cell.rod
-    head = f", head mass {cell.head_mass:.4g} kg" if cell.head_mass else ""
-    fig.suptitle(
-        title
-        or (
-            f"{bands.model} model: rod L = {cell.height:.4g} m, d = {rod.diameter:.4g} m{head}, "
-            f"spacing a = {a:.4g} m, row pitch b = {cell.row_pitch:.4g} m"
-        ),
-        fontsize=11,
-    )
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=path.stem, suffix=".png")
-    os.close(fd)
-    try:
-        fig.savefig(tmp, dpi=130)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
+    f = bands.freq
+    scale, unit = _freq_unit(float(f.max()))
+    fs = f * scale
+    a = bands.cell.spacing
+    for lo, hi in bands.gaps:
+        ax.axhspan(lo * scale, hi * scale, color="#eeeeee", lw=0)
+    for br, col in zip(bands.branches, _COLORS, strict=False):
+        k = br.k
+        att = np.where(np.isfinite(k) & (k.imag > 0), k.imag * a, np.nan)
+        ax.plot(att, fs, color=col, lw=1.6, marker=".", ms=3)
+    ax.set_xscale("log")
+    ax.xaxis.set_major_locator(LogLocator(base=10))
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_xlabel("attenuation K'' a (Np per cell)")
+    ax.set_ylim(fs.min(), fs.max())
+    ax.set_ylabel(f"frequency ({unit})")
+    ax.grid(True, which="both", alpha=0.3)
