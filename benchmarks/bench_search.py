@@ -48,7 +48,6 @@ def _with(study, **changes):
 
 def _run(study, out: Path, name: str, **kw):
     kw.setdefault("show_progress", False)
-    kw.setdefault("do_export", False)
     url = f"sqlite:///{out / (name + '.db')}"
     if (out / (name + ".db")).exists():
         (out / (name + ".db")).unlink()

@@ -79,7 +79,7 @@ def run(name: str, budget: float, ref: float, out: Path, is_stop: bool = True,
     try:
         o = search.run_search(study, out / name, storage=f"sqlite:///{db}", n_trials=100_000,
                               n_jobs=2, time_budget=budget, show_progress=False,
-                              do_export=False, on_told=on_told)
+                              on_told=on_told)
     finally:
         search.make_sampler = orig_make
         if orig_starts is not None:
