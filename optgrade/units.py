@@ -7,6 +7,14 @@ degrees where a field name says so (``angle_window_deg``).
 Dimensional values must carry their unit as a string. A bare number (``2.5``) or a unitless
 string (``"2.5"``) is refused with a message asking for a unit, because a silent guess of the unit
 (mm or m? Hz or kHz?) is the most common way a study goes wrong by orders of magnitude.
+
+A quantity is **one number and one unit** (:data:`ACCEPTED_FORM`): the number is written with a
+decimal point, an optional exponent and nothing inside it (no decimal comma, no spaces or
+thousands separators, no second dot); the unit is unit names joined by ``*`` or ``/`` with small
+integer powers (``kg/m^3``). Anything else, including arithmetic (``"0.5 mm + 0.5 mm"``,
+``"9**9**9 mm"``) and implicit products (``"2 3 mm"``), is refused before pint sees it, so no
+expression is ever evaluated. Angular units (``rad/s``, ``rpm``, ``cycle/s``) are refused for
+frequencies: a frequency is written in Hz, f = omega / (2 pi).
 """
 
 from __future__ import annotations
@@ -18,6 +26,7 @@ from typing import Any
 import pint
 
 __all__ = [
+    "ACCEPTED_FORM",
     "DIMENSIONS",
     "UnitError",
     "format_quantity",
@@ -55,6 +64,25 @@ DIMENSIONS: dict[str, tuple[str, str]] = {
 # A quantity string must start with a number; pint alone would read "mm" as 1 mm.
 _LEADING_NUMBER = re.compile(r"^\s*[-+]?(\d|\.\d|nan\b|inf\b)", re.IGNORECASE)
 
+#: Longest quantity text read at all (characters); "7850 kg/m^3" is 11.
+MAX_QUANTITY_CHARS = 64
+#: Most digits in the number (mantissa): a double holds 17 significant digits.
+MAX_DIGITS = 30
+#: The accepted form, shown in every refusal of a malformed quantity.
+ACCEPTED_FORM = (
+    "one number and one unit, e.g. \"2.5 mm\", \"150 kHz\", \"1.2e5 Hz\", \"7850 kg/m^3\" "
+    "(decimal point, no spaces, commas or separators inside the number, no arithmetic)"
+)
+# number: digits with at most one decimal point, optional exponent (a huge exponent gives inf and is refused as not finite)
+_NUMBER = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d{1,9})?"
+# unit: names (letters, the micro signs, an underscore) with optional small integer powers,
+# joined by * or /; no digits outside the powers, no other operators
+_NAME = r"[A-Za-z_\u00b5\u03bc\u00b0]+"
+_POWER = r"(?:(?:\^|\*\*)[-+]?[1-9])?"
+_UNIT = rf"{_NAME}{_POWER}(?:\s*[*/]\s*{_NAME}{_POWER})*"
+_QUANTITY = re.compile(rf"^(?P<number>{_NUMBER})\s*(?P<unit>{_UNIT})$")
+_NUMBER_ONLY = re.compile(rf"^{_NUMBER}$")
+
 
 class UnitError(ValueError):
     """A value that is not a valid quantity of the expected dimension (message = the reason)."""
@@ -65,6 +93,73 @@ def _si_unit(dimension: str) -> pint.Unit:
         return ureg.Unit(DIMENSIONS[dimension][0])
     except KeyError:
         raise ValueError(f"unknown dimension name {dimension!r}") from None
+
+
+def _shown(value: str) -> str:
+    """The user's text for a message, shortened (a 100,000-digit number is not echoed)."""
+    return repr(value) if len(value) <= MAX_QUANTITY_CHARS else repr(value[:40] + "...")
+
+
+def _read_quantity(text: str, value: str, dimension: str, example: str) -> Any:
+    """One number and one unit -> pint Quantity; anything else refused without evaluation."""
+    if len(text) > MAX_QUANTITY_CHARS:
+        raise UnitError(f"{_shown(value)} is {len(text)} characters long, more than a quantity "
+                        f"needs (limit {MAX_QUANTITY_CHARS}); write {ACCEPTED_FORM}")
+    if not _LEADING_NUMBER.match(text):
+        raise UnitError(f"{value!r} does not start with a number; expected e.g. \"{example}\"")
+    if re.match(r"^[-+]?(nan|inf)", text, re.IGNORECASE):
+        raise UnitError(f"{value!r} is not a finite number")
+    if _NUMBER_ONLY.match(text):
+        raise UnitError(
+            f"{value!r} has no unit; write the {dimension} with its unit, e.g. \"{example}\""
+        )
+    match = _QUANTITY.match(text)
+    if match is None:
+        raise UnitError(f"cannot read {value!r} as a quantity: {_malformed_reason(text)}; "
+                        f"write {ACCEPTED_FORM}")
+    number = match.group("number")
+    if len(re.sub(r"[^0-9]", "", number.split("e")[0].split("E")[0])) > MAX_DIGITS:
+        raise UnitError(f"{_shown(value)} has more than {MAX_DIGITS} digits in its number; "
+                        f"write {ACCEPTED_FORM}")
+    unit_text = match.group("unit").replace("**", "^")
+    try:
+        unit = ureg.parse_units(unit_text)
+    except pint.UndefinedUnitError as exc:
+        names = exc.unit_names if isinstance(exc.unit_names, (list, tuple)) else [exc.unit_names]
+        raise UnitError(f"unknown unit {', '.join(map(str, names))!r} in {value!r}") from None
+    except Exception as exc:  # pint raises many kinds on malformed unit text
+        raise UnitError(f"cannot read the unit of {value!r} ({type(exc).__name__}); "
+                        f"write {ACCEPTED_FORM}") from None
+    if unit.dimensionless and not _is_angular(ureg.Quantity(1.0, unit)):
+        raise UnitError(
+            f"{value!r} has no unit; write the {dimension} with its unit, e.g. \"{example}\""
+        )
+    return ureg.Quantity(float(number), unit)
+
+
+def _malformed_reason(text: str) -> str:
+    """Why a quantity text does not have the accepted form (for the message)."""
+    number_part = re.match(r"^[-+]?[\d.,\s_']*", text).group(0).strip()
+    if re.search(r"\d,\d", text):
+        return "decimal commas and thousands separators are not read (use a decimal point)"
+    if re.search(r"\d[\s_']+\d", number_part):
+        return "spaces or separators inside a number are not read (no implicit products)"
+    if number_part.count(".") > 1:
+        return "a number has at most one decimal point"
+    if re.search(r"[+\-]\s*\d|\*\*?\s*\d|/\s*\d|[()]", text[1:]):
+        return "arithmetic is not evaluated (one number, one unit)"
+    if re.search(r"\d", text[len(number_part):]):
+        return "only one number is allowed (digits after the unit start)"
+    return "not one number followed by one unit"
+
+
+def _is_angular(quantity: Any) -> bool:
+    """Does the quantity's unit contain an angle (rad, deg, turn, revolution, cycle, rpm)?"""
+    try:
+        root = quantity.to_root_units().units
+    except Exception:  # pragma: no cover - pint internals
+        return False
+    return "radian" in dict(root._units)
 
 
 def parse_quantity(value: Any, dimension: str) -> float:
@@ -106,25 +201,19 @@ def parse_quantity(value: Any, dimension: str) -> float:
     text = value.strip()
     if not text:
         raise UnitError(f"empty value; expected a {dimension} with a unit, e.g. \"{example}\"")
-    if not _LEADING_NUMBER.match(text):
-        raise UnitError(f"{value!r} does not start with a number; expected e.g. \"{example}\"")
-    try:
-        quantity = ureg.Quantity(text)
-    except pint.UndefinedUnitError as exc:
-        names = exc.unit_names if isinstance(exc.unit_names, (list, tuple)) else [exc.unit_names]
-        raise UnitError(f"unknown unit {', '.join(map(str, names))!r} in {value!r}") from None
-    except Exception as exc:  # pint raises many kinds on malformed text
-        raise UnitError(f"cannot read {value!r} as a quantity ({type(exc).__name__})") from None
-    if not isinstance(quantity, ureg.Quantity):  # pragma: no cover - defensive
-        raise UnitError(f"cannot read {value!r} as a quantity")
-    if quantity.unitless:
+    quantity = _read_quantity(text, value, dimension, example)
+    if dimension == "frequency" and _is_angular(quantity):
         raise UnitError(
-            f"{value!r} has no unit; write the {dimension} with its unit, e.g. \"{example}\""
+            f"{_shown(value)} is an angular rate; angular units (rad/s, rpm, cycle/s) are refused "
+            f"for frequencies: write the frequency in Hz (f = omega / (2 pi)), e.g. \"{example}\""
         )
     if dimension == "angle":
         is_angle = quantity.units in (ureg.degree, ureg.radian, ureg.arcminute, ureg.turn)
         if not is_angle:
             raise UnitError(f"{value!r} is not an angle; expected e.g. \"{example}\"")
+    elif _is_angular(quantity):
+        raise UnitError(f"{value!r} contains an angle unit; expected a {dimension}, "
+                        f"e.g. \"{example}\"")
     elif quantity.dimensionality != target.dimensionality:
         raise UnitError(
             f"{value!r} has dimension {quantity.dimensionality}, expected a {dimension} "

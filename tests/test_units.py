@@ -82,3 +82,78 @@ def test_millimetre_round_trip(x):
     """Property: formatting in mm and parsing back returns the SI value (1 mm = 1e-3 m)."""
     text = format_quantity(x, "length", "mm", digits=17)
     assert parse_quantity(text, "length") == pytest.approx(x, rel=1e-12)
+
+
+# --------------------------------------------------------------------------- issue 17, part 3
+# Before the fix these texts were handed to pint's expression parser, which read them as other
+# values without a word ("12,5 mm" -> 125 mm, "1 000 mm" -> 0, "2 3 mm" -> 6 mm, "1.5.2 mm" ->
+# 0.3 mm), evaluated arithmetic ("0.5 mm + 0.5 mm" -> 1 mm; "9**9**9 mm" ran for minutes) and
+# read angular rates as cycles per second (628318 rad/s taken as 628318 Hz, a 2 pi error).
+@pytest.mark.parametrize(
+    ("text", "fragment"),
+    [
+        ("12,5 mm", "decimal commas"),
+        ("0,02 mm", "decimal commas"),
+        ("1 000 mm", "spaces or separators inside a number"),
+        ("2 3 mm", "spaces or separators inside a number"),
+        ("1.5.2 mm", "at most one decimal point"),
+        ("0.5 mm + 0.5 mm", "arithmetic is not evaluated"),
+        ("9**9**9 mm", "arithmetic is not evaluated"),
+        ("2 mm * 3", "arithmetic is not evaluated"),
+        ("1 mm mm", "not one number followed by one unit"),
+    ],
+)
+def test_malformed_quantities_are_refused_with_the_accepted_form(text, fragment):
+    with pytest.raises(UnitError, match=fragment) as info:
+        parse_quantity(text, "length")
+    assert "one number and one unit" in str(info.value)
+
+
+def test_power_towers_are_refused_at_once_never_evaluated():
+    import time
+
+    start = time.perf_counter()
+    with pytest.raises(UnitError):
+        parse_quantity("9**9**9 mm", "length")
+    assert time.perf_counter() - start < 0.5
+
+
+@pytest.mark.parametrize("text", ["628318 rad/s", "6000 rpm", "5 cycle/s", "2 rad*kHz"])
+def test_angular_units_are_refused_for_frequencies(text):
+    """f = omega / (2 pi): pint treats rad as 1, so 628318 rad/s would be read as 628 kHz
+    instead of 100 kHz. The parser refuses angular rates (docs/study-reference.md)."""
+    with pytest.raises(UnitError, match="angular"):
+        parse_quantity(text, "frequency")
+
+
+def test_numbers_too_long_to_mean_anything_are_refused_quickly():
+    import time
+
+    text = "1" + "0" * 100_000 + " mm"
+    start = time.perf_counter()
+    with pytest.raises(UnitError, match="characters long") as info:
+        parse_quantity(text, "length")
+    assert time.perf_counter() - start < 0.5
+    assert len(str(info.value)) < 400  # the 100,000 digits are not echoed back
+
+
+@pytest.mark.parametrize("text", ["1e999999999 mm", "-1e400 m"])
+def test_overflowing_exponents_are_not_finite(text):
+    with pytest.raises(UnitError, match="not a finite number"):
+        parse_quantity(text, "length")
+
+
+@pytest.mark.parametrize(
+    ("text", "dimension", "expected"),
+    [
+        ("1.2e5 Hz", "frequency", 1.2e5),
+        ("5 kg/m**3", "density", 5.0),
+        ("5 kg / m^3", "density", 5.0),
+        ("3 s^-1", "frequency", 3.0),
+        ("+.5 mm", "length", 5e-4),
+        ("2. mm", "length", 2e-3),
+    ],
+)
+def test_the_accepted_form_still_reads(text, dimension, expected):
+    """Exponents, powers, spaces around operators between unit names (SI brochure 2019)."""
+    assert parse_quantity(text, dimension) == pytest.approx(expected, rel=1e-12)
