@@ -3,11 +3,12 @@
 The notebook API, from study file to exports (each name is imported on first use, so
 ``import optgrade`` stays cheap)::
 
-    from optgrade import load_study, read_table, trace_study, run_search, export_trial
+    from optgrade import load_study, read_table, trace_layout, run_search, export_trial
 
     study = load_study("studies/bench_backward_shear.toml")
     layout = read_table("studies/layouts/bench_backward_shear.csv")
-    trace = trace_study(study, layout)          # Trace: channel fractions per frequency
+    trace = trace_layout(study, layout)         # Trace: channel fractions per frequency
+                                                # (the study's goal.propagation model)
     frame = trace.to_frame()                    # pandas DataFrame (optional extra "frames")
     outcome = run_search(study, "runs/bench")   # optuna study in runs/bench/study.db
     export_trial(study, outcome.storage, outcome.best_number, "runs/bench",

@@ -326,7 +326,7 @@ class _GoalIn(_Raw):
     model: _C(("lattice", "line")) = "lattice"
     propagation: Annotated[
         str, BeforeValidator(_registry_choice("optgrade.propagation.PROPAGATION_MODELS"))
-    ] = "wkb"
+    ] = "scattering"
 
 
 class _FabricationIn(_Raw):
@@ -447,7 +447,7 @@ class GoalSpec(_Frozen):
     angle_window_deg: tuple[float, float] | None
     weights: dict[str, float]
     model: Literal["lattice", "line"]
-    propagation: str = "wkb"
+    propagation: str = "scattering"
 
 
 class FabricationSpec(_Frozen):

@@ -125,3 +125,30 @@ def test_spacing_outside_the_study_range_exits_2(tmp_path, capsys):
     assert code == 2
     assert "--layout" in err and "layout.spacing" in err and "resonator 0" in err
     assert "Traceback" not in err
+
+
+@needs_surrogate
+@pytest.mark.slow
+def test_trace_numbers_come_from_the_exact_model_with_the_wkb_march_beside(tmp_path, capsys):
+    """issue 12 item 3: by default the numbers are the exact row model's (``propagation``
+    "scattering", an energy balance per frequency, lossless bench block: the Foldy solution
+    conserves power, docs/physics.md section 13) and the WKB march's fractions are written
+    beside them; ``--propagation wkb`` gives the march alone; an unknown name exits 2."""
+    out = tmp_path / "exact"
+    code, text, err = _run(capsys, BENCH, "--layout", BENCH_TABLE, "--out", out, "--no-figures")
+    assert code == 0, err
+    payload = json.loads((out / "trace.json").read_text())
+    assert payload["propagation"] == "scattering"
+    assert max(abs(v) for v in payload["balance_error"]) < 1e-9
+    assert set(payload["wkb"]["fractions"]) == set(CHANNELS)
+    assert payload["wkb"]["fractions"] != payload["fractions"]
+    code, _, err = _run(capsys, BENCH, "--layout", BENCH_TABLE, "--out", tmp_path / "wkb",
+                        "--no-figures", "--propagation", "wkb")
+    assert code == 0, err
+    wkb = json.loads((tmp_path / "wkb" / "trace.json").read_text())
+    assert wkb["propagation"] == "wkb" and wkb["balance_error"] is None and "wkb" not in wkb
+    assert wkb["fractions"] == payload["wkb"]["fractions"]
+    code, _, err = _run(capsys, BENCH, "--layout", BENCH_TABLE, "--out", tmp_path / "x",
+                        "--propagation", "nope")
+    assert code == 2 and "--propagation" in err and "scattering" in err
+    assert "Traceback" not in err

@@ -126,7 +126,7 @@ def test_real_search_export_cli_round_trip(tmp_path):
     """Command line on the bench example: a short search exports the best trial; `optgrade
     export` re-exports it; the table read back and traced gives the exported fractions."""
     from optgrade.cli import main
-    from optgrade.propagation import trace_study
+    from optgrade.propagation import trace_layout
     from optgrade.study import load_study
 
     study_path = REPO / "studies" / "bench_backward_shear.toml"
@@ -142,7 +142,8 @@ def test_real_search_export_cli_round_trip(tmp_path):
     b = json.loads((tmp_path / "again" / "result.json").read_text())
     assert a["weighted_score"] == b["weighted_score"] and a["trial"] == b["trial"]
     s = load_study(study_path)
-    tr = trace_study(s, read_table(out / "table.csv"))
+    tr = trace_layout(s, read_table(out / "table.csv"))  # the study's model (exact by default)
+    assert a["performance"].get("propagation", tr.propagation) == tr.propagation
     for c in CHANNELS:
         np.testing.assert_allclose(np.array(a["performance"]["fractions"][c], dtype=float),
                                    tr.fractions[c], atol=1e-12)

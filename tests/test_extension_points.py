@@ -172,6 +172,7 @@ band = ["120 kHz", "200 kHz"]
 n_frequencies = 6
 channel = "backward_shear"
 model = "lattice"
+propagation = "wkb"
 
 [fabrication]
 min_gap = "2 mm"
@@ -352,3 +353,35 @@ def test_toy_resonator_traces_like_the_rod_with_a_stiff_pad(registered):
     np.testing.assert_allclose(soft_trace.total(), 1.0, atol=1e-9)
     change = max(np.max(np.abs(soft_trace.fractions[k] - rod_trace.fractions[k])) for k in CHANNELS)
     assert change > 0.05
+
+
+def test_toy_resonator_reaches_the_exact_row_model(registered):
+    """The exact row model takes the resonator's compliance from the registry, so a toy
+    resonator type needs no change there: with the stiff pad (1/k = 1e-16 m/N against
+    |1/Z_rod| ~ 1e-7 m/N) the exact trace is the rod's within 1e-6; with the soft pad it is
+    not (a model that silently used the axial rod would give the rod's trace for both)."""
+    from optgrade.propagation import propagation_model
+
+    freq = np.linspace(120e3, 200e3, 6)
+
+    def exact(study):
+        return propagation_model(study, "scattering", cache_dir=False).trace(ROW, freq)
+
+    rod = exact(_study())
+    stiff = exact(_study(resonator=registered(RESONATORS, _padded(1e16)).name))
+    soft = exact(_study(resonator=registered(RESONATORS, _padded(1e5)).name))
+    assert stiff.propagation == "scattering"
+    for c in CHANNELS:
+        np.testing.assert_allclose(stiff.fractions[c], rod.fractions[c], atol=1e-6)
+    assert max(np.max(np.abs(soft.fractions[c] - rod.fractions[c])) for c in CHANNELS) > 0.05
+
+
+def test_exact_row_model_refuses_a_ground_it_has_no_green_function_for(registered):
+    """The Green's tables hold the half-space only: a registered toy ground is refused with a
+    message naming goal.propagation (it would otherwise be traced as a plain half-space)."""
+    from optgrade.errors import StudyError
+    from optgrade.propagation import propagation_model
+
+    registered(GROUNDS, ScaledHalfSpace)
+    with pytest.raises(StudyError, match="goal.propagation.*substrate.kind"):
+        propagation_model(_study(ground=ScaledHalfSpace.name), "scattering", cache_dir=False)

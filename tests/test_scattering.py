@@ -299,7 +299,10 @@ def test_registered_model_gives_trace_contract():
     lay = layout_from_cells(np.linspace(4e-3, 12e-3, 12), np.full(12, 9e-3), D)
     tr = model.trace(lay, np.linspace(120e3, 180e3, 5))
     np.testing.assert_allclose(tr.total(), 1.0, atol=1e-9)
-    assert np.all(np.abs(model.last_balance_error) < 1e-9)
+    assert tr.propagation == "scattering"
+    assert np.all(np.abs(tr.balance_error) < 1e-9)
+    payload = tr.to_dict()
+    assert payload["propagation"] == "scattering" and len(payload["balance_error"]) == 5
     assert np.all(tr.angle["backward_shear"] < 0) and np.all(tr.angle["forward_shear"] > 0)
     pos = tr.position["backward_shear"]
     assert np.all((pos >= 0) & (pos <= lay.length))

@@ -1,14 +1,21 @@
 """``optgrade trace STUDY --layout TABLE.csv --out DIR``: where a layout sends the power.
 
-Reads the study and a resonator table, computes the local modes of every cell over the study's
-goal band with the fast surrogate, marches the Rayleigh wave along the row (WKB, docs/physics.md
-section 6) and writes
+Reads the study and a resonator table and computes, over the study's goal band, where the power
+of an incident Rayleigh wave goes, with the propagation model ``--propagation`` (default the
+study's ``goal.propagation``: ``scattering``, the exact multiple-scattering row model,
+docs/physics.md section 13; ``wkb`` the adiabatic march, section 6). The local modes of every
+cell and the WKB march through them are always computed beside it: they explain the result.
+Writes
 
 - ``DIR/trace.json``: ``frequency_hz``, ``fractions`` / ``position_m`` / ``angle_deg`` (one list
   per channel, aligned with ``frequency_hz``, null where a channel gets nothing), ``eps_max``,
-  ``is_adiabatic``, and for site-scale studies a ``caution``;
-- ``DIR/elevation.png``, ``DIR/dispersion.png``, ``DIR/channel_map.png``,
-  ``DIR/fractions.png``.
+  ``is_adiabatic``, ``propagation`` (the model's name), ``balance_error`` (1 - sum of the
+  fractions computed independently, null where the model has none), ``wkb`` (the WKB march's
+  fractions, positions and angles when the primary model is another one), and for site-scale
+  studies a ``caution``;
+- ``DIR/elevation.png``, ``DIR/dispersion.png`` (local modes, WKB turning points),
+  ``DIR/channel_map.png`` (per-resonator shares where the model gives them),
+  ``DIR/fractions.png`` (stacked fractions, the WKB march's overlaid as dashed lines).
 """
 
 from __future__ import annotations
@@ -27,8 +34,9 @@ from optgrade.study import SITE_CAUTION
 if TYPE_CHECKING:  # pragma: no cover
     from rich.console import Console
 
-    from optgrade.dispersion import Surrogate
+    from optgrade.dispersion import LocalModes
     from optgrade.layout import Layout
+    from optgrade.propagation import Trace
     from optgrade.study import Study
 
 __all__ = ["SITE_CAUTION", "add_parser", "run", "run_trace"]
@@ -57,6 +65,10 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
     parser.add_argument("--model", choices=("lattice", "line"), default=None,
                         help="lattice sum to use (default: the study's goal.model)")
+    parser.add_argument("--propagation", default=None, metavar="NAME",
+                        help="propagation model that gives the numbers: 'scattering' (exact "
+                             "multiple-scattering row model) or 'wkb' (adiabatic march, fast "
+                             "screening); default: the study's goal.propagation")
     parser.add_argument("--no-figures", action="store_true", help="write trace.json only")
     parser.set_defaults(handler=run)
     return parser
@@ -73,108 +85,140 @@ def _rod_resonances(study: Study, layout: Layout) -> np.ndarray:
     ])
 
 
-def _build_surrogate(study: Study, model: str | None) -> Surrogate:
+def _wkb_picture(study: Study, layout: Layout, freq: np.ndarray, model: str | None,
+                 console: Console | None) -> tuple[LocalModes, Trace]:
+    """Local modes of every cell and the WKB march through them (the explanation)."""
     from optgrade.dispersion import surrogate_for_study
+    from optgrade.propagation import march
 
-    return surrogate_for_study(study, model=model)
+    if console is not None:
+        with console.status("building / loading the dispersion tables ..."):
+            surrogate = surrogate_for_study(study, model=model)
+    else:
+        surrogate = surrogate_for_study(study, model=model)
+    modes = surrogate.local_modes(layout.height, layout.spacing, layout.head_mass, freq)
+    return modes, march(modes, layout.x, layout.spacing, freq, float(study.substrate.cr))
+
+
+def _primary_trace(study: Study, layout: Layout, freq: np.ndarray, name: str, model: str | None,
+                   console: Console | None) -> tuple[Trace, np.ndarray | None]:
+    """The trace of the chosen propagation model and its per-resonator shares (or None)."""
+    from optgrade.propagation import propagation_model
+
+    kwargs = {} if model is None else {"model": model}
+    pm = propagation_model(study, name, **kwargs)
+    if console is not None:
+        with console.status(f"tracing with the {name!r} propagation model ..."):
+            return pm.trace_detail(layout, freq)
+    return pm.trace_detail(layout, freq)
 
 
 def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = None,
-              is_figures: bool = True, console: Console | None = None) -> dict:
+              propagation: str | None = None, is_figures: bool = True,
+              console: Console | None = None) -> dict:
     """Trace ``layout`` for ``study`` and write trace.json (+ figures) into ``out``.
 
-    With the WKB march (``goal.propagation = "wkb"``) every cell's local modes are computed
-    (the dispersion figure shows them) and marched; any other registered propagation model
-    traces the layout itself and the dispersion figure is left out. Returns the JSON payload.
-    The same function backs the command line.
+    The number comes from the propagation model ``propagation`` (default the study's
+    ``goal.propagation``; ``"scattering"`` is the exact row model). The WKB march through
+    every cell's local modes is always computed beside it: the dispersion figure shows those
+    modes and turning points, the fractions figure overlays the WKB fractions, and trace.json
+    carries them under ``"wkb"`` when the primary model is another one. Returns the JSON
+    payload. The same function backs the command line.
     """
-    from optgrade.propagation import (
-        PROPAGATION_MODELS,
-        WKBMarch,
-        march,
-        propagation_model,
-        study_frequencies,
-    )
+    from optgrade.propagation import PROPAGATION_MODELS, WKBMarch, study_frequencies
 
-    say = console.print if console is not None else (lambda *a, **k: None)
+    name = propagation or study.goal.propagation
+    is_wkb = issubclass(PROPAGATION_MODELS.get(name), WKBMarch)
     freq = study_frequencies(study)
-    cr = float(study.substrate.cr)
-    modes = None
-    if issubclass(PROPAGATION_MODELS.get(study.goal.propagation), WKBMarch):
-        if console is not None:
-            with console.status("building / loading the dispersion tables ..."):
-                surrogate = _build_surrogate(study, model)
-        else:
-            surrogate = _build_surrogate(study, model)
-        modes = surrogate.local_modes(layout.height, layout.spacing, layout.head_mass, freq)
-        tr = march(modes, layout.x, layout.spacing, freq, cr)
+    modes, wkb = _wkb_picture(study, layout, freq, model, console)
+    if is_wkb:
+        tr, shares = wkb, None
     else:
-        tr = propagation_model(study).trace(layout, freq)
+        tr, shares = _primary_trace(study, layout, freq, name, model, console)
 
-    payload = tr.to_dict()
     payload = {
         "study": study.meta.name,
         "n_resonators": layout.n_resonators,
         "length_m": layout.length,
         "model": model or study.goal.model,
-        **payload,
+        **tr.to_dict(),
     }
+    if not is_wkb:
+        w = wkb.to_dict()
+        payload["wkb"] = {k: w[k] for k in ("fractions", "position_m", "angle_deg", "eps_max",
+                                             "is_adiabatic", "branch", "turning_position_m")}
     is_site = study.meta.scale == "site"
     if is_site:
         payload["caution"] = SITE_CAUTION
     out.mkdir(parents=True, exist_ok=True)
     write_json(out / "trace.json", payload)
-
     if is_figures:
-        import matplotlib
+        _write_figures(study, layout, out, freq, modes, tr, None if is_wkb else wkb, shares)
+    _summary(study, layout, freq, tr, wkb, is_wkb, console, out, is_figures)
+    return payload
 
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
 
-        from optgrade.plotting import trace as pt
+def _write_figures(study: Study, layout: Layout, out: Path, freq: np.ndarray, modes: LocalModes,
+                   tr: Trace, wkb: Trace | None, shares: np.ndarray | None) -> None:
+    """elevation.png, dispersion.png, channel_map.png, fractions.png."""
+    import matplotlib
 
-        goal = study.goal.channel
-        note = " (site scale: see caution in trace.json)" if is_site else ""
-        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
-        pt.plot_elevation(ax, layout, title=f"{study.meta.name}: layout elevation{note}")
-        save_figure(fig, out / "elevation.png")
-        plt.close(fig)
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
 
-        if modes is not None:
-            fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
-            pt.plot_local_dispersion(ax, layout, modes, freq, cr=cr,
-                                     rod_resonance=_rod_resonances(study, layout), trace=tr)
-            save_figure(fig, out / "dispersion.png")
-            plt.close(fig)
+    from optgrade.plotting import trace as pt
 
-        fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
-        pt.plot_channel_map(ax, tr, layout)
-        save_figure(fig, out / "channel_map.png")
-        plt.close(fig)
+    goal = study.goal.channel
+    note = " (site scale: see caution in trace.json)" if study.meta.scale == "site" else ""
+    fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
+    pt.plot_elevation(ax, layout, title=f"{study.meta.name}: layout elevation{note}")
+    save_figure(fig, out / "elevation.png")
+    plt.close(fig)
 
-        fig, ax = plt.subplots(figsize=(9, 4.5), layout="constrained")
-        pt.plot_fractions(ax, tr, goal_channel=goal if goal in tr.fractions else None)
-        save_figure(fig, out / "fractions.png")
-        plt.close(fig)
+    fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
+    pt.plot_local_dispersion(ax, layout, modes, freq, cr=float(study.substrate.cr),
+                             rod_resonance=_rod_resonances(study, layout),
+                             trace=wkb if wkb is not None else tr)
+    save_figure(fig, out / "dispersion.png")
+    plt.close(fig)
 
-    # summary
-    mean = {c: float(np.mean(v)) for c, v in tr.fractions.items()}
+    fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
+    pt.plot_channel_map(ax, tr, layout, shares=shares)
+    save_figure(fig, out / "channel_map.png")
+    plt.close(fig)
+
+    fig, ax = plt.subplots(figsize=(9, 4.5), layout="constrained")
+    pt.plot_fractions(ax, tr, goal_channel=goal if goal in tr.fractions else None,
+                      compare=wkb)
+    save_figure(fig, out / "fractions.png")
+    plt.close(fig)
+
+
+def _summary(study: Study, layout: Layout, freq: np.ndarray, tr: Trace, wkb: Trace,
+             is_wkb: bool, console: Console | None, out: Path, is_figures: bool) -> None:
+    """Band means per channel (model and WKB side by side), validity and balance lines."""
+    if console is None:
+        return
     from optgrade.plotting.trace import frequency_unit
 
+    say = console.print
     fs, funit = frequency_unit(float(freq[-1]))
     say(f"[bold]{study.meta.name}[/]: {layout.n_resonators} resonators, length "
-        f"{layout.length:.4g} m, {freq.size} frequencies {freq[0] / fs:.4g} .. "
-        f"{freq[-1] / fs:.4g} {funit}")
-    for c, v in mean.items():
-        say(f"  band-mean {c:<24s} {v:7.3f}")
-    n_bad = int(np.sum(~tr.is_adiabatic))
-    say(f"  eps_max up to {float(np.max(tr.eps_max)):.3g}; {n_bad} of {freq.size} frequencies "
-        "above 0.1 (outside the adiabatic model's validity)")
-    if is_site:
+        f"{layout.length * 1e3:.4g} mm, {freq.size} frequencies {freq[0] / fs:.4g} .. "
+        f"{freq[-1] / fs:.4g} {funit}; propagation model {tr.propagation!r}")
+    say(f"  band-mean {'channel':<24s} {tr.propagation:>10s}" + ("" if is_wkb else "        wkb"))
+    for c, v in tr.fractions.items():
+        extra = "" if is_wkb else f" {float(np.mean(wkb.fractions[c])):10.3f}"
+        say(f"  band-mean {c:<24s} {float(np.mean(v)):10.3f}{extra}")
+    if tr.balance_error is not None and np.isfinite(tr.balance_error).any():
+        say(f"  energy balance: |1 - sum of fractions| <= "
+            f"{float(np.nanmax(np.abs(tr.balance_error))):.1e} over the band")
+    n_bad = int(np.sum(~wkb.is_adiabatic))
+    say(f"  WKB picture: eps_max up to {float(np.max(wkb.eps_max)):.3g}; {n_bad} of {freq.size} "
+        "frequencies above 0.1 (outside the adiabatic march's validity)")
+    if study.meta.scale == "site":
         say(f"[yellow]{SITE_CAUTION}[/]")
-    n_figures = len(FIGURES) - (modes is None)
-    say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {n_figures} figures"))
-    return payload
+    say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {len(FIGURES)} figures"))
 
 
 def run(args: argparse.Namespace) -> int:
@@ -182,6 +226,12 @@ def run(args: argparse.Namespace) -> int:
     from rich.console import Console
 
     study = open_study(args.study)
+    if args.propagation is not None:
+        from optgrade.propagation import PROPAGATION_MODELS
+
+        if args.propagation not in PROPAGATION_MODELS:
+            raise StudyError([f"--propagation: unknown model {args.propagation!r}; known: "
+                              + ", ".join(PROPAGATION_MODELS.names())])
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
     a_lo, a_hi = (float(v) for v in study.layout.spacing)
@@ -206,6 +256,6 @@ def run(args: argparse.Namespace) -> int:
     if not np.allclose(layout.diameter, d_study, rtol=1e-6):
         console.print(f"[yellow]warning[/]: table diameters differ from the study's "
                       f"{d_study * 1e3:.4g} mm; the dispersion tables use the study's diameter")
-    run_trace(study, layout, out, model=args.model, is_figures=not args.no_figures,
-              console=console)
+    run_trace(study, layout, out, model=args.model, propagation=args.propagation,
+              is_figures=not args.no_figures, console=console)
     return 0

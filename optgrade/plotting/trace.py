@@ -201,19 +201,29 @@ def plot_local_dispersion(
     return ax
 
 
-def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None) -> Axes:
+def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None, *,
+                     shares: np.ndarray | None = None) -> Axes:
     """Frequency against the position where power leaves, coloured by channel, sized by fraction.
 
-    Radiating channels and ``absorbed`` sit at their power-weighted position; the reflected
-    surface wave at its turning point (or at the entry), the transmitted one at the far end.
-    Marker area is proportional to the fraction (area 90 pt^2 = 100 %).
+    Without ``shares``: radiating channels and ``absorbed`` sit at their power-weighted
+    position, the reflected surface wave at its weighted position (turning point or entry),
+    the transmitted one at the far end; marker area proportional to the fraction (90 pt^2 =
+    100 %). With ``shares`` (shape (6, n_freq, n_resonators), each resonator's share of
+    ``CHANNELS[1:]``, from `PropagationModel.trace_detail`): one marker per resonator and
+    frequency for each bulk channel and ``absorbed``, at the resonator, area proportional to
+    its share (the largest share drawn = 40 pt^2); surface channels as above.
     """
+    if shares is not None and layout is None:
+        raise ValueError("plot_channel_map: shares need the layout (resonator positions)")
     fs, funit = frequency_unit(float(np.max(trace.frequency)))
     far = layout.length if layout is not None else np.nanmax(
         [np.nanmax(np.append(p, 0.0)) for p in trace.position.values()])
     s, unit = length_unit(float(far))
     f = trace.frequency / fs
+    per_resonator = CHANNELS[2:] if shares is not None else ()
     for c in CHANNELS:
+        if c in per_resonator:
+            continue
         frac = trace.fractions[c]
         pos = trace.position[c]
         show = (frac > 0.005) & np.isfinite(pos)
@@ -221,13 +231,16 @@ def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None) -> Ax
             continue
         ax.scatter(pos[show] / s, f[show], s=90 * frac[show], color=CHANNEL_COLOURS[c],
                    alpha=0.75, edgecolors="none", label=CHANNEL_LABELS[c])
+    if shares is not None:
+        _draw_resonator_shares(ax, np.asarray(shares, float), layout, f, s)
     if layout is not None:
         ax.axvspan(0, layout.length / s, color="#eef2f6", zorder=0, lw=0)
         ax.set_xlim(-0.05 * layout.length / s, 1.08 * layout.length / s)
     ax.set_ylim(f.min(), f.max())
     ax.set_xlabel(f"position where the power leaves x ({unit}); row shaded")
     ax.set_ylabel(f"frequency ({funit})")
-    ax.set_title("channel map (marker area ~ fraction)")
+    ax.set_title("channel map (marker area ~ fraction)" if shares is None else
+                 "channel map: each resonator's share (marker area ~ share)")
     if not ax.collections:
         ax.text(0.5, 0.5, "no channel takes more than 0.5 % at a known position",
                 transform=ax.transAxes, ha="center", va="center", fontsize=9, color="0.3")
@@ -239,8 +252,39 @@ def plot_channel_map(ax: Axes, trace: Trace, layout: Layout | None = None) -> Ax
     return ax
 
 
-def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None) -> Axes:
-    """Stacked channel fractions against frequency; frequencies with eps > 0.1 hatched."""
+def _draw_resonator_shares(ax: Axes, shares: np.ndarray, layout: Layout, f: np.ndarray,
+                           s: float) -> None:
+    """One marker per resonator and frequency for the bulk channels and ``absorbed``."""
+    bulk = shares[1:]  # CHANNELS[2:]: four bulk channels and absorbed
+    top = float(np.max(bulk)) if bulk.size else 0.0
+    if top <= 0:
+        return
+    xx, ff = np.meshgrid(np.asarray(layout.x, float) / s, f)
+    for c, share in zip(CHANNELS[2:], bulk, strict=True):
+        show = share > 2e-3 * top
+        if not show.any():
+            continue
+        ax.scatter(xx[show], ff[show], s=40 * share[show] / top, color=CHANNEL_COLOURS[c],
+                   alpha=0.6, edgecolors="none", label=CHANNEL_LABELS[c], rasterized=True)
+
+
+#: How the figures name the propagation models (any other registered model: its name).
+MODEL_LABELS = {"scattering": "exact row model", "wkb": "WKB march"}
+
+
+def _model_label(name: str) -> str:
+    return MODEL_LABELS.get(name, f"{name!r} model")
+
+
+def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
+                   compare: Trace | None = None) -> Axes:
+    """Stacked channel fractions against frequency.
+
+    Frequencies where the WKB march is outside its validity (eps > 0.1) are hatched when the
+    trace is the march's own. ``compare`` (another model's trace of the same layout, e.g. the
+    WKB march beside the exact model) is overlaid as dashed lines at its stack boundaries, so
+    each band between two dashed lines is that model's share of the same channel.
+    """
     fs, funit = frequency_unit(float(np.max(trace.frequency)))
     f = trace.frequency / fs
     ys = [trace.fractions[c] for c in CHANNELS]
@@ -249,7 +293,14 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None) -
     if goal_channel in trace.fractions:
         ax.plot(f, trace.fractions[goal_channel], color="k", lw=1.2,
                 label=f"goal: {CHANNEL_LABELS[goal_channel]}")
-    bad = ~np.asarray(trace.is_adiabatic)
+    if compare is not None:
+        edges = np.cumsum([compare.fractions[c] for c in CHANNELS], axis=0)[:-1]
+        for i, edge in enumerate(edges):
+            ax.plot(f, edge, color="k", lw=0.8, ls="--", alpha=0.7,
+                    label=f"{_model_label(compare.propagation)}: same stack" if i == 0
+                    else None)
+    validity = trace if compare is None else compare
+    bad = ~np.asarray(validity.is_adiabatic)
     if bad.any():
         ax.fill_between(f, 1.0, 1.06, where=bad, step="mid", facecolor="none", hatch="////",
                         edgecolor="#444444", lw=0, label="eps > 0.1 (outside WKB validity)")
@@ -257,6 +308,6 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None) -
     ax.set_ylim(0, 1.06)
     ax.set_xlabel(f"frequency ({funit})")
     ax.set_ylabel("fraction of incident power")
-    ax.set_title("where the power goes")
+    ax.set_title(f"where the power goes: {_model_label(trace.propagation)}")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
     return ax

@@ -47,6 +47,18 @@ class PropagationModel(ABC):
         """Where the power of a unit incident Rayleigh wave goes, per frequency (Hz; the study's
         grid when omitted)."""
 
+    def trace_detail(
+        self, layout: Layout, freq: ArrayLike | None = None
+    ) -> tuple[Trace, np.ndarray | None]:
+        """The trace plus each resonator's share of the channels where the model knows it.
+
+        Returns ``(trace, shares)``; ``shares`` has shape (6, n_freq, n_resonators), the
+        fractions that resonator j sends into ``CHANNELS[1:]`` (reflected, the four bulk
+        channels, absorbed; dimensionless, summing over j to the trace's fractions), or None
+        when the model has no per-resonator picture (the default). The channel map draws it.
+        """
+        return self.trace(layout, freq), None
+
     def trace_height_errors(self, layout: Layout, errors: np.ndarray) -> list[Trace]:
         """One trace per row of ``errors`` (m, shape (n_draws, n_resonators)) added to the rod
         heights of ``layout``, over the study's grid. A model with a faster way overrides it."""

@@ -377,8 +377,27 @@ def _make_trace(freq, layout, sol, kr, lossy) -> tuple[Trace, np.ndarray]:
         turning_position=np.full(freq.size, np.nan),
         entry_reflection=np.full(freq.size, np.nan),
         phase=phase,
+        propagation="scattering",
+        balance_error=None if lossy else balance,
     )
     return trace, balance
+
+
+#: Grounds whose surface Green's function the tables hold (`optgrade.propagation._green`).
+GREEN_GROUNDS = ("halfspace",)
+
+
+def _check_ground(study: Study) -> None:
+    """Refuse a ground the Green's tables do not describe (it would be traced as a half-space)."""
+    from optgrade.errors import StudyError
+
+    kind = study.substrate.kind
+    if kind not in GREEN_GROUNDS:
+        raise StudyError([
+            f"goal.propagation: the exact row model ('scattering') has the surface Green's "
+            f"function of {', '.join(GREEN_GROUNDS)} only, not of substrate.kind = {kind!r}; "
+            "use goal.propagation = \"wkb\" (the WKB march uses any registered ground)"
+        ])
 
 
 _MEMO: dict[str, GreenTables] = {}
@@ -447,8 +466,9 @@ def scattering_trace(
     -------
     ScatteringResult
     """
-    from optgrade.resonators import Rod, rod_compliance
+    from optgrade.resonators import resonator_of
 
+    _check_ground(study)
     res = study.resonator
     d = float(res.diameter)
     diam = np.asarray(layout.diameter, float)
@@ -459,10 +479,9 @@ def scattering_trace(
         )
     if tables is None:
         tables = tables_for_study(study, layout, freq, model=model, cache_dir=cache_dir)
-    rod = Rod(float(res.youngs_modulus), float(res.density), d, float(res.loss_factor or 0.0))
     w = tables.omega
-    comp = rod_compliance(w[:, None], rod, np.asarray(layout.height, float)[None, :],
-                          np.asarray(layout.head_mass, float)[None, :])
+    comp = resonator_of(study).compliance(w[:, None], np.asarray(layout.height, float)[None, :],
+                                          np.asarray(layout.head_mass, float)[None, :])
     sol = solve_row(tables, layout.x, comp, float(res.row_pitch), per_resonator=per_resonator)
     lossy = float(study.substrate.loss_factor or 0.0) > 0.0
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
@@ -489,20 +508,27 @@ class ScatteringModel(PropagationModel):
 
     def __init__(self, study: Study, model: str | None = None, cache_dir=None) -> None:
         super().__init__(study)
+        _check_ground(study)
         self.model = model or study.goal.model
         self.cache_dir = cache_dir
-        #: energy-balance residual of the last `trace` call (per frequency; nan if lossy)
-        self.last_balance_error: np.ndarray | None = None
 
-    def result(self, layout: Layout, freq: ArrayLike | None = None) -> ScatteringResult:
-        """Result (trace, balance error, forces, amplitudes; no per-resonator shares) over
-        ``freq`` (Hz)."""
+    def result(self, layout: Layout, freq: ArrayLike | None = None, *,
+               per_resonator: bool = False) -> ScatteringResult:
+        """Result (trace, balance error, forces, amplitudes; the per-resonator shares with
+        ``per_resonator``) over ``freq`` (Hz)."""
         f = self.frequencies(freq)
         return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir,
-                                per_resonator=False)
+                                per_resonator=per_resonator)
+
+    def trace_detail(
+        self, layout: Layout, freq: ArrayLike | None = None
+    ) -> tuple[Trace, np.ndarray | None]:
+        """Trace and each resonator's share of reflected, bulk and absorbed power (see
+        `PropagationModel.trace_detail`)."""
+        res = self.result(layout, freq, per_resonator=True)
+        return res.trace, res.resonator_power
 
     def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
-        """Exact trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted)."""
-        res = self.result(layout, freq)
-        self.last_balance_error = res.balance_error
-        return res.trace
+        """Exact trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted); its
+        ``balance_error`` is the energy-balance residual (None on a lossy substrate)."""
+        return self.result(layout, freq).trace

@@ -50,6 +50,13 @@ class Trace:
     phase : ndarray
         Accumulated phase sum K'_j a_j of the transmitted wave (rad); nan where nothing is
         transmitted.
+    propagation : str
+        Name of the propagation model that made the trace (``"wkb"``, ``"scattering"``, ...).
+    balance_error : ndarray or None
+        Independent energy-balance residual per frequency, 1 - sum of the seven fractions
+        computed without booking a remainder (dimensionless); None (null in trace.json) for
+        models that close the balance by construction (the WKB march books what is left to the
+        channels it follows) and for lossy substrates (no independent balance).
     """
 
     frequency: np.ndarray
@@ -62,6 +69,8 @@ class Trace:
     turning_position: np.ndarray
     entry_reflection: np.ndarray
     phase: np.ndarray
+    propagation: str = "wkb"
+    balance_error: np.ndarray | None = None
 
     def total(self) -> np.ndarray:
         """Sum of all channel fractions per frequency (1 up to rounding)."""
@@ -83,6 +92,10 @@ class Trace:
             "branch": [int(v) for v in self.branch],
             "turning_position_m": clean(self.turning_position),
             "entry_reflection": clean(self.entry_reflection),
+            "propagation": self.propagation,
+            "balance_error": (None if self.balance_error is None
+                              or not np.isfinite(self.balance_error).any()
+                              else clean(self.balance_error)),
         }
 
     def to_frame(self) -> pd.DataFrame:
@@ -91,7 +104,7 @@ class Trace:
         Columns: ``<channel>_fraction`` (-), ``<channel>_position_m`` (m), ``<channel>_angle_deg``
         (deg) for each channel in :data:`optgrade.channels.CHANNELS`, then ``eps_max`` (-),
         ``is_adiabatic``, ``branch``, ``turning_position_m`` (m), ``entry_reflection`` (-) and
-        ``phase_rad`` (rad). Values are copies; nan stays nan.
+        ``phase_rad`` (rad), and ``balance_error`` (-) when the model gives one. Values are copies; nan stays nan.
 
         Raises
         ------
@@ -114,5 +127,7 @@ class Trace:
         columns["turning_position_m"] = np.array(self.turning_position, dtype=float)
         columns["entry_reflection"] = np.array(self.entry_reflection, dtype=float)
         columns["phase_rad"] = np.array(self.phase, dtype=float)
+        if self.balance_error is not None:
+            columns["balance_error"] = np.array(self.balance_error, dtype=float)
         index = pd.Index(np.array(self.frequency, dtype=float), name="frequency_hz")
         return pd.DataFrame(columns, index=index)

@@ -346,7 +346,8 @@ def trace(
 def trace_study(
     study: Study, layout: Layout, dispersion: Dispersion | None = None, *, path_only: bool = True
 ) -> Trace:
-    """Trace a layout over the study's goal band, building the study's surrogate if needed."""
+    """WKB-march trace of a layout over the study's goal band, building the study's surrogate
+    if needed (the study's own ``goal.propagation`` model: `trace_layout`)."""
     if dispersion is None:
         from optgrade.dispersion import surrogate_for_study
 
