@@ -60,6 +60,10 @@ MANIFEST_FORMAT = 1
 class ExportError(ValueError):
     """An export set that is incomplete or mixed (manifest missing or not matching)."""
 
+#: How the report names the propagation model that gave the numbers.
+_MODEL_WORDS = {"scattering": "exact multiple-scattering model of the finite row",
+                "wkb": "fast surrogate, adiabatic WKB march"}
+
 BENDING_NOTE = ("Rods are modelled in axial motion only; their bending modes (coupling to "
                 "horizontal motion) are not represented.")
 
@@ -389,7 +393,8 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         f"{h.max():.4g} to {h.min():.4g} mm, diameter {np.max(layout.diameter) * 1e3:.4g} mm, "
         f"row pitch {study.resonator.row_pitch * 1e3:.4g} mm",
         "",
-        "PREDICTED (fast surrogate, adiabatic propagation)",
+        "PREDICTED (" + _MODEL_WORDS.get(trace.propagation,
+                                         f"propagation model {trace.propagation!r}") + ")",
         f"  wanted fraction: mean {wanted.mean():.3f}, worst {wanted.min():.3f} at "
         f"{f[int(np.argmin(wanted))]:.6g} Hz",
         f"  frequencies meeting the requirement: {int(meets.sum())} of {len(f)}",
@@ -397,6 +402,11 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
     lines += ["  " + s for s in summary[1:]]
     warn = []
     bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
+    if trace.balance_error is not None and np.isfinite(trace.balance_error).any():
+        worst = float(np.nanmax(np.abs(trace.balance_error)))
+        if worst > 1e-6:
+            warn.append(f"energy balance of the prediction off by up to {worst:.1e} of the "
+                        "incident power (bound 1e-6): do not trust these numbers.")
     if bad.any():
         warn.append(f"{int(bad.sum())} frequencies are outside the adiabatic model's validity "
                     f"(eps > 0.1), e.g. {f[bad][0]:.6g} Hz: check them with `optgrade verify`.")

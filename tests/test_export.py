@@ -143,7 +143,8 @@ def test_real_search_export_cli_round_trip(tmp_path):
     assert a["weighted_score"] == b["weighted_score"] and a["trial"] == b["trial"]
     s = load_study(study_path)
     tr = trace_layout(s, read_table(out / "table.csv"))  # the study's model (exact by default)
-    assert a["performance"].get("propagation", tr.propagation) == tr.propagation
+    assert a["performance"]["propagation"] == tr.propagation == "scattering"
+    assert "exact multiple-scattering" in (out / "report.txt").read_text()
     for c in CHANNELS:
         np.testing.assert_allclose(np.array(a["performance"]["fractions"][c], dtype=float),
                                    tr.fractions[c], atol=1e-12)
