@@ -324,3 +324,32 @@ def test_lossy_substrate_extra_loss_is_positive_and_linear():
     assert np.all(rem[0] > 0) and np.all(rem[1] > 0)
     ratio = rem[1] / rem[0]
     assert np.all((ratio > 7.0) & (ratio < 13.0)), ratio
+
+
+def test_lossy_ground_trace_uses_the_power_entering_the_row():
+    """On a lossy ground every model reports fractions of the power entering the row at x = 0
+    (the WKB march's and the full-wave check's convention, docs/physics.md section 13): rods
+    that vanish (1e-9 m, T -> 1 against the incident wave) transmit what the bare ground lets
+    through over the row's length, T_bare = exp(-2 Im kR L), with kR from the correspondence
+    principle (R. M. Christensen, *Theory of Viscoelasticity*, 1982, from memory; computed by
+    `lossy_rayleigh_wavenumber`, tested in tests/test_objectives.py), and the rest is absorbed
+    by the ground. Before the fix the exact model reported T ~ 1 here (relative to the bare
+    ground) while the blocking goal divided by T_bare again: a 5x error on the site example."""
+    from pathlib import Path
+
+    from optgrade.layout import layout_from_cells
+    from optgrade.objectives._common import bare_transmission
+    from optgrade.propagation import propagation_model
+    from optgrade.study import load_study
+
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "site_ground_barrier.toml")
+    assert study.substrate.loss_factor > 0
+    lay = layout_from_cells(np.full(12, 1e-9), np.full(12, 2.5), study.resonator.diameter)
+    freq = np.array([30.0, 55.0, 80.0])
+    tr = propagation_model(study, "scattering", cache_dir=False).trace(lay, freq)
+    t_bare = bare_transmission(tr, lay, study)
+    assert t_bare.max() < 0.5  # the check is not vacuous: the ground loses most of it
+    np.testing.assert_allclose(tr.fractions["transmitted_surface"], t_bare, rtol=1e-6)
+    np.testing.assert_allclose(tr.fractions["absorbed"], 1.0 - t_bare, rtol=1e-5)
+    np.testing.assert_allclose(tr.total(), 1.0, atol=1e-12)

@@ -22,12 +22,16 @@ c_j = 0). From the forces (docs/physics.md s. 13; Res = residue of G at +kR, S =
 Energy balance. For a lossless substrate the seven fractions must sum to 1 whatever the rods
 (lossless or lossy): the balance error 1 - sum is returned per frequency; it is the main
 self-check, because the bulk tables are integrated over the cones independently of the Green's
-function's own imaginary part. With a lossy substrate the substrate itself absorbs power in
-the near field of the row and along the far field, so the far-field fractions do not sum to 1:
-the returned trace then books the remainder 1 - (T + R + bulk + rods) to ``absorbed`` (it is
-the substrate's extra loss caused by the row, relative to the bare ground whose own attenuation
-is divided out of T), and ``balance_error`` is nan there: no independent balance is checked
-for lossy substrates. Bulk fractions of a lossy substrate are the cone integrals of Im G of
+function's own imaginary part. With a lossy substrate the substrate itself absorbs power along
+the row, so the far-field fractions do not sum to 1. The trace then follows the project's
+convention for lossy ground (the WKB march and the full-wave check use it too): fractions of
+the power entering the row at x = 0; the transmitted fraction is measured at the row's far end
+x = L = ``layout.length``, so it includes the bare ground's own decay there,
+|T|^2 exp(-2 Im kR L) (T above is relative to the incident wave at the same point); the
+remainder 1 - (transmitted + R + bulk + rods) is booked to ``absorbed`` (the substrate's loss
+over the row, the bare ground's and the extra the row causes). The blocking goal divides the
+bare ground's exp(-2 Im kR L) back out. ``balance_error`` is nan there: no independent balance
+is checked for lossy substrates. Bulk fractions of a lossy substrate are the cone integrals of Im G of
 the lossy substrate split in the lossless shear/compressional proportions (definitional).
 
 Positions: bulk and absorbed channels are weighted by each resonator's share of the channel's
@@ -346,6 +350,8 @@ def _positions(length, fr, moments) -> dict[str, np.ndarray]:
 
 def _make_trace(freq, layout, sol, kr, lossy) -> tuple[Trace, np.ndarray]:
     fr = sol["fractions"].copy()
+    if lossy:  # transmitted power at x = L of the power entering at 0 (module docstring)
+        fr[0] *= np.exp(-2.0 * np.abs(kr.imag) * float(layout.length))
     total = fr.sum(axis=0)
     balance = 1.0 - total
     if lossy:
