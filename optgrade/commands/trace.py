@@ -38,6 +38,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from optgrade.layout import Layout
     from optgrade.propagation import Trace
     from optgrade.study import Study
+    from optgrade.verdict import Verdict
 
 __all__ = ["SITE_CAUTION", "add_parser", "run", "run_trace"]
 
@@ -143,10 +144,17 @@ def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = No
         "model": model or study.goal.model,
         **tr.to_dict(),
     }
+    from optgrade.verdict import verdict
+
+    judged = verdict(study, layout, tr)
+    payload = {"verdict": judged.to_dict(), **payload}
     if not is_wkb:
         w = wkb.to_dict()
         payload["wkb"] = {k: w[k] for k in ("fractions", "position_m", "angle_deg", "eps_max",
                                              "is_adiabatic", "branch", "turning_position_m")}
+        off = wkb_disagreement(wkb, tr)
+        payload["wkb"]["disagrees"] = [bool(v) for v in off]
+        payload["wkb"]["disagreement_limit"] = WKB_DISAGREEMENT
     is_site = study.meta.scale == "site"
     if is_site:
         payload["caution"] = SITE_CAUTION
@@ -154,8 +162,21 @@ def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = No
     write_json(out / "trace.json", payload)
     if is_figures:
         _write_figures(study, layout, out, freq, modes, tr, None if is_wkb else wkb, shares)
-    _summary(study, layout, freq, tr, wkb, is_wkb, console, out, is_figures)
+    _summary(study, layout, freq, tr, wkb, is_wkb, console, out, is_figures, judged)
     return payload
+
+
+#: Largest difference on any channel (fraction of the incident power) at which the WKB march
+#: still counts as agreeing with the exact model at a frequency (issue 13 item 4).
+WKB_DISAGREEMENT = 0.1
+
+
+def wkb_disagreement(wkb: Trace, exact: Trace) -> np.ndarray:
+    """Frequencies where the WKB march is off the exact model by more than
+    `WKB_DISAGREEMENT` on any channel (bool per frequency)."""
+    diff = np.max([np.abs(np.nan_to_num(wkb.fractions[c]) - np.nan_to_num(exact.fractions[c]))
+                   for c in exact.fractions], axis=0)
+    return diff > WKB_DISAGREEMENT
 
 
 def _write_figures(study: Study, layout: Layout, out: Path, freq: np.ndarray, modes: LocalModes,
@@ -195,16 +216,23 @@ def _write_figures(study: Study, layout: Layout, out: Path, freq: np.ndarray, mo
 
 
 def _summary(study: Study, layout: Layout, freq: np.ndarray, tr: Trace, wkb: Trace,
-             is_wkb: bool, console: Console | None, out: Path, is_figures: bool) -> None:
-    """Band means per channel (model and WKB side by side), validity and balance lines."""
+             is_wkb: bool, console: Console | None, out: Path, is_figures: bool,
+             judged: Verdict) -> None:
+    """Verdict, band means per channel (model and WKB side by side), validity, balance."""
     if console is None:
         return
-    from optgrade.plotting.trace import frequency_unit
+    from rich.markup import escape
+
+    from optgrade.plotting.trace import frequency_unit, length_unit
 
     say = console.print
+    say(f"[bold]{escape(judged.line())}[/]")
+    for text in judged.limit_lines():
+        say(f"  binding: {escape(text)}")
     fs, funit = frequency_unit(float(freq[-1]))
-    say(f"[bold]{study.meta.name}[/]: {layout.n_resonators} resonators, length "
-        f"{layout.length * 1e3:.4g} mm, {freq.size} frequencies {freq[0] / fs:.4g} .. "
+    ls, lunit = length_unit(float(layout.length))
+    say(f"[bold]{escape(study.meta.name)}[/]: {layout.n_resonators} resonators, length "
+        f"{layout.length / ls:.4g} {lunit}, {freq.size} frequencies {freq[0] / fs:.4g} .. "
         f"{freq[-1] / fs:.4g} {funit}; propagation model {tr.propagation!r}")
     say(f"  band-mean {'channel':<24s} {tr.propagation:>10s}" + ("" if is_wkb else "        wkb"))
     for c, v in tr.fractions.items():
@@ -216,6 +244,10 @@ def _summary(study: Study, layout: Layout, freq: np.ndarray, tr: Trace, wkb: Tra
     n_bad = int(np.sum(~wkb.is_adiabatic))
     say(f"  WKB picture: eps_max up to {float(np.max(wkb.eps_max)):.3g}; {n_bad} of {freq.size} "
         "frequencies above 0.1 (outside the adiabatic march's validity)")
+    if not is_wkb:
+        n_off = int(np.sum(wkb_disagreement(wkb, tr)))
+        say(f"  WKB march off the {tr.propagation} model by more than {WKB_DISAGREEMENT} on some "
+            f"channel at {n_off} of {freq.size} frequencies (trace.json wkb.disagrees)")
     if study.meta.scale == "site":
         say(f"[yellow]{SITE_CAUTION}[/]")
     say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {len(FIGURES)} figures"))
@@ -244,7 +276,7 @@ def run(args: argparse.Namespace) -> int:
             f"({bad.size} cells outside); the dispersion tables cover only that range"
         ])
     d_study = float(study.resonator.diameter)
-    console = Console(stderr=False, highlight=False)
+    console = Console(stderr=False, highlight=False, soft_wrap=True)
     from optgrade.fabrication import check_layout
 
     violations = check_layout(study, layout)  # advisory here: printed, the trace still runs
