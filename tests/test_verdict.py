@@ -10,12 +10,11 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+from search_helpers import fake_trace
 
 from optgrade.layout import layout_from_cells
 from optgrade.study import load_study
 from optgrade.verdict import frequency_ranges, verdict
-
-from search_helpers import fake_trace
 
 BENCH = Path(__file__).resolve().parents[1] / "studies" / "bench_backward_shear.toml"
 

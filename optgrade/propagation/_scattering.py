@@ -31,8 +31,8 @@ x = L = ``layout.length``, so it includes the bare ground's own decay there,
 remainder 1 - (transmitted + R + bulk + rods) is booked to ``absorbed`` (the substrate's loss
 over the row, the bare ground's and the extra the row causes). The blocking goal divides the
 bare ground's exp(-2 Im kR L) back out. ``balance_error`` is nan there: no independent balance
-is checked for lossy substrates. Bulk fractions of a lossy substrate are the cone integrals of Im G of
-the lossy substrate split in the lossless shear/compressional proportions (definitional).
+is checked for lossy substrates. Bulk fractions of a lossy substrate are the cone integrals of
+Im G of the lossy substrate split in the lossless shear/compressional proportions (definitional).
 
 Positions: bulk and absorbed channels are weighted by each resonator's share of the channel's
 power (sum_k of its row of the quadratic form); reflected by each resonator's share of

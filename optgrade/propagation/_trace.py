@@ -104,7 +104,8 @@ class Trace:
         Columns: ``<channel>_fraction`` (-), ``<channel>_position_m`` (m), ``<channel>_angle_deg``
         (deg) for each channel in :data:`optgrade.channels.CHANNELS`, then ``eps_max`` (-),
         ``is_adiabatic``, ``branch``, ``turning_position_m`` (m), ``entry_reflection`` (-) and
-        ``phase_rad`` (rad), and ``balance_error`` (-) when the model gives one. Values are copies; nan stays nan.
+        ``phase_rad`` (rad), and ``balance_error`` (-) when the model gives one. Values are
+        copies; nan stays nan.
 
         Raises
         ------
