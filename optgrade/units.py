@@ -73,7 +73,8 @@ ACCEPTED_FORM = (
     "one number and one unit, e.g. \"2.5 mm\", \"150 kHz\", \"1.2e5 Hz\", \"7850 kg/m^3\" "
     "(decimal point, no spaces, commas or separators inside the number, no arithmetic)"
 )
-# number: digits with at most one decimal point, optional exponent (a huge exponent gives inf and is refused as not finite)
+# number: digits with at most one decimal point, optional exponent (a huge exponent gives inf,
+# refused as not finite)
 _NUMBER = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d{1,9})?"
 # unit: names (letters, the micro signs, an underscore) with optional small integer powers,
 # joined by * or /; no digits outside the powers, no other operators
