@@ -343,7 +343,11 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     summary = _summary_lines(study, trace, values, violations, score)
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
                                  pareto=pareto, summary=summary, trial_number=trial_number)
+    from optgrade.verdict import verdict
+
+    judged = verdict(study, layout, trace)
     result = {
+        "verdict": judged.to_dict(),
         "study": study.meta.name,
         "study_hash": key,
         "study_file_sha256": search.file_hash(study),
@@ -380,7 +384,13 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
     wanted = np.nan_to_num(wanted, nan=0.0)
     meets = wanted >= study.goal.required_fraction
     h = np.asarray(layout.height) * 1e3
+    from optgrade.verdict import verdict
+
+    judged = verdict(study, layout, trace)
     lines = [
+        judged.line(),
+        *("  binding: " + t for t in judged.limit_lines()),
+        "",
         f"optgrade {__version__} report: {study.meta.name}, trial {trial_number}",
         "",
         "ASKED",

@@ -144,7 +144,10 @@ def test_real_search_export_cli_round_trip(tmp_path):
     s = load_study(study_path)
     tr = trace_layout(s, read_table(out / "table.csv"))  # the study's model (exact by default)
     assert a["performance"]["propagation"] == tr.propagation == "scattering"
-    assert "exact multiple-scattering" in (out / "report.txt").read_text()
+    report = (out / "report.txt").read_text()
+    assert "exact multiple-scattering" in report
+    assert report.startswith("GOAL MET" if a["verdict"]["is_met"] else "GOAL NOT MET")
+    assert a["verdict"]["n_frequencies"] == len(tr.frequency)
     for c in CHANNELS:
         np.testing.assert_allclose(np.array(a["performance"]["fractions"][c], dtype=float),
                                    tr.fractions[c], atol=1e-12)
