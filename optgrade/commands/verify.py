@@ -2,14 +2,19 @@
 
 Runs the 2-D plane-strain full-wave solver (optgrade.fullwave._solver) on the layout, once with the
 resonators and once on the bare substrate, splits the outgoing power into the trace.json
-channels and compares them with the surrogate's 2-D line model. Writes
+channels and compares them with the exact row model of the same 2-D line layout (multiple
+scattering, docs/physics.md section 13: the primary comparison) and with the WKB trace of the
+surrogate's line model beside it. Writes
 
 - ``DIR/verify.json``: the trace.json keys (``frequency_hz``, ``fractions``, ``position_m``,
-  ``angle_deg``) plus ``agreement`` (per channel: mean absolute difference over the band and
-  conversion-position difference in cells), ``energy`` (box balance and direct-flux closure)
-  and ``fullwave`` (grid, timing, diagnostics); a ``caution`` for site-scale studies;
-- ``DIR/comparison.png`` (surrogate against full-wave, per channel), ``DIR/snapshots.png``
-  (displacement field at four moments) and ``DIR/animation.gif`` (when Pillow is available).
+  ``angle_deg``) plus ``agreement`` (against the exact row model, per channel: mean absolute
+  difference over the band and conversion-position difference in cells), ``agreement_wkb``
+  (the same against the WKB trace), ``exact`` and ``wkb`` (the two traces), ``energy`` (box
+  balance and direct-flux closure) and ``fullwave`` (grid, timing, diagnostics); a
+  ``caution`` for site-scale studies;
+- ``DIR/comparison.png`` (full-wave, exact row model and WKB trace per channel, 3-D lattice
+  exact model dotted), ``DIR/snapshots.png`` (displacement field at four moments) and
+  ``DIR/animation.gif`` (when Pillow is available).
 
 Every run checks itself (energy balance, closure, power into lossless rods, energy left at the
 end; bounds in ``optgrade.fullwave._solver.CHECK_BOUNDS``). A run outside a bound is reported
@@ -44,12 +49,13 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
     """Register ``optgrade verify``."""
     parser = subparsers.add_parser(
         "verify",
-        help="full-wave 2-D check of a layout against the surrogate",
+        help="full-wave 2-D check of a layout against the exact row model and the WKB trace",
         description=(
             "Simulate the layout in the time domain (2-D plane strain, each row of rods "
             "smeared across the wave path, absorbing layers, broadband Rayleigh-wave source), "
             "split the outgoing power into the same channels as 'optgrade trace' and compare with "
-            "the surrogate's 2-D line model. Writes DIR/verify.json, DIR/comparison.png, "
+            "the exact row model of the same 2-D line layout (and the WKB trace beside it). "
+            "Writes DIR/verify.json, DIR/comparison.png, "
             "DIR/snapshots.png and DIR/animation.gif."
         ),
     )
@@ -63,7 +69,8 @@ def add_parser(subparsers: Any) -> argparse.ArgumentParser:
                              "of 20): about 8x quicker, a few per cent less accurate")
     parser.add_argument("--no-animation", action="store_true", help="skip animation.gif")
     parser.add_argument("--no-lattice", action="store_true",
-                        help="do not draw the 3-D lattice prediction beside the line model")
+                        help="do not draw the exact model's 3-D lattice prediction beside the "
+                             "line model")
     parser.set_defaults(handler=run)
     return parser
 
@@ -74,7 +81,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
 
     Returns the JSON payload. The same function backs the command line.
     """
-    from optgrade.fullwave._solver import CHANNELS, rods_of, verify
+    from optgrade.fullwave._solver import rods_of, verify
     from optgrade.plotting import fullwave as pf
     from optgrade.study import SITE_CAUTION
 
@@ -84,10 +91,10 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     lattice = None
     if is_lattice:
         try:
-            from optgrade.dispersion import surrogate_for_study
-            from optgrade.propagation import trace_study
+            from optgrade.propagation import propagation_model
 
-            lattice = trace_study(study, layout, surrogate_for_study(study, model="lattice"))
+            lattice = propagation_model(study, "scattering", model="lattice").trace(
+                layout, ver.frequency)
         except Exception as exc:  # the figure is still useful without it
             say(f"[yellow]note[/]: no 3-D lattice prediction ({type(exc).__name__}: {exc})")
     payload = {
@@ -118,7 +125,8 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     note = " (site scale: see caution in verify.json)" if is_site else ""
     if ver.status != "ok":
         note += " - FAILED its own checks, not a result (see verify.json)"
-    fig.suptitle(f"{study.meta.name}: full-wave 2-D check against the surrogate{note}")
+    fig.suptitle(f"{study.meta.name}: full-wave 2-D check against the exact row model and the "
+                 f"WKB trace{note}")
     save_figure(fig, out / "comparison.png")
     plt.close(fig)
 
@@ -148,24 +156,37 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     else:
         say("  lossy substrate: the box energy balance measures the absorbed power (no "
             "separate balance check)")
-    for c in CHANNELS:
-        line = f"  band-mean {c:<24s} {float(np.mean(ver.fractions[c])):7.3f}"
-        if ver.agreement is not None:
-            a = ver.agreement[c]
-            line += f"   surrogate {float(np.mean(ver.surrogate.fractions[c])):7.3f}"
-            if a["mean_abs_difference"] is not None:
-                line += f"   mean |diff| {a['mean_abs_difference']:.3f}"
-            if a["position_difference_cells"] is not None:
-                line += f"   position diff {a['position_difference_cells']:.1f} cells"
-        say(line)
-    if ver.agreement is None:
-        say(f"[yellow]no surrogate comparison[/]: {ver.info.get('surrogate_error')}")
+    _say_channels(say, ver)
     if is_site:
         say(f"[yellow]{SITE_CAUTION}[/]")
     say(f"wrote {out / 'verify.json'} and {n_files - 1} figure files")
     if ver.status != "ok":
         say(f"[bold red]FAILED[/]: {ver.reason}")
     return payload
+
+
+def _say_channels(say: Any, ver: Any) -> None:
+    """Band means per channel: full-wave, exact row model, WKB trace and the differences."""
+    from optgrade.fullwave._solver import CHANNELS
+
+    # columns: band means; band-mean |full-wave - model|; exact model's position difference
+    say(f"  {'band mean':<24s} {'full-wave':>9s} {'exact':>7s} {'WKB':>7s}   "
+        "|diff| exact/WKB cells")
+    for c in CHANNELS:
+        line = f"  {c:<24s} {float(np.mean(ver.fractions[c])):9.3f}"
+        for tr in (ver.exact, ver.surrogate):
+            line += (f" {float(np.nanmean(tr.fractions[c])):7.3f}" if tr is not None
+                     else f" {'-':>7s}")
+        diffs = [None if a is None else a[c]["mean_abs_difference"]
+                 for a in (ver.agreement, ver.agreement_wkb)]
+        line += "   " + " / ".join("  -  " if d is None else f"{d:.3f}" for d in diffs)
+        if ver.agreement is not None and ver.agreement[c]["position_difference_cells"] is not None:
+            line += f"   {ver.agreement[c]['position_difference_cells']:.1f}"
+        say(line)
+    if ver.agreement is None:
+        say(f"[yellow]no exact-model comparison[/]: {ver.info.get('exact_error')}")
+    if ver.agreement_wkb is None:
+        say(f"[yellow]no WKB comparison[/]: {ver.info.get('surrogate_error')}")
 
 
 def run(args: argparse.Namespace) -> int:

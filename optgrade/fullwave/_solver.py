@@ -1181,14 +1181,17 @@ def _stop_position(ratio: np.ndarray, x: np.ndarray, in_row: np.ndarray, lam: np
 
 @dataclass
 class Verification:
-    """Full-wave channel fractions of a layout, with the comparison against the surrogate.
+    """Full-wave channel fractions of a layout, compared with the exact row model and the
+    WKB trace of the same 2-D line layout.
 
     ``frequency`` (Hz), ``fractions``/``position`` (m)/``angle`` (deg) per channel like
-    :class:`optgrade.propagation._wkb.Trace`; ``closure`` (raw channel sum before normalisation),
+    :class:`optgrade.propagation.Trace`; ``closure`` (raw channel sum before normalisation),
     ``balance_error`` (box energy balance, fraction of the incident power), ``agreement``
     (per channel mean absolute difference and conversion-position difference in cells against
-    the surrogate; ``None`` when the surrogate is unavailable), ``surrogate`` (its Trace or
-    ``None``), ``info`` (grid, timing, run diagnostics), ``split`` and runs for the figures.
+    the exact row model, line variant; ``None`` when it is unavailable), ``exact`` (its Trace
+    or ``None``), ``agreement_wkb`` and ``surrogate`` (the same against the WKB trace of the
+    surrogate's line model, and that Trace), ``info`` (grid, timing, run diagnostics),
+    ``split`` and runs for the figures.
     """
 
     frequency: np.ndarray
@@ -1206,12 +1209,15 @@ class Verification:
     reference: RunRecord | None = field(default=None, repr=False)
     status: str = "ok"
     reason: str | None = None
+    exact: Any = None
+    agreement_wkb: dict[str, Any] | None = None
 
     def total(self) -> np.ndarray:
         return np.sum([self.fractions[c] for c in CHANNELS], axis=0)
 
     def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict: the trace.json channel keys plus ``agreement``, ``surrogate`` (its
+        """JSON-ready dict: the trace.json channel keys plus ``agreement`` (against the exact
+        row model), ``agreement_wkb`` (against the WKB trace), ``exact`` and ``wkb`` (their
         trace.json content, line model), ``energy`` and ``fullwave`` (grid, timing)."""
 
         def clean(a) -> list:
@@ -1225,7 +1231,9 @@ class Verification:
             "position_m": {c: clean(self.position[c]) for c in CHANNELS},
             "angle_deg": {c: clean(self.angle[c]) for c in CHANNELS},
             "agreement": self.agreement,
-            "surrogate": None if self.surrogate is None else self.surrogate.to_dict(),
+            "agreement_wkb": self.agreement_wkb,
+            "exact": None if self.exact is None else self.exact.to_dict(),
+            "wkb": None if self.surrogate is None else self.surrogate.to_dict(),
             "energy": {"closure": clean(self.closure),
                        "balance_error": clean(self.balance_error)},
             "fullwave": self.info,
@@ -1334,10 +1342,11 @@ def run_pair(medium: Medium, rods: RodRow, band: tuple[float, float], freq: np.n
 
 def compare(split_fractions: dict, split_position: dict, trace: Any,
             spacing: float) -> dict[str, Any]:
-    """Agreement between full-wave and surrogate fractions/positions.
+    """Agreement between full-wave and a model's trace (exact row model or WKB): fractions
+    and positions.
 
     Per channel: ``mean_abs_difference`` over the band, and ``position_difference_cells`` =
-    mean |x_fullwave - x_surrogate| / mean spacing over frequencies where both are defined
+    mean |x_fullwave - x_model| / mean spacing over frequencies where both are defined
     (``None`` where never both), and its median (robust to a few frequencies where the two
     book a small fraction at very different places).
     """
@@ -1361,9 +1370,9 @@ def compare(split_fractions: dict, split_position: dict, trace: Any,
 
 
 def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: bool = True,
-           n_snapshots: int = 40, surrogate: Any = None) -> Verification:
-    """Full-wave check of ``layout`` under ``study`` (2-D line model), compared with the
-    surrogate's trace of the same layout.
+           n_snapshots: int = 40, surrogate: Any = None, exact: Any = None) -> Verification:
+    """Full-wave check of ``layout`` under ``study`` (2-D line model), compared with the exact
+    row model of the same 2-D line layout (primary) and the WKB trace (beside it).
 
     Parameters
     ----------
@@ -1379,9 +1388,13 @@ def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: b
     n_snapshots : int
         Displacement snapshots kept for figures and the animation.
     surrogate : object, optional
-        Surrogate to trace with (default: the study's surrogate with the 2-D line model, the
-        like-for-like comparison). When tracing fails the
-        verification is returned with ``agreement = None`` and the reason in ``info``.
+        Dispersion surrogate for the WKB trace (default: the study's surrogate with the 2-D
+        line model). When the WKB trace fails, ``agreement_wkb`` is None and the reason is in
+        ``info["surrogate_error"]``.
+    exact : PropagationModel, optional
+        Exact row model to compare with (default: ``propagation_model(study, "scattering",
+        model="line")``, docs/physics.md section 13). When it fails, ``agreement`` is None and
+        the reason is in ``info["exact_error"]``.
     """
     if quality not in QUALITY:
         raise ValueError(f"quality: must be one of {sorted(QUALITY)}, got {quality!r}")
@@ -1398,6 +1411,26 @@ def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: b
         return _unstable_verification(exc, medium, rods, band, freq, length, quality,
                                       time.perf_counter() - t0, study)
     checks, reasons = self_checks(split, run, medium, rods, quality)
+    info = _run_info(run, ref, grid, split, medium, rods, band, quality, checks,
+                     time.perf_counter() - t0)
+    if getattr(study.meta, "scale", "bench") == "site":
+        info["caution"] = SITE_CAUTION
+    spacing = float(np.mean(layout.spacing))
+    exact_trace, agreement = _compare_exact(study, layout, freq, split, spacing, exact, info)
+    wkb_trace, agreement_wkb = _compare_wkb(study, layout, split, spacing, surrogate, info)
+    return Verification(
+        frequency=freq, fractions=split.fractions, position=split.position, angle=split.angle,
+        closure=split.closure, balance_error=split.balance_error, agreement=agreement,
+        surrogate=wkb_trace, info=info, split=split, grid=grid, run=run, reference=ref,
+        status="failed" if reasons else "ok", reason="; ".join(reasons) if reasons else None,
+        exact=exact_trace, agreement_wkb=agreement_wkb,
+    )
+
+
+def _run_info(run: RunRecord, ref: RunRecord, grid: Grid, split: ChannelSplit, medium: Medium,
+              rods: RodRow, band: tuple[float, float], quality: str, checks: dict[str, Any],
+              seconds: float) -> dict[str, Any]:
+    """verify.json's ``fullwave`` block: grid, timing, diagnostics and the self-checks."""
     info: dict[str, Any] = {
         "model": "2-D plane strain, line variant (rows smeared along y), axial rods",
         "quality": quality,
@@ -1405,7 +1438,7 @@ def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: b
         "time_step_s": grid.dt,
         "n_cells": grid.n_cells,
         "n_steps": run.n_steps + ref.n_steps,
-        "seconds": time.perf_counter() - t0,
+        "seconds": seconds,
         "cell_updates_per_second": (run.cell_updates + ref.cell_updates)
         / max(run.seconds + ref.seconds, 1e-9),
         "energy_left_at_end": _finite_or_none(run.energy_left),
@@ -1417,10 +1450,32 @@ def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: b
     }
     if medium.loss_factor == 0:
         info["bulk_from_rod_forces"] = _radiation_summary(run, rods, grid, medium, split)
-    if getattr(study.meta, "scale", "bench") == "site":
-        info["caution"] = SITE_CAUTION
-    trace = None
-    agreement = None
+    return info
+
+
+def _compare_exact(study: Study, layout: Layout, freq: np.ndarray, split: ChannelSplit,
+                   spacing: float, exact: Any, info: dict[str, Any]) -> tuple[Any, Any]:
+    """The exact row model's trace of the same 2-D line layout and its agreement with the
+    full-wave split; (None, None) with ``info["exact_error"]`` when the model fails."""
+    try:
+        if exact is None:
+            from optgrade.propagation import propagation_model
+
+            exact = propagation_model(study, "scattering", model="line")
+        tr = exact.trace(layout, freq)
+        bal = tr.balance_error
+        if bal is not None and np.isfinite(bal).any():
+            info["exact_max_balance_error"] = float(np.nanmax(np.abs(bal)))
+        return tr, compare(split.fractions, split.position, tr, spacing)
+    except Exception as exc:  # e.g. a ground without Green's tables
+        info["exact_error"] = f"{type(exc).__name__}: {exc}"
+        return None, None
+
+
+def _compare_wkb(study: Study, layout: Layout, split: ChannelSplit, spacing: float,
+                 surrogate: Any, info: dict[str, Any]) -> tuple[Any, Any]:
+    """The WKB trace (surrogate, 2-D line model) and its agreement with the full-wave split;
+    (None, None) with ``info["surrogate_error"]`` when the surrogate stage fails."""
     try:
         from optgrade.propagation import trace_study
 
@@ -1428,17 +1483,11 @@ def verify(study: Study, layout: Layout, *, quality: str = "normal", progress: b
             from optgrade.dispersion import surrogate_for_study
 
             surrogate = surrogate_for_study(study, model="line")
-        trace = trace_study(study, layout, surrogate)
-        agreement = compare(split.fractions, split.position, trace,
-                            float(np.mean(layout.spacing)))
+        tr = trace_study(study, layout, surrogate)
+        return tr, compare(split.fractions, split.position, tr, spacing)
     except Exception as exc:  # the surrogate stage may be missing or fail on this layout
         info["surrogate_error"] = f"{type(exc).__name__}: {exc}"
-    return Verification(
-        frequency=freq, fractions=split.fractions, position=split.position, angle=split.angle,
-        closure=split.closure, balance_error=split.balance_error, agreement=agreement,
-        surrogate=trace, info=info, split=split, grid=grid, run=run, reference=ref,
-        status="failed" if reasons else "ok", reason="; ".join(reasons) if reasons else None,
-    )
+        return None, None
 
 
 def _radiation_summary(run: RunRecord, rods: RodRow, grid: Grid, medium: Medium,

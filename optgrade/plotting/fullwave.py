@@ -36,24 +36,30 @@ def _time_label(t: float) -> str:
 
 
 def plot_comparison(fig: Any, ver: Any, lattice: Any = None) -> None:
-    """Channel fractions against frequency: full-wave (solid) and the surrogate's 2-D line
-    model (dashed), and the 3-D lattice prediction (dotted) when given; last panel: energy
-    balance and direct-flux closure of the full-wave run."""
+    """Channel fractions against frequency: full-wave (solid), the exact row model of the same
+    2-D line layout (dashed), the WKB trace of the surrogate's line model (dash-dot) and, when
+    given, the exact model's 3-D lattice prediction (dotted); each panel's title carries the
+    band-mean |full-wave - exact| and |full-wave - WKB|. Last panel: energy balance and
+    direct-flux closure of the full-wave run."""
     axes = fig.subplots(2, 4, sharex=True)
     scale, unit = _freq_unit(float(np.max(ver.frequency)))
     f_khz = ver.frequency / scale
-    sur = ver.surrogate
+    models = ((getattr(ver, "exact", None), "--", "C1", "exact row model, line"),
+              (ver.surrogate, "-.", "C3", "WKB trace, line"),
+              (lattice, ":", "C2", "exact row model, 3-D lattice"))
     for ax, c in zip(axes.flat, CHANNELS, strict=False):
-        ax.plot(f_khz, ver.fractions[c], "-", color="C0", lw=1.6, label="full-wave 2-D")
-        if sur is not None:
-            ax.plot(sur.frequency / scale, sur.fractions[c], "--", color="C1", lw=1.3,
-                    label="surrogate, line model")
-        if lattice is not None:
-            ax.plot(lattice.frequency / scale, lattice.fractions[c], ":", color="C2", lw=1.3,
-                    label="surrogate, 3-D lattice")
+        ax.plot(f_khz, ver.fractions[c], "-", color="C0", lw=1.8, label="full-wave 2-D")
+        for tr, style, colour, label in models:
+            if tr is not None:
+                ax.plot(tr.frequency / scale, tr.fractions[c], style, color=colour, lw=1.2,
+                        label=label)
         title = LABELS[c]
-        if ver.agreement is not None and ver.agreement[c]["mean_abs_difference"] is not None:
-            title += f"\nmean |diff| {ver.agreement[c]['mean_abs_difference']:.3f}"
+        parts = []
+        for name, agr in (("exact", ver.agreement), ("WKB", getattr(ver, "agreement_wkb", None))):
+            if agr is not None and agr[c]["mean_abs_difference"] is not None:
+                parts.append(f"{name} {agr[c]['mean_abs_difference']:.3f}")
+        if parts:
+            title += "\nmean |diff| " + ", ".join(parts)
         ax.set_title(title, fontsize=9)
         ax.set_ylim(-0.02, 1.02)
         ax.grid(alpha=0.3)
