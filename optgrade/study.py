@@ -52,8 +52,8 @@ __all__ = [
 #: Caution carried by every site-scale output (docs/physics.md section 8); one wording everywhere.
 SITE_CAUTION = (
     "CAUTION (site scale): simplified model (thin axial rods on a homogeneous, linear "
-    "elastic half-space); soil layering and the coupling of "
-    "the posts to the ground are not represented. Treat the result as a starting point only: any design must be verified by a "
+    "elastic half-space); soil layering and the coupling of the posts to the ground are not "
+    "represented. Treat the result as a starting point only: any design must be verified by a "
     "qualified engineer and follow local codes."
 )
 

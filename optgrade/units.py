@@ -246,3 +246,23 @@ def format_quantity(value: float, dimension: str, unit: str | None = None, digit
     si = _si_unit(dimension)
     shown = ureg.Quantity(value, si).to(unit) if unit else ureg.Quantity(value, si)
     return f"{shown.magnitude:.{digits}g} {unit or DIMENSIONS[dimension][0]}"
+
+
+_PREFIXES = {-9: "n", -6: "µ", -3: "m", 0: "", 3: "k", 6: "M", 9: "G"}
+
+
+def format_eng(value: float, symbol: str, digits: int = 4) -> str:
+    """Engineering notation with an SI prefix: ``format_eng(105200.0, "Hz") -> "105.2 kHz"``,
+    ``format_eng(0.0025, "m") -> "2.5 mm"``. Exponents outside nano..giga fall back to ``e``
+    notation; zero and non-finite values are printed as they are."""
+    if not math.isfinite(value) or value == 0.0:
+        return f"{value:g} {symbol}"
+    exp3 = int(math.floor(math.log10(abs(value)) / 3.0)) * 3
+    if exp3 not in _PREFIXES:
+        return f"{value:.{digits}g} {symbol}"
+    scaled = value / 10.0**exp3
+    text = f"{scaled:.{digits}g}"
+    if abs(float(text)) >= 1000.0 and exp3 + 3 in _PREFIXES:  # 999.96 rounds to 1000
+        exp3 += 3
+        text = f"{value / 10.0**exp3:.{digits}g}"
+    return f"{text} {_PREFIXES[exp3]}{symbol}"

@@ -8,21 +8,15 @@ physics, is under test here).
 
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 import textwrap
 from pathlib import Path
 
 import numpy as np
-import optuna
 import pytest
-from optuna.trial import TrialState
-from search_helpers import clone, fake_pipeline, fake_study
 
-from optgrade import export
 from optgrade._table_cache import read_cached, write_cached
-from optgrade.search import _owner as search
 
 # ---------------------------------------------------------------------------------------------
 # cache tables

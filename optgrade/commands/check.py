@@ -16,6 +16,7 @@ from typing import Any
 
 from optgrade.commands import add_study_argument, open_study
 from optgrade.study import SITE_CAUTION, Study, first_resonance_range
+from optgrade.units import format_eng
 
 __all__ = ["SITE_CAUTION", "add_parser", "derived_figures", "run", "study_warnings"]
 
@@ -44,6 +45,11 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         ),
     )
     add_study_argument(parser)
+    parser.add_argument(
+        "--no-reach", action="store_true",
+        help="skip the reachability estimate (it solves the local modes of the admissible "
+             "cells; the first run builds the dispersion tables)",
+    )
     parser.add_argument(
         "--json", action="store_true",
         help="print the resolved study in SI as JSON (plus 'derived' and 'warnings' keys)",
@@ -93,65 +99,76 @@ def derived_figures(study: Study) -> dict[str, Any]:
 
 
 def study_warnings(study: Study, figures: dict[str, Any] | None = None) -> list[str]:
-    """Warnings about a valid study (docs/physics.md sections 4.5, 5.8 and 8)."""
+    """Warnings about a valid study (docs/physics.md sections 4.5, 5.8 and 8); lengths,
+    frequencies and forces in engineering units (mm, kHz, kN)."""
     fig = figures or derived_figures(study)
     sub, res, lay, goal, fab = (study.substrate, study.resonator, study.layout, study.goal,
                                 study.fabrication)
+    e = format_eng
     f_lo, f_hi = goal.band
     out = []
     shear_wavelength_top = sub.ct / f_hi
     if res.row_pitch > shear_wavelength_top:
         out.append(
-            f"row pitch {res.row_pitch:.4g} m exceeds the shear wavelength at the band top "
-            f"({shear_wavelength_top:.4g} m), i.e. 2 pi/b < kT: harmonics across the row radiate "
-            "sideways into the bulk; reduce row_pitch"
+            f"row pitch {e(res.row_pitch, 'm')} exceeds the shear wavelength at the band top "
+            f"({e(shear_wavelength_top, 'm')}), i.e. 2 pi/b < kT: harmonics across the row "
+            "radiate sideways into the bulk; reduce row_pitch"
         )
     bar_wavelength_top = res.bar_speed / f_hi
     if res.diameter > bar_wavelength_top / 5.0:
         out.append(
-            f"rod diameter {res.diameter:.4g} m exceeds 1/5 of the bar wavelength at the band top "
-            f"({bar_wavelength_top / 5.0:.4g} m): thin-rod theory is outside its validity"
+            f"rod diameter {e(res.diameter, 'm')} exceeds 1/5 of the bar wavelength at the band "
+            f"top ({e(bar_wavelength_top / 5.0, 'm')}): thin-rod theory is outside its validity"
         )
     if lay.height[1] / res.diameter > fab.slenderness_max:
         out.append(
             f"tallest rod has slenderness {lay.height[1] / res.diameter:.3g} above the limit "
-            f"{fab.slenderness_max:g}: heights above {fab.slenderness_max * res.diameter:.4g} m "
+            f"{fab.slenderness_max:g}: heights above {e(fab.slenderness_max * res.diameter, 'm')} "
             "are not machinable under this limit"
         )
     l_crit = fig["greenhill_height"]
     if lay.height[1] > 0.5 * l_crit:
         out.append(
-            f"tallest post ({lay.height[1]:.4g} m) is above half the self-weight buckling height "
-            f"(Greenhill, {l_crit:.4g} m)"
+            f"tallest post ({e(lay.height[1], 'm')}) is above half the self-weight buckling "
+            f"height (Greenhill, {e(l_crit, 'm')})"
         )
     if res.has_head_mass:
         load = res.head_mass[1] * GRAVITY
         p_cr = head_mass_buckling_load(res.diameter, res.youngs_modulus, lay.height[1])
         if load * BUCKLING_SAFETY > p_cr:
             out.append(
-                f"heaviest head mass on the tallest post: weight {load:.4g} N against the Euler "
-                f"load {p_cr:.4g} N of a fixed-free post (safety factor {p_cr / load:.2g} < "
-                f"{BUCKLING_SAFETY:g})"
+                f"heaviest head mass on the tallest post: weight {e(load, 'N')} against the "
+                f"Euler load {e(p_cr, 'N')} of a fixed-free post (safety factor "
+                f"{p_cr / load:.2g} < {BUCKLING_SAFETY:g})"
             )
     f1_low, f1_high = fig["first_resonance_hz"]
     if f_hi < f1_low:
         out.append(
-            f"the whole band lies below the lowest first rod resonance ({f1_low:.4g} Hz): the "
-            "rods only load the surface as masses; taller rods reach the band"
+            f"the whole band lies below the lowest first rod resonance ({e(f1_low, 'Hz')}): "
+            "the rods only load the surface as masses; taller rods reach the band"
         )
     elif f_lo > f1_high:
         out.append(
-            f"the whole band lies above the highest first rod resonance ({f1_high:.4g} Hz): "
+            f"the whole band lies above the highest first rod resonance ({e(f1_high, 'Hz')}): "
             "shorter rods reach the band"
+        )
+    elif f_lo < f1_low or f_hi > f1_high:
+        lo_gap = f"below {e(f1_low, 'Hz')}" if f_lo < f1_low else ""
+        hi_gap = f"above {e(f1_high, 'Hz')}" if f_hi > f1_high else ""
+        part = " and ".join(p for p in (lo_gap, hi_gap) if p)
+        out.append(
+            f"the rods' first resonances ({e(f1_low, 'Hz')} .. {e(f1_high, 'Hz')}) cover the "
+            f"band only in part: no rod the limits allow resonates {part}; widen layout.height "
+            "(or the head-mass range) if the goal needs resonant rods there"
         )
     if goal.channel.startswith("backward"):
         rayleigh_half = sub.cr / f_hi / 2.0
         if lay.spacing[1] < rayleigh_half:
             out.append(
-                f"spacing max {lay.spacing[1]:.4g} m is below half the Rayleigh wavelength at the "
-                f"band top ({rayleigh_half:.4g} m): the slowed branch meets the Bragg condition "
-                "K = pi/a before the folded harmonic enters the bulk-wave cone, so backward "
-                "conversion is unlikely"
+                f"spacing max {e(lay.spacing[1], 'm')} is below half the Rayleigh wavelength at "
+                f"the band top ({e(rayleigh_half, 'm')}): the slowed branch meets the Bragg "
+                "condition K = pi/a before the folded harmonic enters the bulk-wave cone, so "
+                "backward conversion is unlikely"
             )
     if sub.poisson <= 0.0:
         out.append(f"substrate Poisson ratio {sub.poisson:.3f} <= 0 is unusual; check cl and ct")
@@ -267,11 +284,34 @@ def run(args: argparse.Namespace) -> int:
     study = open_study(args.study)
     fig = derived_figures(study)
     warnings = study_warnings(study, fig)
+    reach = None if args.no_reach else _reach(study, quiet=args.json)
     if args.json:
         payload = study.to_si_dict()
         payload["derived"] = fig
         payload["warnings"] = warnings
+        if reach is not None:
+            payload["reach"] = reach.to_dict()
         sys.stdout.write(json.dumps(_json_ready(payload), indent=2, allow_nan=False) + "\n")
     else:
         _print_human(study, fig, warnings)
+        if reach is not None:
+            from rich.console import Console
+            from rich.markup import escape
+
+            console = Console(highlight=False, soft_wrap=True)
+            console.print("[bold]reachability[/bold] (before any search)")
+            for line in reach.lines():
+                console.print("  " + escape(line))
     return 0
+
+
+def _reach(study: Study, *, quiet: bool) -> Any:
+    """The reachability estimate (optgrade/reach.py), with a status line on a terminal."""
+    from optgrade.reach import reachability
+
+    if quiet:
+        return reachability(study)
+    from rich.console import Console
+
+    with Console(stderr=True).status("reachability: local modes of the admissible cells ..."):
+        return reachability(study)

@@ -281,60 +281,106 @@ def solve_row(
     absorbed; None without ``per_resonator``), ``moments`` (7, n_freq) sum_j x_j share_j
     (m, for the positions), ``angle`` (4, n_freq) bulk mean angles (rad).
     """
-    x = np.ascontiguousarray(np.asarray(x, dtype=float))
-    c = np.ascontiguousarray(np.asarray(compliance, dtype=complex))
-    n = x.size
-    w = tables.omega
-    n_f = w.size
-    if c.shape != (n_f, n):
-        raise ValueError(f"compliance: shape {c.shape}, expected {(n_f, n)}")
-    if n < 1 or np.any(np.diff(x) <= 0):
-        raise ValueError("layout.x: positions must be strictly increasing")
-    jj, kk = np.triu_indices(n, 1)
-    idx, wts = stencils(tables, x[kk] - x[jj])
-    pc = tables.pole
-    kr, res, skr = pc.kr, pc.res, pc.s_kr
-    tab = tables.table
-    ph = np.exp(1j * x[:, None] * kr[None, :])  # (n, n_f)
-    iph = np.exp(-1j * x[:, None] * kr[None, :])
-    m = np.empty((n_f, n, n), dtype=complex)
-    _fill(_gathered(tab[0], idx, wts), np.asarray(tab[0, 0]), jj, kk, row_pitch * c, ph, iph,
-          1j * res * skr * skr, m)
-    rhs = skr[:, None] * ph.T
-    forces = np.linalg.solve(m, rhs[..., None])[..., 0]
-    ft = np.ascontiguousarray(forces.T)
-    a_plus = np.sum(ft * iph, axis=0)
-    r_j = 1j * (res * skr)[:, None] * forces * ph.T
-    t_amp = 1.0 + 1j * res * skr * a_plus
-    r_amp = np.sum(r_j, axis=1)
-    p_inc = w / (4.0 * res.real)
-    scale = 0.5 * w / p_inc
-    absorbed_j = -0.5 * w[:, None] * row_pitch * c.imag * np.abs(forces) ** 2 / p_inc[:, None]
-    refl_j = (np.conj(r_amp)[:, None] * r_j).real
-    per = None
-    if per_resonator:
-        out_p, out_a, pos_b, per_b = _bulk_detailed(tab, idx, wts, jj, kk, ft, x)
-        # order of CHANNELS: forward_shear, forward_compressional, backward_shear, backward_c.
-        per = np.stack([refl_j, per_b[0, 0] * scale[:, None], per_b[1, 0] * scale[:, None],
-                        per_b[0, 1] * scale[:, None], per_b[1, 1] * scale[:, None], absorbed_j])
-    else:
-        out_p, out_a, pos_b = _bulk_fast(tab, idx, wts, jj, kk, ft, x)
-    fractions = np.empty((7, n_f))
-    fractions[0] = np.abs(t_amp) ** 2
-    fractions[1] = np.abs(r_amp) ** 2
-    fractions[2], fractions[3] = out_p[0, 0] * scale, out_p[1, 0] * scale
-    fractions[4], fractions[5] = out_p[0, 1] * scale, out_p[1, 1] * scale
-    fractions[6] = absorbed_j.sum(axis=1)
-    moments = np.array([fractions[0] * 0.0, refl_j @ x, pos_b[0, 0] * scale,
-                        pos_b[1, 0] * scale, pos_b[0, 1] * scale, pos_b[1, 1] * scale,
-                        absorbed_j @ x])
-    with np.errstate(invalid="ignore", divide="ignore"):
-        angle = np.array([
-            out_a[0, 0] / out_p[0, 0], out_a[1, 0] / out_p[1, 0],
-            -out_a[0, 1] / out_p[0, 1], -out_a[1, 1] / out_p[1, 1],
-        ])
-    return {"forces": forces, "T": t_amp, "R": r_amp, "fractions": fractions, "per": per,
-            "moments": moments, "angle": angle}
+    row = _RowGeometry.of(tables, x)
+    return row.solve(np.asarray(compliance, dtype=complex), row_pitch,
+                     per_resonator=per_resonator)
+
+
+@dataclass(frozen=True)
+class _RowGeometry:
+    """Everything of the Foldy system that depends on the positions only (pairs, table
+    stencils, phases, the off-diagonal coupling g(x_j - x_k) with the pole term): shared by
+    every set of compliances on the same positions (the robustness draws)."""
+
+    tables: GreenTables
+    x: np.ndarray
+    jj: np.ndarray
+    kk: np.ndarray
+    idx: np.ndarray
+    wts: np.ndarray
+    ph: np.ndarray
+    iph: np.ndarray
+    g_pairs: np.ndarray
+
+    @classmethod
+    def of(cls, tables: GreenTables, x: ArrayLike) -> _RowGeometry:
+        x = np.ascontiguousarray(np.asarray(x, dtype=float))
+        n = x.size
+        if n < 1 or np.any(np.diff(x) <= 0):
+            raise ValueError("layout.x: positions must be strictly increasing")
+        jj, kk = np.triu_indices(n, 1)
+        idx, wts = stencils(tables, x[kk] - x[jj])
+        kr = tables.pole.kr
+        ph = np.exp(1j * x[:, None] * kr[None, :])  # (n, n_f)
+        iph = np.exp(-1j * x[:, None] * kr[None, :])
+        return cls(tables, x, jj, kk, idx, wts, ph, iph, _gathered(tables.table[0], idx, wts))
+
+    def solve(self, compliance: np.ndarray, row_pitch: float, *,
+              per_resonator: bool) -> dict[str, np.ndarray]:
+        """`solve_row` for one set of base compliances (n_freq, n) on these positions."""
+        tables, x, jj, kk = self.tables, self.x, self.jj, self.kk
+        c = np.ascontiguousarray(compliance)
+        n = x.size
+        w = tables.omega
+        n_f = w.size
+        if c.shape != (n_f, n):
+            raise ValueError(f"compliance: shape {c.shape}, expected {(n_f, n)}")
+        pc = tables.pole
+        res, skr = pc.res, pc.s_kr
+        tab = tables.table
+        ph, iph = self.ph, self.iph
+        m = np.empty((n_f, n, n), dtype=complex)
+        _fill(self.g_pairs, np.asarray(tab[0, 0]), jj, kk, row_pitch * c, ph, iph,
+              1j * res * skr * skr, m)
+        rhs = skr[:, None] * ph.T
+        forces = np.linalg.solve(m, rhs[..., None])[..., 0]
+        return self._channels(forces, c, row_pitch, per_resonator)
+
+    def _channels(self, forces: np.ndarray, c: np.ndarray, row_pitch: float,
+                  per_resonator: bool) -> dict[str, np.ndarray]:
+        """Amplitudes, channel powers, per-resonator shares, moments and angles from the
+        forces (docs/physics.md section 13)."""
+        tables, x, jj, kk, idx, wts = self.tables, self.x, self.jj, self.kk, self.idx, self.wts
+        w = tables.omega
+        n_f = w.size
+        res, skr = tables.pole.res, tables.pole.s_kr
+        tab = tables.table
+        ph, iph = self.ph, self.iph
+        ft = np.ascontiguousarray(forces.T)
+        a_plus = np.sum(ft * iph, axis=0)
+        r_j = 1j * (res * skr)[:, None] * forces * ph.T
+        t_amp = 1.0 + 1j * res * skr * a_plus
+        r_amp = np.sum(r_j, axis=1)
+        p_inc = w / (4.0 * res.real)
+        scale = 0.5 * w / p_inc
+        absorbed_j = (-0.5 * w[:, None] * row_pitch * c.imag * np.abs(forces) ** 2
+                      / p_inc[:, None])
+        refl_j = (np.conj(r_amp)[:, None] * r_j).real
+        per = None
+        if per_resonator:
+            out_p, out_a, pos_b, per_b = _bulk_detailed(tab, idx, wts, jj, kk, ft, x)
+            # order of CHANNELS: forward_shear, forward_compressional, backward_shear, backward_c.
+            sc = scale[:, None]
+            per = np.stack([refl_j, per_b[0, 0] * sc, per_b[1, 0] * sc, per_b[0, 1] * sc,
+                            per_b[1, 1] * sc, absorbed_j])
+        else:
+            out_p, out_a, pos_b = _bulk_fast(tab, idx, wts, jj, kk, ft, x)
+        fractions = np.empty((7, n_f))
+        fractions[0] = np.abs(t_amp) ** 2
+        fractions[1] = np.abs(r_amp) ** 2
+        fractions[2], fractions[3] = out_p[0, 0] * scale, out_p[1, 0] * scale
+        fractions[4], fractions[5] = out_p[0, 1] * scale, out_p[1, 1] * scale
+        fractions[6] = absorbed_j.sum(axis=1)
+        moments = np.array([fractions[0] * 0.0, refl_j @ x, pos_b[0, 0] * scale,
+                            pos_b[1, 0] * scale, pos_b[0, 1] * scale, pos_b[1, 1] * scale,
+                            absorbed_j @ x])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            angle = np.array([
+                out_a[0, 0] / out_p[0, 0], out_a[1, 0] / out_p[1, 0],
+                -out_a[0, 1] / out_p[0, 1], -out_a[1, 1] / out_p[1, 1],
+            ])
+        return {"forces": forces, "T": t_amp, "R": r_amp, "fractions": fractions, "per": per,
+                "moments": moments, "angle": angle}
 
 
 def _positions(length, fr, moments) -> dict[str, np.ndarray]:
@@ -439,6 +485,12 @@ def tables_for_study(
     return _MEMO[key]
 
 
+def _compliance(resonator, tables: GreenTables, layout: Layout) -> np.ndarray:
+    """Base compliance 1/Z of every resonator at the tables' frequencies, (n_freq, n) m/N."""
+    return resonator.compliance(tables.omega[:, None], np.asarray(layout.height, float)[None, :],
+                                np.asarray(layout.head_mass, float)[None, :])
+
+
 def scattering_trace(
     study: Study,
     layout: Layout,
@@ -485,9 +537,7 @@ def scattering_trace(
         )
     if tables is None:
         tables = tables_for_study(study, layout, freq, model=model, cache_dir=cache_dir)
-    w = tables.omega
-    comp = resonator_of(study).compliance(w[:, None], np.asarray(layout.height, float)[None, :],
-                                          np.asarray(layout.head_mass, float)[None, :])
+    comp = _compliance(resonator_of(study), tables, layout)
     sol = solve_row(tables, layout.x, comp, float(res.row_pitch), per_resonator=per_resonator)
     lossy = float(study.substrate.loss_factor or 0.0) > 0.0
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
@@ -525,6 +575,29 @@ class ScatteringModel(PropagationModel):
         f = self.frequencies(freq)
         return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir,
                                 per_resonator=per_resonator)
+
+    def trace_height_errors(self, layout: Layout, errors: np.ndarray) -> list[Trace]:
+        """Exact traces of ``layout`` with each row of ``errors`` (m) added to the rod heights,
+        over the study's grid: the positions do not change, so the pairs, table stencils,
+        phases and off-diagonal couplings are built once (`_RowGeometry`) and each draw only
+        refills the diagonal, solves and evaluates its channels. Identical to tracing each
+        perturbed layout (tests/test_scattering.py)."""
+        from optgrade.layout import with_height_errors
+        from optgrade.resonators import resonator_of
+
+        study = self.study
+        tables = tables_for_study(study, layout, self.frequencies(None), model=self.model,
+                                  cache_dir=self.cache_dir)
+        row = _RowGeometry.of(tables, layout.x)
+        resonator = resonator_of(study)
+        lossy = float(study.substrate.loss_factor or 0.0) > 0.0
+        out = []
+        for e in np.atleast_2d(errors):
+            lay = with_height_errors(layout, e)
+            sol = row.solve(_compliance(resonator, tables, lay), float(study.resonator.row_pitch),
+                            per_resonator=False)
+            out.append(_make_trace(tables.freq, lay, sol, tables.pole.kr, lossy)[0])
+        return out
 
     def trace_detail(
         self, layout: Layout, freq: ArrayLike | None = None
