@@ -81,6 +81,8 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
 
     Returns the JSON payload. The same function backs the command line.
     """
+    from rich.markup import escape
+
     from optgrade.fullwave._solver import rods_of, verify
     from optgrade.plotting import fullwave as pf
     from optgrade.study import SITE_CAUTION
@@ -97,13 +99,19 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
                 layout, ver.frequency)
         except Exception as exc:  # the figure is still useful without it
             say(f"[yellow]note[/]: no 3-D lattice prediction ({type(exc).__name__}: {exc})")
+    judged = _verdict_of(study, layout, ver)
     payload = {
+        "verdict": judged.to_dict() if judged is not None else None,
         "study": study.meta.name,
         "n_resonators": int(layout.x.size),
         "length_m": float(layout.length),
         "model": "line (full-wave 2-D)",
         **ver.to_dict(),
     }
+    if judged is not None:
+        say(f"[bold]{escape(judged.line())}[/]")
+    else:
+        say("[bold red]NO VERDICT[/]: the full-wave run failed its own checks")
     is_site = getattr(study.meta, "scale", "bench") == "site"
     if is_site:
         payload["caution"] = SITE_CAUTION
@@ -163,6 +171,20 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     if ver.status != "ok":
         say(f"[bold red]FAILED[/]: {ver.reason}")
     return payload
+
+
+def _verdict_of(study: Study, layout: Layout, ver: Any) -> Any:
+    """The verdict line (optgrade/verdict.py) on the full-wave's own fractions, or None when
+    the run failed its self-checks (a failed run is not a result)."""
+    if ver.status != "ok" or ver.fractions is None:
+        return None
+    from types import SimpleNamespace
+
+    from optgrade.verdict import verdict
+
+    fw_trace = SimpleNamespace(frequency=ver.frequency, fractions=ver.fractions,
+                               propagation="full-wave 2-D")
+    return verdict(study, layout, fw_trace)
 
 
 def _say_channels(say: Any, ver: Any) -> None:

@@ -1004,7 +1004,8 @@ class ChannelSplit:
 
 
 def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
-                   layout_length: float, rod_x: np.ndarray | None = None) -> ChannelSplit:
+                   layout_length: float, rod_x: np.ndarray | None = None,
+                   rods: RodRow | None = None) -> ChannelSplit:
     """Split the outgoing power of ``run`` into the seven channels, normalised by ``ref``.
 
     See the module docstring for the definitions. ``layout_length`` (m) places the
@@ -1012,6 +1013,13 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     ``rod_x`` (m, the rods' positions) locates where the surface wave is stopped: the last rod
     whose base force spectrum is at least 10 % (in power) of the largest one; without it the
     drop of the surface motion below 10 % of the reference is used.
+
+    On a lossy substrate the scattered bulk waves lose power between the surface and the
+    receiver lines, which the box would book as absorbed; with ``rods`` given, the bulk
+    channels are then the radiation of the run's own rod base forces
+    (:func:`rod_force_radiation`: the power the row radiates into the ground, as the exact row
+    model reports it) and ``absorbed`` the remainder; the receiver-line figures stay in
+    ``raw`` under ``line_*`` keys as a diagnostic.
     """
     h = grid.h
     freq = run.freq
@@ -1075,14 +1083,22 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
         # surrogate's complex wavenumbers do); absorbed: all power lost inside the box, minus
         # what the source's own bulk waves lose there (reference loss minus the bare Rayleigh
         # loss), minus the bare Rayleigh loss over the two gaps between the lines and the row.
+        # Every fraction is of the power reaching the row's entry x = 0 (the exact row
+        # model's and the WKB march's convention), not of the power at the left line: the
+        # bare wave decays over the gaps between the lines and the row as well.
         box_len = (grid.i_right - grid.i_left) * h
-        frac = min(1.0, layout_length / box_len)
+        gap_l = grid.x_array - grid.i_left * h
+        gap_r = max(0.0, grid.i_right * h - grid.x_array - layout_length)
         decay = np.abs(ap_ref_r) ** 2 / np.abs(ap_ref_l) ** 2
-        transmitted = transmitted * decay**frac
-        l_box = 1.0 - decay
-        source_bulk_loss = -box_out(1) / p_inc - l_box
-        absorbed = (-box_out(0) / p_inc - source_bulk_loss
-                    - l_box * 0.5 * (1.0 - frac) * (1.0 + transmitted))
+        d_l, d_r = decay ** (gap_l / box_len), decay ** (gap_r / box_len)
+        transmitted = transmitted * decay ** (min(1.0, layout_length / box_len))
+        reflected = reflected / d_l**2
+        source_bulk_loss = -box_out(1) / p_inc - (1.0 - decay)
+        lost = (-box_out(0) / p_inc - source_bulk_loss - (1.0 - d_l)
+                - d_l * (reflected * (1.0 - d_l) + transmitted * (1.0 - d_r)))
+        absorbed = lost / d_l
+        p_inc = p_inc * d_l
+        side_back, side_fwd, bottom = side_back / d_l, side_fwd / d_l, bottom / d_l
         balance = np.full(freq.size, np.nan)
         ref_balance = np.full(freq.size, np.nan)
     else:
@@ -1099,6 +1115,13 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
         "absorbed": absorbed,
     }
     closure = np.sum([raw[c] for c in CHANNELS], axis=0)
+    if medium.loss_factor > 0 and rods is not None and rods.x.size:
+        rad = rod_force_radiation(run, rods, grid, medium) / p_inc[None, :]
+        for i, c in enumerate(BULK):
+            raw["line_" + c] = raw[c]
+            raw[c] = rad[i]
+        raw["line_absorbed"] = raw["absorbed"]
+        raw["absorbed"] = 1.0 - transmitted - reflected - rad.sum(axis=0)
     # Bulk total from the power balance (exact when the box balance holds): the direct flux of
     # the scattered bulk field also contains its interference with the source's own bulk
     # radiation, which the reference run cannot remove; it only sets the split.
@@ -1336,7 +1359,7 @@ def run_pair(medium: Medium, rods: RodRow, band: tuple[float, float], freq: np.n
     run = simulate(medium, grid, band, freq, rods, n_snapshots=n_snapshots,
                    progress=cb("with resonators"))
     ref = simulate(medium, grid, band, freq, None, progress=cb("reference (bare)"))
-    split = split_channels(run, ref, medium, grid, length, rods.x)
+    split = split_channels(run, ref, medium, grid, length, rods.x, rods)
     return grid, run, ref, split
 
 
