@@ -474,6 +474,106 @@ def _rod_arrays(rods: RodRow, grid: Grid, medium: Medium, band: tuple[float, flo
     }
 
 
+def _pml_profiles(grid: Grid, medium: Medium, band: tuple[float, float]) -> tuple:
+    """C-PML coefficients (a, b) on the integer and half grid points along x and z:
+    (ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h), the order of the kernel's arguments."""
+    h, dt = grid.h, grid.dt
+    f_c = 0.5 * (band[0] + band[1])
+    thick = grid.n_pml * h
+    xi = np.arange(grid.nx) * h
+    xh = xi + 0.5 * h
+    zi = np.arange(grid.nz) * h
+    zh = zi + 0.5 * h
+    x_max = (grid.nx - 1) * h
+    z_max = (grid.nz - 1) * h
+
+    def dist_x(x: np.ndarray) -> np.ndarray:
+        return np.maximum(thick - x, x - (x_max - thick))
+
+    ax_i, bx_i = cpml_profile(dist_x(xi), thick, medium.cl, dt, f_c)
+    ax_h, bx_h = cpml_profile(dist_x(xh), thick, medium.cl, dt, f_c)
+    az_i, bz_i = cpml_profile(zi - (z_max - thick), thick, medium.cl, dt, f_c)
+    az_h, bz_h = cpml_profile(zh - (z_max - thick), thick, medium.cl, dt, f_c)
+    return ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h
+
+
+class _Recorder:
+    """Running Fourier transform of the receiver strips and the rods' base force and velocity.
+
+    One buffer row per sample: vx, vz, sxx, szz, sxz on the strips, then rod force and base
+    velocity; one real matrix product per chunk of samples gives the DFT's real and imaginary
+    parts (exp(+i w t): phasors in the exp(-i w t) convention).
+    """
+
+    CHUNK = 128
+
+    def __init__(self, blocks: dict[str, tuple[int, int, int, int]], nz: int, n_rods: int,
+                 freq: np.ndarray, sample_dt: float) -> None:
+        flat = []
+        self.shapes = {}
+        for name, (b_i0, b_i1, b_j0, b_j1) in blocks.items():
+            ii, jj = np.meshgrid(np.arange(b_i0, b_i1), np.arange(b_j0, b_j1), indexing="ij")
+            flat.append((ii * nz + jj).ravel())
+            self.shapes[name] = (b_i1 - b_i0, b_j1 - b_j0)
+        self.idx = np.concatenate(flat)
+        self.n_val = self.idx.size
+        self.n_rods = n_rods
+        self.n_r = max(n_rods, 1)
+        self.freq = freq
+        self.omega = 2 * math.pi * freq
+        self.sample_dt = sample_dt
+        n_all = 5 * self.n_val + 2 * self.n_r
+        self.acc = np.zeros((2 * freq.size, n_all))
+        self.buf = np.zeros((self.CHUNK, n_all))
+        self.buf_t = np.zeros(self.CHUNK)
+        self.n_buf = 0
+
+    def record(self, fields: tuple, ra: dict | None, t: float) -> bool:
+        """Store one sample; False when it holds a non-finite value."""
+        n_val, n_rods, n_r = self.n_val, self.n_rods, self.n_r
+        row = self.buf[self.n_buf]
+        for q, fld in enumerate(fields):
+            np.take(fld, self.idx, out=row[q * n_val:(q + 1) * n_val])
+        if ra is not None:
+            row[5 * n_val:5 * n_val + n_rods] = ra["rod_c"][:, 0]
+            row[5 * n_val + n_r:5 * n_val + n_r + n_rods] = ra["rod_v"][:, 0]
+        self.buf_t[self.n_buf] = t
+        self.n_buf += 1
+        finite = bool(np.isfinite(row).all())
+        if finite and self.n_buf == self.CHUNK:
+            self.flush()
+        return finite
+
+    def flush(self) -> None:
+        if self.n_buf == 0:
+            return
+        phase = self.omega[:, None] * self.buf_t[None, :self.n_buf]
+        e = np.concatenate([np.cos(phase), np.sin(phase)]) * self.sample_dt
+        self.acc[:] += e @ self.buf[:self.n_buf]
+        self.n_buf = 0
+
+    def spectra(self, dt: float) -> tuple[dict, np.ndarray, np.ndarray]:
+        """Per strip the phasor blocks (n_f, nxb, nzb) of each field, and the rods' base force
+        and velocity phasors (n_f, n_rods)."""
+        n_val, n_rods, n_r, nf = self.n_val, self.n_rods, self.n_r, self.freq.size
+        spec = self.acc[:nf] + 1j * self.acc[nf:]
+        # velocities (and the rod base velocity) live half a step before the sample time
+        shift = np.exp(-0.5j * self.omega * dt)[:, None]
+        parts = {"vx": spec[:, :n_val] * shift, "vz": spec[:, n_val:2 * n_val] * shift,
+                 "sxx": spec[:, 2 * n_val:3 * n_val], "szz": spec[:, 3 * n_val:4 * n_val],
+                 "sxz": spec[:, 4 * n_val:5 * n_val]}
+        rod_c = spec[:, 5 * n_val:5 * n_val + n_rods]
+        rod_v = spec[:, 5 * n_val + n_r:5 * n_val + n_r + n_rods] * shift
+        out_blocks: dict[str, dict[str, np.ndarray]] = {}
+        start = 0
+        for name, (nxb, nzb) in self.shapes.items():
+            stop = start + nxb * nzb
+            out_blocks[name] = {k: v[:, start:stop].reshape(-1, nxb, nzb)
+                                for k, v in parts.items()}
+            start = stop
+        return out_blocks, rod_c, rod_v
+
+
 def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.ndarray,
              rods: RodRow | None = None, *, n_snapshots: int = 0,
              blocks: dict[str, tuple[int, int, int, int]] | None = None, energy_tol: float = 1e-6,
@@ -502,22 +602,7 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     h, dt = grid.h, grid.dt
     nx, nz = grid.nx, grid.nz
     lam, mu, rho = medium.lam, medium.mu, medium.rho
-    f_c = 0.5 * (band[0] + band[1])
-    thick = grid.n_pml * h
-    xi = np.arange(nx) * h
-    xh = xi + 0.5 * h
-    zi = np.arange(nz) * h
-    zh = zi + 0.5 * h
-    x_max = (nx - 1) * h
-    z_max = (nz - 1) * h
-
-    def dist_x(x: np.ndarray) -> np.ndarray:
-        return np.maximum(thick - x, x - (x_max - thick))
-
-    ax_i, bx_i = cpml_profile(dist_x(xi), thick, medium.cl, dt, f_c)
-    ax_h, bx_h = cpml_profile(dist_x(xh), thick, medium.cl, dt, f_c)
-    az_i, bz_i = cpml_profile(zi - (z_max - thick), thick, medium.cl, dt, f_c)
-    az_h, bz_h = cpml_profile(zh - (z_max - thick), thick, medium.cl, dt, f_c)
+    ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h = _pml_profiles(grid, medium, band)
 
     vx, vz, sxx, szz, sxz = (np.zeros((nx, nz)) for _ in range(5))
     uz = np.zeros((nx, nz))
@@ -532,35 +617,8 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
 
     if blocks is None:
         blocks = receiver_blocks(grid)
-    flat = []
-    shapes = {}
-    for name, (b_i0, b_i1, b_j0, b_j1) in blocks.items():
-        ii, jj = np.meshgrid(np.arange(b_i0, b_i1), np.arange(b_j0, b_j1), indexing="ij")
-        flat.append((ii * nz + jj).ravel())
-        shapes[name] = (b_i1 - b_i0, b_j1 - b_j0)
-    idx = np.concatenate(flat)
-    n_val = idx.size
     freq = np.asarray(freq, float)
-    omega = 2 * math.pi * freq
-    # one buffer row per sample: vx, vz, sxx, szz, sxz on the strips, then rod force and
-    # base velocity; one real matrix product per chunk gives the DFT's real and imaginary parts
-    n_r = max(n_rods, 1)
-    n_all = 5 * n_val + 2 * n_r
-    acc = np.zeros((2 * freq.size, n_all))
-    chunk = 128
-    buf = np.zeros((chunk, n_all))
-    buf_t = np.zeros(chunk)
-    n_buf = 0
-
-    def flush() -> None:
-        nonlocal n_buf
-        if n_buf == 0:
-            return
-        # DFT with exp(+i w t): phasors in the exp(-i w t) convention
-        phase = omega[:, None] * buf_t[None, :n_buf]
-        e = np.concatenate([np.cos(phase), np.sin(phase)]) * (grid.sample_every * dt)
-        acc[:] += e @ buf[:n_buf]
-        n_buf = 0
+    rec = _Recorder(blocks, nz, n_rods, freq, grid.sample_every * dt)
 
     snap_every = max(1, int(1.3 * grid.min_steps) // n_snapshots) if n_snapshots else 0
     snaps = []
@@ -596,19 +654,9 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
         if snap_every and n1 % snap_every == 0 and len(snaps) < n_snapshots:
             snaps.append(uz.astype(np.float32))
             snap_t.append(t_new)
-        row = buf[n_buf]
-        for q, fld in enumerate((vx, vz, sxx, szz, sxz)):
-            np.take(fld, idx, out=row[q * n_val:(q + 1) * n_val])
-        if ra is not None:
-            row[5 * n_val:5 * n_val + n_rods] = ra["rod_c"][:, 0]
-            row[5 * n_val + n_r:5 * n_val + n_r + n_rods] = ra["rod_v"][:, 0]
-        buf_t[n_buf] = t_new
-        n_buf += 1
-        if not np.isfinite(row).all():
+        if not rec.record((vx, vz, sxx, szz, sxz), ra, t_new):
             raise UnstableRun("non-finite field values (the time stepping is unstable)",
                               n1, t_new)
-        if n_buf == chunk:
-            flush()
         if n1 % energy_every == 0 or n1 == n_total:
             e_now = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
             e_peak = max(e_peak, e_now)
@@ -620,23 +668,10 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
                 if progress is not None:
                     progress(n_total, n_total)
                 break
-    flush()
+    rec.flush()
     seconds = time.perf_counter() - t_start
     e_end = _grid_energy(vx, vz, sxx, szz, sxz, medium, grid) + _rod_energy(ra)
-    spec = acc[:freq.size] + 1j * acc[freq.size:]
-    # velocities (and the rod base velocity) live half a step before the sample time
-    shift = np.exp(-0.5j * omega * dt)[:, None]
-    parts = {"vx": spec[:, :n_val] * shift, "vz": spec[:, n_val:2 * n_val] * shift,
-             "sxx": spec[:, 2 * n_val:3 * n_val], "szz": spec[:, 3 * n_val:4 * n_val],
-             "sxz": spec[:, 4 * n_val:5 * n_val]}
-    rod_c = spec[:, 5 * n_val:5 * n_val + n_rods]
-    rod_v = spec[:, 5 * n_val + n_r:5 * n_val + n_r + n_rods] * shift
-    out_blocks: dict[str, dict[str, np.ndarray]] = {}
-    start = 0
-    for name, (nxb, nzb) in shapes.items():
-        stop = start + nxb * nzb
-        out_blocks[name] = {k: v[:, start:stop].reshape(-1, nxb, nzb) for k, v in parts.items()}
-        start = stop
+    out_blocks, rod_c, rod_v = rec.spectra(dt)
     return RunRecord(
         freq=freq, offsets={k: (v[0], v[2]) for k, v in blocks.items()}, blocks=out_blocks,
         rod_c=rod_c, rod_v=rod_v,
@@ -1023,39 +1058,109 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     """
     h = grid.h
     freq = run.freq
-    cr = rayleigh_speed(medium.cl, medium.ct)
+    fields = _receiver_fields(run, ref, medium, h)
+    sw = _surface_waves(fields, medium, grid, freq)
+    bottom, shares, angles, x_origin = _bottom_line(fields, medium, grid, freq, sw["p_inc"])
+    if run.rod_c.shape[1]:
+        absorbed = np.sum(np.real(-run.rod_c * np.conj(run.rod_v)), axis=1) / sw["p_inc"]
+    else:
+        absorbed = np.zeros_like(sw["transmitted"])
+    box_out = (_box_out(fields, 0, grid), _box_out(fields, 1, grid))
+    if medium.loss_factor > 0:
+        sw, bottom, absorbed = _lossy_ground(sw, bottom, box_out, grid, layout_length)
+        balance = np.full(freq.size, np.nan)
+        ref_balance = np.full(freq.size, np.nan)
+    else:
+        balance = (box_out[0] + absorbed * sw["p_inc"]) / sw["p_inc"]
+        ref_balance = box_out[1] / sw["p_inc"]
+    raw = {
+        "transmitted_surface": sw["transmitted"],
+        "reflected_surface": sw["reflected"],
+        "forward_shear": shares[0] * bottom + sw["s_r"] * sw["side_fwd"],
+        "forward_compressional": shares[1] * bottom + sw["p_r"] * sw["side_fwd"],
+        "backward_shear": shares[2] * bottom + sw["s_l"] * sw["side_back"],
+        "backward_compressional": shares[3] * bottom + sw["p_l"] * sw["side_back"],
+        "absorbed": absorbed,
+    }
+    closure = np.sum([raw[c] for c in CHANNELS], axis=0)
+    if medium.loss_factor > 0 and rods is not None and rods.x.size:
+        rad = rod_force_radiation(run, rods, grid, medium) / sw["p_inc"][None, :]
+        for i, c in enumerate(BULK):
+            raw["line_" + c] = raw[c]
+            raw[c] = rad[i]
+        raw["line_absorbed"] = raw["absorbed"]
+        raw["absorbed"] = 1.0 - sw["transmitted"] - sw["reflected"] - rad.sum(axis=0)
+    fractions = _balanced_fractions(raw)
+    position, angle, extra = _positions(run, fields, grid, medium, fractions, x_origin, angles,
+                                        layout_length, rod_x)
+    return ChannelSplit(
+        frequency=freq, fractions=fractions, raw=raw, position=position, angle=angle,
+        closure=closure, balance_error=balance, reference_balance_error=ref_balance,
+        incident_power=sw["p_inc"], **extra,
+    )
+
+
+def _receiver_fields(run: RunRecord, ref: RunRecord, medium: Medium, h: float) -> dict:
+    """Per receiver strip: (with rods, bare reference, scattered = difference) node fields."""
     fields = {}
     for part in ("left", "right", "top", "bottom"):
         t_ = node_fields(run, part, medium, h)
         r_ = node_fields(ref, part, medium, h)
         fields[part] = (t_, r_, _diff(t_, r_))
-    jb = grid.j_bottom
-    z = np.arange(jb + 1) * h
+    return fields
+
+
+def _vline(fields: dict, part: str, which: int, grid: Grid) -> dict:
+    return _line(fields[part][which], 0, grid.j_bottom)
+
+
+def _box_out(fields: dict, which: int, grid: Grid) -> np.ndarray:
+    """Power leaving the closed receiver box (total field; 0 with rods, 1 bare reference)."""
+    h = grid.h
+    right = _flux_x(_vline(fields, "right", which, grid), h)
+    left = -_flux_x(_vline(fields, "left", which, grid), h)
+    b_ = {k: v[:, :, 0] for k, v in fields["bottom"][which].items()}
+    pzz = -np.real(b_["sxz"] * np.conj(b_["vx"]) + b_["szz"] * np.conj(b_["vz"]))
+    return right + left + np.sum(pzz * _trap(pzz.shape[-1]), -1) * h
+
+
+def _surface_waves(fields: dict, medium: Medium, grid: Grid, freq: np.ndarray) -> dict:
+    """Rayleigh-mode amplitudes on the side lines: incident power, transmitted and reflected
+    fractions, and the bulk flux left on each side line after the modes are taken out (its
+    shear / compressional shares)."""
+    h = grid.h
+    cr = rayleigh_speed(medium.cl, medium.ct)
+    z = np.arange(grid.j_bottom + 1) * h
     plus = _mode_line(medium, freq, z, cr, +1)
     minus = _mode_line(medium, freq, z, cr, -1)
-
-    def vline(part: str, which: int) -> dict:
-        return _line(fields[part][which], 0, jb)
-
-    ap_ref_l, _ = mode_amplitudes(vline("left", 1), plus, minus, freq, h)
-    ap_ref_r, _ = mode_amplitudes(vline("right", 1), plus, minus, freq, h)
-    ap_tot_r, _ = mode_amplitudes(vline("right", 0), plus, minus, freq, h)
-    sl_l = vline("left", 2)
-    sl_r = vline("right", 2)
+    ap_ref_l, _ = mode_amplitudes(_vline(fields, "left", 1, grid), plus, minus, freq, h)
+    ap_ref_r, _ = mode_amplitudes(_vline(fields, "right", 1, grid), plus, minus, freq, h)
+    ap_tot_r, _ = mode_amplitudes(_vline(fields, "right", 0, grid), plus, minus, freq, h)
+    sl_l = _vline(fields, "left", 2, grid)
+    sl_r = _vline(fields, "right", 2, grid)
     ap_sl, am_sl = mode_amplitudes(sl_l, plus, minus, freq, h)
     ap_sr, am_sr = mode_amplitudes(sl_r, plus, minus, freq, h)
-    p_mode = _flux_x(plus, h)
-    p_inc = np.abs(ap_ref_l) ** 2 * p_mode
-
-    transmitted = np.abs(ap_tot_r) ** 2 / np.abs(ap_ref_r) ** 2
-    reflected = np.abs(am_sl) ** 2 / np.abs(ap_ref_l) ** 2
+    p_inc = np.abs(ap_ref_l) ** 2 * _flux_x(plus, h)
     bulk_l = _sub_modes(sl_l, plus, minus, ap_sl, am_sl)
     bulk_r = _sub_modes(sl_r, plus, minus, ap_sr, am_sr)
-    side_back = -_flux_x(bulk_l, h) / p_inc
-    side_fwd = _flux_x(bulk_r, h) / p_inc
     s_l, p_l = _ps_side(bulk_l, medium)
     s_r, p_r = _ps_side(bulk_r, medium)
+    return {
+        "p_inc": p_inc,
+        "decay": np.abs(ap_ref_r) ** 2 / np.abs(ap_ref_l) ** 2,
+        "transmitted": np.abs(ap_tot_r) ** 2 / np.abs(ap_ref_r) ** 2,
+        "reflected": np.abs(am_sl) ** 2 / np.abs(ap_ref_l) ** 2,
+        "side_back": -_flux_x(bulk_l, h) / p_inc, "side_fwd": _flux_x(bulk_r, h) / p_inc,
+        "s_l": s_l, "p_l": p_l, "s_r": s_r, "p_r": p_r,
+    }
 
+
+def _bottom_line(fields: dict, medium: Medium, grid: Grid, freq: np.ndarray,
+                 p_inc: np.ndarray) -> tuple:
+    """Scattered flux through the bottom line over the incident power, its four-way split
+    (:func:`_fk_split`), the channels' mean angles and where their mean rays left the surface
+    (m along the row)."""
+    h = grid.h
     bot = {k: v[:, :, 0] for k, v in fields["bottom"][2].items()}
     pz = -np.real(bot["sxz"] * np.conj(bot["vx"]) + bot["szz"] * np.conj(bot["vz"]))
     bottom = np.sum(pz * _trap(pz.shape[-1]), -1) * h / p_inc
@@ -1063,68 +1168,44 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     # back along each channel's mean ray to the surface: where the row sent it
     depth = grid.j_bottom * h
     x_origin = (grid.i_left * h - grid.x_array) + x_cross - depth * np.tan(np.radians(angles))
+    return bottom, shares, angles, x_origin
 
-    if run.rod_c.shape[1]:
-        absorbed = np.sum(np.real(-run.rod_c * np.conj(run.rod_v)), axis=1) / p_inc
-    else:
-        absorbed = np.zeros_like(transmitted)
 
-    # energy balance of the closed box (total field), with and without the rods
-    def box_out(which: int) -> np.ndarray:
-        right = _flux_x(vline("right", which), h)
-        left = -_flux_x(vline("left", which), h)
-        b_ = {k: v[:, :, 0] for k, v in fields["bottom"][which].items()}
-        pzz = -np.real(b_["sxz"] * np.conj(b_["vx"]) + b_["szz"] * np.conj(b_["vz"]))
-        return right + left + np.sum(pzz * _trap(pzz.shape[-1]), -1) * h
+def _lossy_ground(sw: dict, bottom: np.ndarray, box_out: tuple, grid: Grid,
+                  layout_length: float) -> tuple[dict, np.ndarray, np.ndarray]:
+    """Lossy substrate: the box balance measures the absorption instead of checking it.
 
-    if medium.loss_factor > 0:
-        # Lossy substrate: the box balance measures the absorption instead of checking it.
-        # Transmitted: include the bare-substrate decay over the row's length (as the
-        # surrogate's complex wavenumbers do); absorbed: all power lost inside the box, minus
-        # what the source's own bulk waves lose there (reference loss minus the bare Rayleigh
-        # loss), minus the bare Rayleigh loss over the two gaps between the lines and the row.
-        # Every fraction is of the power reaching the row's entry x = 0 (the exact row
-        # model's and the WKB march's convention), not of the power at the left line: the
-        # bare wave decays over the gaps between the lines and the row as well.
-        box_len = (grid.i_right - grid.i_left) * h
-        gap_l = grid.x_array - grid.i_left * h
-        gap_r = max(0.0, grid.i_right * h - grid.x_array - layout_length)
-        decay = np.abs(ap_ref_r) ** 2 / np.abs(ap_ref_l) ** 2
-        d_l, d_r = decay ** (gap_l / box_len), decay ** (gap_r / box_len)
-        transmitted = transmitted * decay ** (min(1.0, layout_length / box_len))
-        reflected = reflected / d_l**2
-        source_bulk_loss = -box_out(1) / p_inc - (1.0 - decay)
-        lost = (-box_out(0) / p_inc - source_bulk_loss - (1.0 - d_l)
-                - d_l * (reflected * (1.0 - d_l) + transmitted * (1.0 - d_r)))
-        absorbed = lost / d_l
-        p_inc = p_inc * d_l
-        side_back, side_fwd, bottom = side_back / d_l, side_fwd / d_l, bottom / d_l
-        balance = np.full(freq.size, np.nan)
-        ref_balance = np.full(freq.size, np.nan)
-    else:
-        balance = (box_out(0) + absorbed * p_inc) / p_inc
-        ref_balance = box_out(1) / p_inc
+    Every fraction is of the power reaching the row's entry x = 0 (the exact row model's and
+    the WKB march's convention), not of the power at the left line: the bare wave decays over
+    the gaps between the lines and the row as well. Transmitted includes the bare decay over
+    the row's length; absorbed is all power lost inside the box, minus what the source's own
+    bulk waves lose there (reference loss minus the bare Rayleigh loss) and minus the bare
+    Rayleigh loss of the incident, reflected and transmitted waves over the gaps.
+    """
+    h = grid.h
+    p_inc, decay = sw["p_inc"], sw["decay"]
+    box_len = (grid.i_right - grid.i_left) * h
+    gap_l = grid.x_array - grid.i_left * h
+    gap_r = max(0.0, grid.i_right * h - grid.x_array - layout_length)
+    d_l, d_r = decay ** (gap_l / box_len), decay ** (gap_r / box_len)
+    out = dict(sw)
+    out["transmitted"] = sw["transmitted"] * decay ** (min(1.0, layout_length / box_len))
+    out["reflected"] = sw["reflected"] / d_l**2
+    source_bulk_loss = -box_out[1] / p_inc - (1.0 - decay)
+    lost = (-box_out[0] / p_inc - source_bulk_loss - (1.0 - d_l)
+            - d_l * (out["reflected"] * (1.0 - d_l) + out["transmitted"] * (1.0 - d_r)))
+    out["p_inc"] = p_inc * d_l
+    out["side_back"], out["side_fwd"] = sw["side_back"] / d_l, sw["side_fwd"] / d_l
+    return out, bottom / d_l, lost / d_l
 
-    raw = {
-        "transmitted_surface": transmitted,
-        "reflected_surface": reflected,
-        "forward_shear": shares[0] * bottom + s_r * side_fwd,
-        "forward_compressional": shares[1] * bottom + p_r * side_fwd,
-        "backward_shear": shares[2] * bottom + s_l * side_back,
-        "backward_compressional": shares[3] * bottom + p_l * side_back,
-        "absorbed": absorbed,
-    }
-    closure = np.sum([raw[c] for c in CHANNELS], axis=0)
-    if medium.loss_factor > 0 and rods is not None and rods.x.size:
-        rad = rod_force_radiation(run, rods, grid, medium) / p_inc[None, :]
-        for i, c in enumerate(BULK):
-            raw["line_" + c] = raw[c]
-            raw[c] = rad[i]
-        raw["line_absorbed"] = raw["absorbed"]
-        raw["absorbed"] = 1.0 - transmitted - reflected - rad.sum(axis=0)
-    # Bulk total from the power balance (exact when the box balance holds): the direct flux of
-    # the scattered bulk field also contains its interference with the source's own bulk
-    # radiation, which the reference run cannot remove; it only sets the split.
+
+def _balanced_fractions(raw: dict) -> dict:
+    """The seven fractions from the raw figures, summing to 1.
+
+    Bulk total from the power balance (exact when the box balance holds): the direct flux of
+    the scattered bulk field also contains its interference with the source's own bulk
+    radiation, which the reference run cannot remove; it only sets the split.
+    """
     fractions = {c: np.clip(raw[c], 0.0, None) for c in ("transmitted_surface",
                                                          "reflected_surface", "absorbed")}
     surface = fractions["transmitted_surface"] + fractions["reflected_surface"]
@@ -1138,8 +1219,17 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     s = np.sum([fractions[c] for c in CHANNELS], axis=0)
     for c in CHANNELS:
         fractions[c] = fractions[c] / s
+    return fractions
 
 
+def _positions(run: RunRecord, fields: dict, grid: Grid, medium: Medium, fractions: dict,
+               x_origin: np.ndarray, angles: np.ndarray, layout_length: float,
+               rod_x: np.ndarray | None) -> tuple[dict, dict, dict]:
+    """Positions (m along the row) and angles (deg) per channel, and the surface diagnostics
+    (``surface_ratio``, ``surface_x``, ``downward_flux``) of :class:`ChannelSplit`."""
+    h = grid.h
+    freq = run.freq
+    cr = rayleigh_speed(medium.cl, medium.ct)
     # positions along the row (m from the first resonator)
     tot, ref_f, _ = fields["top"]
     x_nodes = (run.offsets["top"][0] + 1 + np.arange(tot["vz"].shape[1])) * h - grid.x_array
@@ -1172,11 +1262,8 @@ def split_channels(run: RunRecord, ref: RunRecord, medium: Medium, grid: Grid,
     angle["transmitted_surface"] = np.where(fractions["transmitted_surface"] > 0.01, 90.0,
                                             np.nan)
     angle["reflected_surface"] = np.where(fractions["reflected_surface"] > 0.01, -90.0, np.nan)
-    return ChannelSplit(
-        frequency=freq, fractions=fractions, raw=raw, position=position, angle=angle,
-        closure=closure, balance_error=balance, reference_balance_error=ref_balance,
-        incident_power=p_inc, surface_ratio=ratio, surface_x=x_nodes, downward_flux=down,
-    )
+    extra = {"surface_ratio": ratio, "surface_x": x_nodes, "downward_flux": down}
+    return position, angle, extra
 
 
 def _stop_position(ratio: np.ndarray, x: np.ndarray, in_row: np.ndarray, lam: np.ndarray,
