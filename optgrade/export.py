@@ -194,7 +194,9 @@ def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
     _plot_search.plot_plan(ax[1], layout.x, layout.diameter, study.resonator.row_pitch,
                            scale=1.0 / scale, unit=unit)
     _plot_trace.plot_channel_map(ax[2], trace, layout)
-    _plot_trace.plot_fractions(ax[3], trace, goal_channel=study.goal.channel)
+    _plot_trace.plot_fractions(ax[3], trace, goal_channel=study.goal.channel,
+                               required=(float(study.goal.required_fraction)
+                                         if study.goal.channel in trace.fractions else None))
     if history is not None and len(history[0]):
         _plot_search.plot_history(ax[4], history[0], history[1], chosen=trial_number)
     else:

@@ -287,13 +287,16 @@ def run(args: argparse.Namespace) -> int:
             progress=progress,
         )
     n_leaky = sum(int(np.sum(b.is_leaky & np.isfinite(b.k))) for b in bands.branches)
-    gaps = ", ".join(f"{lo:.4g}-{hi:.4g} Hz" for lo, hi in bands.gaps) or "none"
+    from optgrade.units import format_eng
+
+    gaps = ", ".join(f"{format_eng(lo, 'Hz')} - {format_eng(hi, 'Hz')}"
+                     for lo, hi in bands.gaps) or "none"
     console.print(
         f"wrote {Path(args.out) / 'bands.json'}, bands.csv"
         + ("" if args.no_figure else ", bands.png")
     )
     console.print(
-        f"rod resonance(s): {', '.join(f'{f:.4g} Hz' for f in bands.resonances[:2])}; "
+        f"rod resonance(s): {', '.join(format_eng(f, 'Hz') for f in bands.resonances[:2])}; "
         f"gaps: {gaps}; leaky points: {n_leaky}"
     )
     for w in bands.warnings:

@@ -210,7 +210,8 @@ def _write_figures(study: Study, layout: Layout, out: Path, freq: np.ndarray, mo
 
     fig, ax = plt.subplots(figsize=(9, 4.5), layout="constrained")
     pt.plot_fractions(ax, tr, goal_channel=goal if goal in tr.fractions else None,
-                      compare=wkb)
+                      compare=wkb, required=(float(study.goal.required_fraction)
+                                             if goal in tr.fractions else None))
     save_figure(fig, out / "fractions.png")
     plt.close(fig)
 

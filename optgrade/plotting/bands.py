@@ -39,11 +39,10 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
     ax, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [2.2, 1]})
     sc = draw_band_diagram(ax, bands)
     if sc is not None:
-        cax = ax.inset_axes([0.955, 0.08, 0.018, 0.4])
-        cb = fig.colorbar(sc, cax=cax)
-        cax.yaxis.set_ticks_position("left")
-        cax.yaxis.set_label_position("left")
-        cb.set_label("log10(K''/K')")
+        # at the right of both panels, not over the data
+        cb = fig.colorbar(sc, ax=[ax, ax2], location="right", fraction=0.03, pad=0.01,
+                          shrink=0.6)
+        cb.set_label("leaky: log10(K''/K')")
     draw_attenuation(ax2, bands)
     ax2.set_yticklabels([])
     ax2.set_ylabel("")
@@ -53,10 +52,12 @@ def plot_bands(bands: Bands, path: str | os.PathLike, title: str | None = None) 
 
 def _default_title(bands: Bands) -> str:
     cell = bands.cell
+    from optgrade.units import format_eng as e
+
     head = f", head mass {cell.head_mass:.4g} kg" if cell.head_mass else ""
     return (
-        f"{bands.model} model: rod L = {cell.height:.4g} m, d = {cell.rod.diameter:.4g} m{head}, "
-        f"spacing a = {cell.spacing:.4g} m, row pitch b = {cell.row_pitch:.4g} m"
+        f"{bands.model} model: rod L = {e(cell.height, 'm')}, d = {e(cell.rod.diameter, 'm')}"
+        f"{head}, spacing a = {e(cell.spacing, 'm')}, row pitch b = {e(cell.row_pitch, 'm')}"
     )
 
 

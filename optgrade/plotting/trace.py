@@ -17,7 +17,9 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+import matplotlib
 import numpy as np
+from matplotlib import patheffects
 from matplotlib.axes import Axes
 from matplotlib.colors import ListedColormap
 from matplotlib.patches import Patch, Rectangle
@@ -160,9 +162,12 @@ def plot_local_dispersion(
     rad_a = np.abs(k_show.imag) * rad_share * layout.spacing[:, None]
     is_leaky = np.isfinite(rad_a) & (rad_a > 1e-3)
     if is_leaky.any() and (~is_leaky).any():
+        # outline plus a sparse hatch: the colours underneath stay readable
         xs = np.concatenate(([edges_x[0]], layout.cell_centre / s, [edges_x[-1]]))
         grid = np.concatenate((is_leaky[:1], is_leaky, is_leaky[-1:])).T.astype(float)
-        ax.contourf(xs, f, grid, levels=[0.5, 1.5], colors="none", hatches=["...."])
+        with matplotlib.rc_context({"hatch.color": "#ffffff", "hatch.linewidth": 0.6}):
+            ax.contourf(xs, f, grid, levels=[0.5, 1.5], colors="none", hatches=["/"])
+        ax.contour(xs, f, grid, levels=[0.5], colors="#ffffff", linewidths=1.0)
     is_gap = ~np.isfinite(k[0]) & ~np.isfinite(k[1])
     ax.pcolormesh(edges_x, edges_f, np.ma.masked_where(~is_gap.T, np.ones(is_gap.T.shape)),
                   cmap=ListedColormap(["#c8c8c8"]), shading="flat", rasterized=True)
@@ -170,8 +175,8 @@ def plot_local_dispersion(
     cb.set_label("local slowness K'/kR (1 = Rayleigh speed)")
     xc = layout.cell_centre / s
     handles = [Patch(color="#c8c8c8", label="local gap (no root)"),
-               Patch(facecolor="none", edgecolor="k", hatch="....",
-                     label="radiating: K'' a > 1e-3 per cell into bulk waves")]
+               Patch(facecolor="#5a7d9a", edgecolor="#ffffff", hatch="/",
+                     label="radiating: K'' a > 1e-3 per cell into bulk waves (outlined)")]
     if rod_resonance is not None:
         (line,) = ax.plot(xc, np.asarray(rod_resonance) / fs, color="#d62828", ls="--",
                           lw=1.6, label="rod resonance")
@@ -197,7 +202,9 @@ def plot_local_dispersion(
     ax.set_xlabel(f"position along the row x ({unit})")
     ax.set_ylabel(f"frequency ({funit})")
     ax.set_title("local dispersion along the row")
-    ax.legend(handles=handles, loc="upper right", fontsize=8, framealpha=0.85)
+    # below the axes: a legend inside would hide the data it explains
+    ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=3,
+              fontsize=8, frameon=False)
     return ax
 
 
@@ -277,22 +284,29 @@ def _model_label(name: str) -> str:
 
 
 def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
-                   compare: Trace | None = None) -> Axes:
+                   compare: Trace | None = None, required: float | None = None) -> Axes:
     """Stacked channel fractions against frequency.
 
     Frequencies where the WKB march is outside its validity (eps > 0.1) are hatched when the
     trace is the march's own. ``compare`` (another model's trace of the same layout, e.g. the
     WKB march beside the exact model) is overlaid as dashed lines at its stack boundaries, so
     each band between two dashed lines is that model's share of the same channel.
+    ``required`` (the goal's required fraction) is drawn as a horizontal line. Above the stack,
+    two strips mark the frequencies where the WKB picture is outside its validity (eps > 0.1)
+    and, with ``compare``, where the two models differ by more than 0.1 on some channel.
     """
     fs, funit = frequency_unit(float(np.max(trace.frequency)))
     f = trace.frequency / fs
     ys = [trace.fractions[c] for c in CHANNELS]
     ax.stackplot(f, ys, colors=[CHANNEL_COLOURS[c] for c in CHANNELS],
                  labels=[CHANNEL_LABELS[c] for c in CHANNELS], alpha=0.9, lw=0)
+    halo = [patheffects.withStroke(linewidth=3.2, foreground="#ffffff")]
     if goal_channel in trace.fractions:
-        ax.plot(f, trace.fractions[goal_channel], color="k", lw=1.2,
+        ax.plot(f, trace.fractions[goal_channel], color="k", lw=1.4, path_effects=halo,
                 label=f"goal: {CHANNEL_LABELS[goal_channel]}")
+    if required is not None:
+        ax.axhline(required, color="#c1121f", lw=1.3, ls=(0, (6, 3)), path_effects=halo,
+                   label=f"required fraction {required:.0%}")
     if compare is not None:
         edges = np.cumsum([compare.fractions[c] for c in CHANNELS], axis=0)[:-1]
         for i, edge in enumerate(edges):
@@ -300,12 +314,21 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
                     label=f"{_model_label(compare.propagation)}: same stack" if i == 0
                     else None)
     validity = trace if compare is None else compare
-    bad = ~np.asarray(validity.is_adiabatic)
+    bad = ~np.asarray(validity.is_adiabatic, bool)
+    # one bar per flagged frequency (a fill with where= drops isolated points)
+    width = float(np.median(np.diff(f))) if f.size > 1 else 0.01 * float(f[0])
     if bad.any():
-        ax.fill_between(f, 1.0, 1.06, where=bad, step="mid", facecolor="none", hatch="////",
-                        edgecolor="#444444", lw=0, label="eps > 0.1 (outside WKB validity)")
+        ax.bar(f[bad], 0.03, bottom=1.012, width=width, color="#7b2cbf", lw=0,
+               label="eps > 0.1 (outside WKB validity)")
+    if compare is not None:
+        off = np.max([np.abs(np.asarray(trace.fractions[c]) - np.asarray(compare.fractions[c]))
+                      for c in CHANNELS], axis=0) > 0.1
+        if off.any():
+            ax.bar(f[off], 0.03, bottom=1.05, width=width, color="#e85d04", lw=0,
+                   label=f"{_model_label(compare.propagation)} off by > 0.1 on some channel")
     ax.set_xlim(f.min(), f.max())
-    ax.set_ylim(0, 1.06)
+    ax.set_ylim(0, 1.09)
+    ax.set_yticks(np.linspace(0, 1, 6))
     ax.set_xlabel(f"frequency ({funit})")
     ax.set_ylabel("fraction of incident power")
     ax.set_title(f"where the power goes: {_model_label(trace.propagation)}")
