@@ -322,9 +322,23 @@ def write_table(
 # ----------------------------------------------------------------------------- table reading
 
 
+#: Largest table file read (docs/limits.md): a row is about 60 bytes and a study allows at most
+#: 10,000 resonators (layout.count), so 8 MiB is far above any real table.
+MAX_TABLE_BYTES = 8 << 20
+#: Largest decimal exponent accepted in a table cell: the values are millimetres and kilograms
+#: of machined parts (at most 1e6 in SI after scaling); '1e999999999' raised decimal.Overflow.
+MAX_EXPONENT = 12
+
+
 def _read_lines(path: Path) -> list[str]:
+    from optgrade._bounded import BoundedReadError, read_regular_file
+
     try:
-        raw = path.read_bytes()
+        raw = read_regular_file(path, MAX_TABLE_BYTES, "a resonator table")
+    except BoundedReadError as exc:
+        raise TableError([f"{path}: {exc}"]) from None
+    except IsADirectoryError:
+        raise TableError([f"{path}: is a directory, expected a resonator table"]) from None
     except FileNotFoundError:
         raise TableError([f"{path}: file not found"]) from None
     except OSError as exc:
@@ -336,6 +350,11 @@ def _read_lines(path: Path) -> list[str]:
     except UnicodeDecodeError:
         raise TableError([f"{path}: not UTF-8 text"]) from None
     return text.splitlines()
+
+
+def _clip(text: str, n: int = 40) -> str:
+    """A cell's text for a message: long cells shortened (a 100,000-digit number was echoed)."""
+    return text if len(text) <= n else f"{text[:n]}... ({len(text)} characters)"
 
 
 def read_header(path: str | os.PathLike) -> dict[str, str]:
@@ -409,14 +428,22 @@ def read_table(path: str | os.PathLike) -> Layout:
             try:
                 dec = Decimal(text)
             except InvalidOperation:
-                errors.append(f"{path}: line {lineno}: column {name}: '{text}' is not a number")
+                errors.append(f"{path}: line {lineno}: column {name}: '{_clip(text)}' is not a "
+                              "number")
                 continue
             if not dec.is_finite():
-                errors.append(f"{path}: line {lineno}: column {name}: '{text}' is not finite")
+                errors.append(f"{path}: line {lineno}: column {name}: '{_clip(text)}' is not "
+                              "finite")
                 continue
-            value = float(dec / _SCALE[name])
+            if dec and dec.adjusted() > MAX_EXPONENT:
+                errors.append(f"{path}: line {lineno} (resonator {r}): column {name}: "
+                              f"'{_clip(text)}' is absurdly large (decimal exponent "
+                              f"{dec.adjusted()}, at most {MAX_EXPONENT})")
+                continue
+            value = float(dec / _SCALE[name])  # tiny exponents round to 0 (not trapped)
             if abs(value) > 1e6 or not np.isfinite(value):
-                errors.append(f"{path}: line {lineno}: column {name}: '{text}' is absurdly large")
+                errors.append(f"{path}: line {lineno} (resonator {r}): column {name}: "
+                              f"'{_clip(text)}' is absurdly large")
                 continue
             data[r, c] = value
             need_positive = name in ("height_mm", "diameter_mm")

@@ -17,11 +17,12 @@ import importlib
 import math
 import re
 import sys
+import unicodedata
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
+from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Field, ValidationError
 
 from optgrade.channels import GOAL_CHANNELS
 from optgrade.errors import StudyError
@@ -95,6 +96,11 @@ _UNIT_OF = {  # display unit of each limit in messages
     "head_mass": ("mass", "kg"),
     "angle": ("angle", "deg"),
 }
+
+#: Reader bounds (docs/limits.md): a study file is a few kilobytes; 1 MiB is far above any.
+MAX_STUDY_BYTES = 1 << 20
+MAX_TOML_NESTING = 16
+MAX_NUMBER_DIGITS = 40
 
 #: Site scale is inferred below this band top (Hz) or for a soil substrate.
 SITE_BAND_TOP = 1000.0
@@ -265,8 +271,21 @@ class _Raw(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False)
 
 
+def _plain_name(value: str) -> str:
+    """A study name is printed on terminals (rich markup is escaped where it is printed), written
+    into table headers and used as the storage key: control characters (NUL, escape, line
+    breaks) are refused (docs/limits.md)."""
+    for i, ch in enumerate(value):
+        if unicodedata.category(ch) in ("Cc", "Cf", "Zl", "Zp"):
+            raise ValueError(
+                f"contains the control character U+{ord(ch):04X} at position {i + 1}; a name is "
+                "printed, written into tables and used as the storage key: use letters, digits, "
+                "spaces and punctuation")
+    return value
+
+
 class _StudyIn(_Raw):
-    name: Annotated[str, Field(min_length=1, max_length=200)]
+    name: Annotated[str, Field(min_length=1, max_length=200), AfterValidator(_plain_name)]
     seed: Annotated[int, Field(ge=0, le=2**32 - 1)] = 0
     description: str = ""
     scale: _C(("bench", "site")) | None = None
@@ -844,17 +863,91 @@ def study_from_text(text: str, *, source: str = "<study>") -> Study:
         out.add((), "the file is empty; a study needs the sections [study], [substrate], "
                 "[resonator], [layout], [goal], [fabrication]")
         out.raise_if_any()
+    bound = _scan_toml(text)
+    if bound is not None:
+        raise StudyError([f"{source}: (toml): {bound}"])
     try:
         data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        reason = str(exc)
-        line = re.search(r"line (\d+)", reason)
-        reason = re.sub(r"\s*\(at line \d+, column \d+\)", "", reason)
-        reason = re.sub(r"\s*\(at end of document\)", " (at end of file)", reason)
-        suffix = f" (line {line.group(1)})" if line else ""
-        raise StudyError([f"{source}: (toml): syntax error: {reason}{suffix}"]) from None
+    except (RecursionError, ValueError) as exc:
+        if isinstance(exc, tomllib.TOMLDecodeError):
+            raise _syntax_error(exc, source) from None
+        # not expected after _scan_toml; kept so that no input can end in a traceback
+        raise StudyError([f"{source}: (toml): cannot be read ({type(exc).__name__}: "
+                          f"{str(exc)[:120]})"]) from None
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return study_from_dict(data, source=source, text=text, sha256=digest)
+
+
+def _syntax_error(exc: Exception, source: str) -> StudyError:
+    reason = str(exc)
+    line = re.search(r"line (\d+)", reason)
+    reason = re.sub(r"\s*\(at line \d+, column \d+\)", "", reason)
+    reason = re.sub(r"\s*\(at end of document\)", " (at end of file)", reason)
+    suffix = f" (line {line.group(1)})" if line else ""
+    return StudyError([f"{source}: (toml): syntax error: {reason}{suffix}"])
+
+
+def _skip_string(text: str, i: int) -> int:
+    """Index just after the TOML string that starts at ``text[i]`` (a quote)."""
+    q = text[i]
+    if text.startswith(q * 3, i):
+        j = i + 3
+        while True:
+            k = text.find(q * 3, j)
+            if k < 0:
+                return len(text)
+            if q == '"':
+                n_back = len(text[j:k]) - len(text[j:k].rstrip("\\"))
+                if n_back % 2:  # an escaped quote: keep looking after it
+                    j = k + 1
+                    continue
+            k += 3
+            for _ in range(2):  # up to two quotes of the content may touch the closing three
+                if k < len(text) and text[k] == q:
+                    k += 1
+            return k
+    j = i + 1
+    while j < len(text) and text[j] not in (q, "\n"):
+        j += 2 if (q == '"' and text[j] == "\\") else 1
+    return j + 1
+
+
+def _scan_toml(text: str) -> str | None:
+    """Bounds checked before the TOML parser runs (docs/limits.md): nesting of arrays and
+    inline tables at most `MAX_TOML_NESTING` deep (deeper input made the parser recurse until
+    RecursionError), numbers at most `MAX_NUMBER_DIGITS` digits (a 100,000-digit integer
+    stopped the parser with Python's integer-string limit; a float that long was read). Returns
+    the reason with the line, or None."""
+    depth, i, n, line, run = 0, 0, len(text), 1, 0
+    while i < n:
+        c = text[i]
+        if c == "\n":
+            line, run = line + 1, 0
+        elif c == "#":
+            k = text.find("\n", i)
+            i = n if k < 0 else k
+            continue
+        elif c in "\"'":
+            k = _skip_string(text, i)
+            line += text.count("\n", i, k)
+            i, run = k, 0
+            continue
+        elif c.isdigit():
+            run += 1
+            if run > MAX_NUMBER_DIGITS:
+                return (f"a number with more than {MAX_NUMBER_DIGITS} digits (line {line}); a "
+                        "value needs at most 17 significant digits (a double)")
+        elif c != "_":
+            run = 0
+            if c in "[{":
+                depth += 1
+                if depth > MAX_TOML_NESTING:
+                    return (f"arrays or inline tables nested more than {MAX_TOML_NESTING} deep "
+                            f"(line {line}); a study needs at most 3 levels")
+            elif c in "]}":
+                depth = max(0, depth - 1)
+        i += 1
+    return None
 
 
 def load_study(path: str | Path) -> Study:
@@ -878,8 +971,12 @@ def load_study(path: str | Path) -> Study:
     """
     source = str(path)
     p = Path(path)
+    from optgrade._bounded import BoundedReadError, read_regular_file
+
     try:
-        blob = p.read_bytes()
+        blob = read_regular_file(p, MAX_STUDY_BYTES, "a study file")
+    except BoundedReadError as exc:
+        raise StudyError([f"{source}: (file): {exc}"]) from None
     except FileNotFoundError:
         raise StudyError([f"{source}: (file): no such file"]) from None
     except IsADirectoryError:

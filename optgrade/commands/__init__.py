@@ -88,9 +88,12 @@ def open_study(path: str | Path) -> Study:
     Raises :class:`StudyError` (messages ``path: field.path: reason``) on any defect; the
     command line prints them and exits with status 2.
     """
+    from optgrade.commands._limits import check_study_work
     from optgrade.study import load_study
 
-    return load_study(path)
+    study = load_study(path)
+    check_study_work(study, str(path))  # plausibility and memory limits (docs/limits.md)
+    return study
 
 
 def open_layout(path: str | Path, option_name: str = "--layout") -> Layout:
@@ -101,16 +104,47 @@ def open_layout(path: str | Path, option_name: str = "--layout") -> Layout:
     from optgrade.layout import TableError, read_table
 
     try:
-        return read_table(path)
+        layout = read_table(path)
     except TableError as exc:
         raise StudyError([f"{option_name}: {m}" for m in exc.messages]) from None
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, ArithmeticError) as exc:
         raise StudyError([f"{option_name}: {path}: {exc}"]) from None
+    _check_export_set(Path(path), option_name)
+    return layout
+
+
+#: Files that mark a folder as an export set (optgrade.export.EXPORT_FILES without the table).
+_SET_SIBLINGS = ("result.json", "report.txt", "layout.dxf", "sheet.png")
+_MANIFEST = "export.json"  # optgrade.export.MANIFEST (not imported: it pulls in optuna)
+
+
+def _check_export_set(path: Path, option_name: str) -> None:
+    """A table that is part of an export set is read only if the set is whole: with the set's
+    manifest (export.json) beside it, every file must match it (optgrade.export.check_export);
+    a table of an export (header line ``trial:``) beside other files of a set but without a
+    manifest is from an interrupted export, and the other files may describe another trial.
+    A table copied out of its folder on its own is read as it is."""
+    from optgrade.layout import read_header
+
+    folder = path.parent
+    if (folder / _MANIFEST).exists():
+        from optgrade.export import ExportError, check_export  # imports optuna: only here
+
+        try:
+            check_export(folder)
+        except ExportError as exc:
+            raise StudyError([f"{option_name}: {path}: {exc}"]) from None
+        return
+    if "trial" in read_header(path) and any((folder / n).exists() for n in _SET_SIBLINGS):
+        raise StudyError([f"{option_name}: {path}: part of an export set without its "
+                          f"{_MANIFEST}: the export was interrupted, and the other files of "
+                          f"{folder} may describe another trial; export again (or copy the "
+                          "table out on its own)"])
 
 
 def open_output_dir(path: str | Path, option_name: str = "--out") -> Path:
-    """Check that an output folder can be used (it may not exist yet; a file there is refused)."""
-    out = Path(path)
-    if out.exists() and not out.is_dir():
-        raise StudyError([f"{option_name}: {out} exists and is not a folder"])
-    return out
+    """Check that an output folder can be used: it may not exist yet; an existing file, a
+    device (/dev/null) or a folder that cannot be written is refused naming the option."""
+    from optgrade.commands._limits import check_output_dir
+
+    return check_output_dir(path, option_name)

@@ -130,6 +130,34 @@ def _check_inputs(height, spacing, head_mass, fmin, fmax, points, diameter) -> N
         raise StudyError(msgs)
 
 
+def _check_plausible(study: Study, height: float, spacing: float, head_mass: float,
+                     fmax: float) -> None:
+    """Physics limits of one cell (docs/limits.md): the top frequency against the rod's first
+    axial resonance, the cell length and row pitch against the shear wavelength there. Outside
+    them the lattice sums grow without bound (--fmax '1 THz' or --spacing '100 km' never
+    ended)."""
+    from optgrade.commands._limits import BAND_ABOVE_RESONANCE, MAX_CELL_WAVELENGTHS
+    from optgrade.resonators import rod_resonances
+    from optgrade.units import format_eng
+
+    r = study.resonator
+    f1 = float(rod_resonances(height, float(r.diameter), r.youngs_modulus, r.density,
+                              head_mass)[0])
+    msgs = []
+    if fmax > BAND_ABOVE_RESONANCE * f1:
+        msgs.append(f"--fmax: {format_eng(fmax, 'Hz')} is above {BAND_ABOVE_RESONANCE:g} x the "
+                    f"rod's first axial resonance ({format_eng(f1, 'Hz')} for --height "
+                    f"{height * 1e3:.4g} mm), beyond its fifth axial mode; lower --fmax")
+    lam_t = float(study.substrate.ct) / fmax
+    for option, size in (("--spacing", spacing), ("resonator.row_pitch", float(r.row_pitch))):
+        if size > MAX_CELL_WAVELENGTHS * lam_t:
+            msgs.append(f"{option}: {size * 1e3:.4g} mm is {size / lam_t:.3g} shear wavelengths "
+                        f"at {format_eng(fmax, 'Hz')} ({lam_t * 1e3:.4g} mm); at most "
+                        f"{MAX_CELL_WAVELENGTHS:g} (the lattice sums grow as the square)")
+    if msgs:
+        raise StudyError(msgs)
+
+
 def _nan_to_none(x: np.ndarray, digits: int = 10) -> list:
     return [None if not np.isfinite(v) else float(f"{v:.{digits}g}") for v in np.asarray(x)]
 
@@ -236,6 +264,10 @@ def run_bands(
     fmin = lo if fmin is None else float(fmin)
     fmax = hi if fmax is None else float(fmax)
     _check_inputs(height, spacing, head_mass, fmin, fmax, points, float(study.resonator.diameter))
+    _check_plausible(study, height, spacing, head_mass, fmax)
+    from optgrade.commands._limits import check_output_dir
+
+    check_output_dir(out)
     model = model or study.goal.model
     cell = _cell_from_study(study, height, spacing, head_mass)
     freq = np.linspace(fmin, fmax, int(points))
@@ -291,8 +323,10 @@ def run(args: argparse.Namespace) -> int:
 
     gaps = ", ".join(f"{format_eng(lo, 'Hz')} - {format_eng(hi, 'Hz')}"
                      for lo, hi in bands.gaps) or "none"
+    from rich.markup import escape
+
     console.print(
-        f"wrote {Path(args.out) / 'bands.json'}, bands.csv"
+        f"wrote {escape(str(Path(args.out) / 'bands.json'))}, bands.csv"
         + ("" if args.no_figure else ", bands.png")
     )
     console.print(
@@ -300,7 +334,7 @@ def run(args: argparse.Namespace) -> int:
         f"gaps: {gaps}; leaky points: {n_leaky}"
     )
     for w in bands.warnings:
-        console.print(f"note: {w}")
+        console.print(f"note: {escape(w)}")
     if study.meta.scale == "site":
         console.print(SITE_CAUTION)
     return 0

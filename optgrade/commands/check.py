@@ -207,8 +207,10 @@ def _print_human(study: Study, fig: dict[str, Any], warnings: list[str]) -> None
     def hz(x: float) -> str:
         return f"{x / 1e3:.4g} kHz" if x >= 1e3 else f"{x:.4g} Hz"
 
-    console.print(f"[bold]{study.meta.name}[/bold]  ({study.meta.scale} scale, seed "
-                  f"{study.meta.seed})  {study.source_path or ''}")
+    from rich.markup import escape  # names and paths are text, not markup (issue 17 part 3)
+
+    console.print(f"[bold]{escape(study.meta.name)}[/bold]  ({study.meta.scale} scale, seed "
+                  f"{study.meta.seed})  {escape(str(study.source_path or ''))}")
     table = Table(show_header=True, header_style="bold", title="resolved study (SI)")
     table.add_column("quantity")
     table.add_column("value", justify="right")
@@ -275,7 +277,7 @@ def _print_human(study: Study, fig: dict[str, Any], warnings: list[str]) -> None
         console.print("[bold]warnings and notes[/bold]")
         for text in warnings:
             style = "bold red" if text.startswith("CAUTION") else "yellow"
-            console.print(f"  - {text}", style=style)
+            console.print(f"  - {escape(text)}", style=style)
     console.print("[green]study is valid[/green]")
 
 

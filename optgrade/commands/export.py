@@ -47,9 +47,11 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 def run(args: argparse.Namespace) -> int:
     """Export the trial; 0 done, 2 bad input."""
     from optgrade import export_trial
+    from optgrade.commands import open_output_dir
     from optgrade.search import SearchError, best_trial, load_search
 
     study = open_study(args.study)
+    open_output_dir(args.out)  # an existing file, /dev/null or a read-only folder: exit 2
     try:
         ostudy = load_search(study, args.storage)
         if args.trial == "best":

@@ -79,13 +79,20 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 def run(args: argparse.Namespace) -> int:
     """Run the search; 0 done, 2 bad input, 130 interrupted (best so far exported)."""
     from optgrade import export_trial, run_search
+    from optgrade.commands import open_output_dir
+    from optgrade.commands._limits import cap_jobs, check_journal_path
     from optgrade.profiles import ProfileError
     from optgrade.search import SearchError, mask_url
 
     study = open_study(args.study)
+    open_output_dir(args.out)  # an existing file, /dev/null or a read-only folder: exit 2
+    check_journal_path(args.storage or study.search.storage)
+    n_jobs, note = cap_jobs(args.jobs, study.search.workers)
+    if note:
+        print(f"optgrade search: {note}", file=sys.stderr)
     try:
         outcome = run_search(
-            study, args.out, n_trials=args.trials, n_jobs=args.jobs, storage=args.storage,
+            study, args.out, n_trials=args.trials, n_jobs=n_jobs, storage=args.storage,
             is_resume=args.resume, sampler=args.sampler, chunk_size=args.chunk,
             show_progress=not args.quiet and sys.stderr.isatty(),
         )

@@ -267,15 +267,10 @@ def run(args: argparse.Namespace) -> int:
                               + ", ".join(PROPAGATION_MODELS.names())])
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
-    a_lo, a_hi = (float(v) for v in study.layout.spacing)
-    bad = np.flatnonzero((layout.spacing < a_lo * 0.98) | (layout.spacing > a_hi * 1.02))
-    if bad.size:
-        i = int(bad[0])
-        raise StudyError([
-            f"--layout: {args.layout}: resonator {i}: cell length {layout.spacing[i] * 1e3:.6g} mm "
-            f"is outside the study's layout.spacing range {a_lo * 1e3:.6g} .. {a_hi * 1e3:.6g} mm "
-            f"({bad.size} cells outside); the dispersion tables cover only that range"
-        ])
+    from optgrade.commands._limits import check_layout_for_study
+
+    # rows against layout.count, length, spacing and height ranges, memory (docs/limits.md)
+    check_layout_for_study(study, layout, args.layout)
     d_study = float(study.resonator.diameter)
     console = Console(stderr=False, highlight=False, soft_wrap=True)
     from optgrade.fabrication import check_layout

@@ -98,7 +98,8 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
             lattice = propagation_model(study, "scattering", model="lattice").trace(
                 layout, ver.frequency)
         except Exception as exc:  # the figure is still useful without it
-            say(f"[yellow]note[/]: no 3-D lattice prediction ({type(exc).__name__}: {exc})")
+            say(f"[yellow]note[/]: no 3-D lattice prediction ({type(exc).__name__}: "
+                f"{escape(str(exc))})")
     judged = _verdict_of(study, layout, ver)
     payload = {
         "verdict": judged.to_dict() if judged is not None else None,
@@ -119,7 +120,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     write_json(out / "verify.json", payload)
     if ver.run is None:  # stopped as unstable: nothing to draw
         say(f"[bold red]FAILED[/]: {ver.reason}")
-        say(f"wrote {out / 'verify.json'} (status failed; no figures)")
+        say(f"wrote {escape(str(out / 'verify.json'))} (status failed; no figures)")
         return payload
 
     import matplotlib
@@ -154,7 +155,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
         else:
             say("[yellow]note[/]: no GIF writer (Pillow) available; animation skipped")
 
-    say(f"[bold]{study.meta.name}[/]: {layout.x.size} resonators, {ver.frequency.size} "
+    say(f"[bold]{escape(study.meta.name)}[/]: {layout.x.size} resonators, {ver.frequency.size} "
         f"frequencies, grid {grid.nx} x {grid.nz} (h = {grid.h * 1e3:.3g} mm), "
         f"{ver.info['n_steps']} steps in {ver.info['seconds']:.1f} s")
     bound = ver.info["checks"]["bounds"]["balance"]
@@ -167,7 +168,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     _say_channels(say, ver)
     if is_site:
         say(f"[yellow]{SITE_CAUTION}[/]")
-    say(f"wrote {out / 'verify.json'} and {n_files - 1} figure files")
+    say(f"wrote {escape(str(out / 'verify.json'))} and {n_files - 1} figure files")
     if ver.status != "ok":
         say(f"[bold red]FAILED[/]: {ver.reason}")
     return payload
@@ -215,9 +216,14 @@ def run(args: argparse.Namespace) -> int:
     """Entry point of ``optgrade verify``."""
     from rich.console import Console
 
+    from optgrade.commands._limits import check_layout_for_study, check_verify_plan
+
     study = open_study(args.study)
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
+    # the table must fit the study, and the grid this machine (docs/limits.md)
+    check_layout_for_study(study, layout, args.layout)
+    check_verify_plan(study, layout, args.fast)
     console = Console(highlight=False)
     payload = run_verify(study, layout, out, is_fast=args.fast,
                          is_animation=not args.no_animation, is_lattice=not args.no_lattice,
