@@ -297,7 +297,10 @@ def run(args: argparse.Namespace) -> int:
     from rich.console import Console
     from rich.progress import Progress
 
+    from optgrade.commands import open_output_dir
+
     study = open_study(args.study)
+    open_output_dir(args.out)  # before the progress display: an existing file etc., exit 2
     console = Console(stderr=True)
     with Progress(console=console, transient=True) as prog:
         task = prog.add_task("solving bands", total=args.points)
