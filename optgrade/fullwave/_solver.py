@@ -46,6 +46,7 @@ All quantities inside are SI. Time dependence of the phasors is exp(-i w t) docs
 from __future__ import annotations
 
 import math
+import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -1628,10 +1629,15 @@ def _finite_or_none(value: Any) -> float | None:
 def _run_pair_progress(medium: Medium, rods: RodRow, band: tuple[float, float],
                        freq: np.ndarray, length: float, quality: str, n_snapshots: int,
                        progress: bool) -> tuple[Grid, RunRecord, RunRecord, ChannelSplit]:
-    """:func:`run_pair` with a progress bar (rich) when ``progress``."""
+    """:func:`run_pair` with a progress bar (rich) when ``progress``; when stderr is not a
+    terminal (a log, a pipe), plain lines every 10 % of each phase with the elapsed time and
+    an estimate of the time left instead (a bar there shows nothing until the end)."""
     if not progress:
         return run_pair(medium, rods, band, freq, length, quality=quality,
                         n_snapshots=n_snapshots)
+    if not sys.stderr.isatty():
+        return run_pair(medium, rods, band, freq, length, quality=quality,
+                        n_snapshots=n_snapshots, progress=_plain_progress())
     from rich.progress import Progress
 
     with Progress(transient=False) as bar:
@@ -1644,6 +1650,28 @@ def _run_pair_progress(medium: Medium, rods: RodRow, band: tuple[float, float],
 
         return run_pair(medium, rods, band, freq, length, quality=quality,
                         n_snapshots=n_snapshots, progress=report)
+
+
+def _plain_progress() -> Callable[[str, int, int], None]:
+    """Progress callback writing one line per 10 % of each phase to stderr."""
+    state: dict[str, Any] = {}
+
+    def report(label: str, i: int, n: int) -> None:
+        if label not in state:
+            state[label] = [time.perf_counter(), -1]
+        t0, last = state[label]
+        tenth = int(10 * i / max(n, 1))
+        if tenth <= last:
+            return
+        state[label][1] = tenth
+        spent = time.perf_counter() - t0
+        left = spent * (n - i) / i if i > 0 else float("nan")
+        eta = f", about {left:.0f} s left" if 0 < i < n else ""
+        sys.stderr.write(f"full-wave: {label} {100 * i / max(n, 1):.0f} % "
+                         f"({spent:.0f} s{eta})\n")
+        sys.stderr.flush()
+
+    return report
 
 
 def _unstable_verification(exc: UnstableRun, medium: Medium, rods: RodRow,
