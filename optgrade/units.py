@@ -127,7 +127,8 @@ def _read_quantity(text: str, value: str, dimension: str, example: str) -> Any:
         unit = ureg.parse_units(unit_text)
     except pint.UndefinedUnitError as exc:
         names = exc.unit_names if isinstance(exc.unit_names, (list, tuple)) else [exc.unit_names]
-        raise UnitError(f"unknown unit {', '.join(map(str, names))!r} in {value!r}") from None
+        raise UnitError(f"unknown unit {', '.join(map(str, names))!r} in {value!r}"
+                        f"{_case_hint(unit_text, dimension)}") from None
     except Exception as exc:  # pint raises many kinds on malformed unit text
         raise UnitError(f"cannot read the unit of {value!r} ({type(exc).__name__}); "
                         f"write {ACCEPTED_FORM}") from None
@@ -136,6 +137,30 @@ def _read_quantity(text: str, value: str, dimension: str, example: str) -> Any:
             f"{value!r} has no unit; write the {dimension} with its unit, e.g. \"{example}\""
         )
     return ureg.Quantity(float(number), unit)
+
+
+#: Units people write, by dimension, for the "did you mean" hint of a mis-cased unit.
+_COMMON_UNITS = {
+    "frequency": ("Hz", "kHz", "MHz", "GHz"),
+    "length": ("nm", "um", "mm", "cm", "m", "km", "in", "ft"),
+    "mass": ("mg", "g", "kg", "t", "lb"),
+    "density": ("kg/m^3", "g/cm^3", "t/m^3"),
+    "modulus": ("Pa", "kPa", "MPa", "GPa"),
+    "speed": ("m/s", "km/s", "mm/us"),
+    "time": ("ns", "us", "ms", "s"),
+    "angle": ("deg", "rad"),
+}
+
+
+def _case_hint(unit_text: str, dimension: str) -> str:
+    """' (did you mean 'kHz'?)' when the unit differs from a common unit of the dimension only
+    in letter case (300 KHz, 5 MM), else ''."""
+    low = unit_text.replace(" ", "").lower()
+    for unit in _COMMON_UNITS.get(dimension, ()):
+        if unit.lower() == low and unit != unit_text:
+            return (f" (did you mean {unit!r}? unit prefixes are case-sensitive: "
+                    "M = mega, m = milli)")
+    return ""
 
 
 def _malformed_reason(text: str) -> str:
@@ -219,6 +244,7 @@ def parse_quantity(value: Any, dimension: str) -> float:
         raise UnitError(
             f"{value!r} has dimension {quantity.dimensionality}, expected a {dimension} "
             f"({target.dimensionality}), e.g. \"{example}\""
+            f"{_case_hint(re.sub(r'^[-+]?[0-9.]+([eE][-+]?[0-9]+)?', '', text).strip(), dimension)}"
         )
     try:
         magnitude = float(quantity.to(target).magnitude)

@@ -157,3 +157,14 @@ def test_overflowing_exponents_are_not_finite(text):
 def test_the_accepted_form_still_reads(text, dimension, expected):
     """Exponents, powers, spaces around operators between unit names (SI brochure 2019)."""
     assert parse_quantity(text, dimension) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize("text, dimension, hint", [
+    ("300 KHz", "frequency", "'kHz'"), ("300 khz", "frequency", "'kHz'"),
+    ("5 MM", "length", "'mm'"), ("15.5 MM", "length", "'mm'"), ("3 GPA", "modulus", "'GPa'"),
+])
+def test_miscased_unit_gets_a_hint(text, dimension, hint):
+    """Issue 15 item 8: a unit that differs from a common one only in letter case is refused
+    (SI prefixes are case-sensitive: 5 MM would be read as molar) with the likely unit named."""
+    with pytest.raises(UnitError, match="did you mean " + hint):
+        parse_quantity(text, dimension)
