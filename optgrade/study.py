@@ -260,7 +260,30 @@ def _C(options: tuple[str, ...]):  # noqa: N802
     return Annotated[str, BeforeValidator(_choice(options))]
 
 
-LossFactor = Annotated[float, Field(ge=0.0, le=1.0)]
+def _fraction_value(value: Any) -> float:
+    """A fraction in [0, 1] written as a number; a percentage ("60 %", 60) is refused with the
+    fraction it probably means."""
+    if isinstance(value, bool):
+        raise ValueError("expected a fraction between 0 and 1 (a number), got a boolean")
+    if isinstance(value, str):
+        text = value.strip().rstrip("%").strip()
+        try:
+            number = float(text)
+        except ValueError:
+            raise ValueError(f"expected a fraction between 0 and 1 as a number (e.g. 0.6), "
+                             f"got {value[:40]!r}") from None
+        if value.strip().endswith("%"):
+            raise ValueError(f"{value[:40]!r} is a percentage; write the fraction as a number "
+                             f"between 0 and 1: {number / 100:g} for {number:g} %")
+        raise ValueError(f"write the fraction as a number, not a string: {number:g}")
+    if isinstance(value, (int, float)) and 1.0 < float(value) <= 100.0:
+        raise ValueError(f"{value} is above 1: a fraction is between 0 and 1; if you meant "
+                         f"{float(value):g} %, write {float(value) / 100:g}")
+    return value
+
+
+Fraction = Annotated[float, BeforeValidator(_fraction_value), Field(ge=0.0, le=1.0)]
+LossFactor = Fraction  # a loss factor is a fraction as well ("4 %" gets the same message)
 Poisson = Annotated[float, Field(gt=-1.0, lt=0.5)]
 
 
@@ -339,7 +362,7 @@ class _GoalIn(_Raw):
     band: _R("frequency", "frequency")
     n_frequencies: Annotated[int, Field(ge=2, le=100_000)] = 128
     channel: _C(CHANNELS)
-    required_fraction: Annotated[float, Field(ge=0.0, le=1.0)] = 0.8
+    required_fraction: Fraction = 0.8
     angle_window: _R("angle", "angle") | None = None
     weights: dict[str, Weight] | None = None
     model: _C(("lattice", "line")) = "lattice"

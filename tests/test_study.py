@@ -224,3 +224,21 @@ def test_any_single_bad_value_gives_study_error_not_a_crash(section, key, value)
         for message in exc.messages:
             assert message.startswith("fuzz.toml: ")
             assert len(message.split(": ")) >= 3
+
+
+@pytest.mark.parametrize("value, fragment", [
+    ("60 %", "0.6 for 60 %"), ("60%", "0.6 for 60 %"), (60, "if you meant 60 %, write 0.6"),
+    ("0.6", "not a string"),
+])
+def test_fraction_written_as_percentage_gets_a_clear_message(value, fragment):
+    """Issue 15 item 8: a percentage (or a number as a string) for a fraction field is refused
+    naming the field and the fraction it probably means (was pydantic's 'Input should be a
+    valid number' / 'less than or equal to 1')."""
+    from optgrade.study import study_from_dict, tomllib
+
+    path = Path(__file__).resolve().parents[1] / "studies" / "bench_backward_shear.toml"
+    data = tomllib.loads(path.read_text())
+    data["goal"]["required_fraction"] = value
+    with pytest.raises(StudyError, match="goal.required_fraction") as info:
+        study_from_dict(data)
+    assert fragment in str(info.value)
