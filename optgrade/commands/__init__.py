@@ -35,7 +35,8 @@ __all__ = [
 ]
 
 #: Subcommands in the order they appear in ``optgrade --help``.
-COMMAND_NAMES: tuple[str, ...] = ("check", "bands", "trace", "search", "export", "verify")
+COMMAND_NAMES: tuple[str, ...] = ("check", "bands", "trace", "search", "export", "verify",
+                                  "compare")
 
 
 def parse_quantity_arg(text: str | None, dimension: str, option_name: str) -> float:
