@@ -30,6 +30,7 @@ from optgrade._atomic import write_text
 from optgrade.commands import add_study_argument, open_study, quantity_type
 from optgrade.errors import StudyError
 from optgrade.study import SITE_CAUTION
+from optgrade.units import format_eng as _eng
 
 if TYPE_CHECKING:  # pragma: no cover
     from optgrade.dispersion import Cell
@@ -119,7 +120,7 @@ def _check_inputs(height, spacing, head_mass, fmin, fmax, points, diameter) -> N
     if not spacing > 0:
         msgs.append("--spacing: must be positive")
     elif spacing <= diameter:
-        msgs.append(f"--spacing: must exceed the rod diameter ({diameter:.4g} m)")
+        msgs.append(f"--spacing: must exceed the rod diameter ({_eng(diameter, 'm')})")
     if head_mass < 0:
         msgs.append("--head-mass: must not be negative")
     if not (0 < fmin < fmax):
@@ -285,7 +286,7 @@ def run_bands(
         if scale == "site":
             head = f", head mass {head_mass:.4g} kg" if head_mass else ""
             title = (
-                f"{model} model: post L = {height:.4g} m{head}, spacing {spacing:.4g} m "
+                f"{model} model: post L = {_eng(height, 'm')}{head}, spacing {_eng(spacing, 'm')} "
                 "- simplified model, verify with a qualified engineer"
             )
         plot_bands(bands, out / "bands.png", title=title)

@@ -69,6 +69,7 @@ from optgrade.dispersion._lattice import (
 )
 from optgrade.ground import Ground
 from optgrade.resonators import Resonator
+from optgrade.units import format_eng as _eng
 
 __all__ = [
     "Cell",
@@ -528,18 +529,20 @@ def validity_warnings(
     kr = 2 * np.pi * freq_max / substrate.cr
     if model == "lattice" and 2 * np.pi / row_pitch <= kr:
         out.append(
-            f"row pitch {row_pitch:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
-            "sideways harmonics reach the Rayleigh pole; results outside the model"
+            f"row pitch {_eng(row_pitch, 'm')} exceeds a Rayleigh wavelength at "
+            f"{_eng(freq_max, 'Hz')}: sideways harmonics reach the Rayleigh pole; results "
+            "outside the model"
         )
     if model == "lattice" and 2 * np.pi / row_pitch < kt:
         out.append(
-            f"row pitch {row_pitch:.4g} m exceeds the shear wavelength at {freq_max:.4g} Hz: "
-            "harmonics radiate sideways (not booked to any channel)"
+            f"row pitch {_eng(row_pitch, 'm')} exceeds the shear wavelength at "
+            f"{_eng(freq_max, 'Hz')}: harmonics radiate sideways (not booked to any channel)"
         )
     if model != "homogenised" and kr >= 2 * np.pi / spacing_max:
         out.append(
-            f"spacing {spacing_max:.4g} m exceeds a Rayleigh wavelength at {freq_max:.4g} Hz: "
-            "grating regime, several harmonics radiate (handled as main harmonics)"
+            f"spacing {_eng(spacing_max, 'm')} exceeds a Rayleigh wavelength at "
+            f"{_eng(freq_max, 'Hz')}: grating regime, several harmonics radiate (handled as "
+            "main harmonics)"
         )
     out.extend(rod.validity_notes(freq_max))
     return out

@@ -55,6 +55,7 @@ from numba import njit
 from scipy.special import j1, jv, sici, zeta
 
 from optgrade._table_cache import default_cache_dir, read_cached, write_cached
+from optgrade.units import format_eng as _eng
 
 __all__ = [
     "FORMAT_VERSION",
@@ -777,8 +778,9 @@ def stencils(tables: GreenTables, x: np.ndarray) -> tuple[np.ndarray, np.ndarray
     bad = (x != 0) & ((x < spec.x_lo * (1 - 1e-12)) | (x > spec.x_hi * (1 + 1e-12)))
     if np.any(bad):
         raise ValueError(
-            f"layout: separations {x[bad].min():.6g}..{x[bad].max():.6g} m lie outside the "
-            f"Green's-function table range {spec.x_lo:.6g}..{spec.x_hi:.6g} m"
+            f"layout: separations {_eng(x[bad].min(), 'm')} .. {_eng(x[bad].max(), 'm')} lie "
+            f"outside the Green's-function table range {_eng(spec.x_lo, 'm')} .. "
+            f"{_eng(spec.x_hi, 'm')}"
         )
     g = tables.grid
     idx = np.empty((x.size, N_STENCIL), dtype=np.int64)

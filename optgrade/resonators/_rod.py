@@ -25,6 +25,7 @@ from numpy.typing import ArrayLike
 from scipy.optimize import brentq
 
 from optgrade.resonators._base import RESONATORS, Resonator
+from optgrade.units import format_eng as _eng
 
 __all__ = [
     "Rod",
@@ -103,8 +104,8 @@ class Rod(Resonator):
         out = []
         if not bool(np.all(is_thin_rod(freq_max, self))):
             out.append(
-                f"rod diameter {self.diameter:.4g} m exceeds a fifth of the bar wavelength at "
-                f"{freq_max:.4g} Hz: thin-rod theory is stretched"
+                f"rod diameter {_eng(self.diameter, 'm')} exceeds a fifth of the bar wavelength at "
+                f"{_eng(freq_max, 'Hz')}: thin-rod theory is stretched"
             )
         out.append("axial rod motion only: bending modes of the rods are not represented")
         return out
