@@ -352,3 +352,20 @@ def test_jobs_above_the_cores_are_capped_and_said(tmp_path):
                       "--jobs", str(32 * cores), "--quiet", "--no-export", timeout=60)
     assert rc == 0, err[-400:]
     assert f"{32 * cores} worker processes asked for, {cores} cores usable" in err
+
+
+def test_verify_plan_refuses_a_grid_of_hours_before_allocating():
+    """The grid is planned first: 20 posts 2 m apart (38 m) under the bench band need 3.4e12
+    cell updates on the fast grid (two runs; h = 1.45 mm, a tenth of the 14.5 mm Rayleigh
+    wavelength at 200 kHz), over the 1e12 limit; a 30-rod row of the study needs 1.26e9."""
+    from optgrade.commands._limits import check_verify_plan
+    from optgrade.errors import StudyError
+    from optgrade.layout import layout_from_cells
+    from optgrade.study import load_study
+
+    study = load_study(BENCH)
+    short = layout_from_cells(np.linspace(4e-3, 12e-3, 30), np.full(30, 10e-3), 1e-3)
+    assert check_verify_plan(study, short, True)["cell_updates"] < 2e9
+    long = layout_from_cells(np.linspace(4e-3, 12e-3, 20), np.full(20, 2.0), 1e-3)
+    with pytest.raises(StudyError, match="cell updates"):
+        check_verify_plan(study, long, True)

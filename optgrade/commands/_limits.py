@@ -223,8 +223,10 @@ def check_verify_plan(study: Study, layout: Layout, is_fast: bool) -> dict:
                      quality=quality, rods=rods_of(study, layout))
     cells = float(grid.nx) * float(grid.nz)
     updates = 2.0 * cells * grid.n_steps  # the run with the rods and the bare reference
-    # fields, layers and 40 snapshots of both runs (float64), about 1.5 kB per cell
-    need = cells * 1536.0
+    # both runs, measured with tracemalloc on the bench 30-rod fast grid (31,808 cells): 29 MB
+    # without snapshots at 16 frequencies, 49 MB with the 40 snapshots verify keeps, 201 MB at
+    # 128 frequencies; taken as per cell 930 B + 16 B per snapshot + 45 B per frequency
+    need = cells * (930.0 + 16.0 * 40 + 45.0 * float(study.goal.n_frequencies))
     msgs = []
     if need > memory_budget():
         msgs.append(f"--layout: the {quality} full-wave grid ({grid.nx} x {grid.nz} cells) "
