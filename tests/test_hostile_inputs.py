@@ -369,3 +369,17 @@ def test_verify_plan_refuses_a_grid_of_hours_before_allocating():
     long = layout_from_cells(np.linspace(4e-3, 12e-3, 20), np.full(20, 2.0), 1e-3)
     with pytest.raises(StudyError, match="cell updates"):
         check_verify_plan(study, long, True)
+
+
+@pytest.mark.parametrize("cmd", ["search", "bands"])
+def test_whole_number_options_with_100000_digits_are_not_echoed(tmp_path, capsys, cmd):
+    """Exit 2 before too, but the 100,000-digit value was echoed whole (100 kB on stderr)."""
+    digits = "1" + "0" * 100_000
+    if cmd == "search":
+        args = ["search", str(BENCH), "--out", str(tmp_path / "o"), "--trials", digits]
+    else:
+        args = ["bands", str(BENCH), "--height", "8 mm", "--spacing", "10 mm", "--out",
+                str(tmp_path / "o"), "--points", digits]
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert ("--trials" in err or "--points" in err) and len(err) < 500

@@ -29,6 +29,8 @@ __all__ = [
     "open_output_dir",
     "COMMAND_NAMES",
     "add_study_argument",
+    "clip_text",
+    "whole_number_type",
     "open_study",
     "parse_quantity_arg",
     "quantity_type",
@@ -76,6 +78,30 @@ def quantity_type(dimension: str, option_name: str):
 
     _convert.__name__ = f"{dimension} quantity"
     return _convert
+
+
+def clip_text(text: str, n: int = 40) -> str:
+    """A value for a message, shortened when long (a 100,000-digit number was echoed whole)."""
+    return text if len(text) <= n else f"{text[:n]}... ({len(text)} characters)"
+
+
+def whole_number_type(option: str, minimum: int = 1):
+    """An argparse ``type=`` callable for a whole number >= ``minimum`` (errors: StudyError
+    naming the option, exit 2; more than 18 digits is refused before int() reads it)."""
+
+    def parse(text: str) -> int:
+        s = text.strip()
+        digits = s.lstrip("+-")
+        if not digits.isdigit() or len(digits) > 18:
+            why = "more than 18 digits" if digits.isdigit() else "expected a whole number"
+            raise StudyError([f"{option}: {why}, got {clip_text(text)!r}"])
+        value = int(s)
+        if value < minimum:
+            raise StudyError([f"{option}: must be >= {minimum}, got {value}"])
+        return value
+
+    parse.__name__ = "whole number"
+    return parse
 
 
 def add_study_argument(parser: argparse.ArgumentParser) -> None:

@@ -27,7 +27,12 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from optgrade._atomic import write_text
-from optgrade.commands import add_study_argument, open_study, quantity_type
+from optgrade.commands import (
+    add_study_argument,
+    open_study,
+    quantity_type,
+    whole_number_type,
+)
 from optgrade.errors import StudyError
 from optgrade.study import SITE_CAUTION
 from optgrade.units import format_eng as _eng
@@ -88,7 +93,8 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         type=quantity_type("frequency", "--fmax"),
         help="highest frequency (default: the study's goal band)",
     )
-    parser.add_argument("--points", default=161, type=int, help="number of frequencies")
+    parser.add_argument("--points", default=161, type=whole_number_type("--points", 2),
+                        help="number of frequencies")
     parser.add_argument(
         "--model",
         choices=("lattice", "line", "homogenised"),

@@ -8,17 +8,18 @@ from __future__ import annotations
 
 import argparse
 
-from optgrade.commands import add_study_argument, open_study
+from optgrade.commands import add_study_argument, clip_text, open_study
 from optgrade.errors import StudyError
 
 __all__ = ["add_parser", "run"]
 
 
 def _trial_number(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise StudyError([f"--trial: expected a trial number or 'best', got {text!r}"]) from None
+    digits = text.strip().lstrip("+-")
+    if not digits.isdigit() or len(digits) > 18:
+        raise StudyError([f"--trial: expected a trial number or 'best', got "
+                          f"{clip_text(text)!r}"])
+    value = int(text)
     if value < 0:
         raise StudyError([f"--trial: must be >= 0, got {value}"])
     return value

@@ -13,25 +13,14 @@ from __future__ import annotations
 import argparse
 import sys
 
-from optgrade.commands import add_study_argument, open_study
+from optgrade.commands import add_study_argument, open_study, whole_number_type
 from optgrade.errors import StudyError
 
 __all__ = ["add_parser", "run"]
 
 
 def _positive_int(option: str, allow_zero: bool = False):
-    def parse(text: str) -> int:
-        try:
-            value = int(text)
-        except ValueError:
-            raise StudyError([f"{option}: expected a whole number, got {text!r}"]) from None
-        if value < (0 if allow_zero else 1):
-            need = ">= 0" if allow_zero else ">= 1"
-            raise StudyError([f"{option}: must be {need}, got {value}"])
-        return value
-
-    parse.__name__ = "whole number"
-    return parse
+    return whole_number_type(option, 0 if allow_zero else 1)
 
 
 def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
