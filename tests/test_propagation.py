@@ -317,3 +317,37 @@ def test_trace_asks_the_dispersion_for_its_path_and_reads_its_rayleigh_speed():
     np.testing.assert_allclose(tr2.entry_reflection, (2.0 / 4.0) ** 2, rtol=1e-12)
     assert toy.paths == [WKB_PATH, None, WKB_PATH]
     assert WKB_PATH == RowPath((0, 1))
+
+
+def test_march_follows_a_branch_across_the_rayleigh_line_by_continuity():
+    """Issue 13 item 2: one physical branch is labelled ``lower`` (K > kR) on one side of a rod
+    anti-resonance and ``upper`` (K < kR) on the other. Synthetic lossless modes: branch 0 at
+    K = 1.001 kR in cells 0-4, branch 1 at 0.999 kR in cells 5-9. The march continues across
+    (transmitted = 1 - entry step; the label-following march turned the wave at cell 5 and
+    reflected everything); a jump to 0.9 kR is a different branch and still turns the wave."""
+    from types import SimpleNamespace
+
+    from optgrade.propagation import march
+
+    cr, f = 2900.0, 150e3
+    kr = 2 * np.pi * f / cr
+    n = 10
+    x = np.arange(n) * 8e-3
+    a = np.full(n, 8e-3)
+    for k_upper, continues in ((0.999 * kr, True), (0.9 * kr, False)):
+        k = np.full((2, n, 1), np.nan + 0j)
+        k[0, :5, 0] = 1.001 * kr
+        k[1, 5:, 0] = k_upper
+        shares = np.zeros((2, 5, n, 1))
+        shares[:, 4] = 1.0
+        angle = np.full((2, 4, n, 1), np.nan)
+        tr = march(SimpleNamespace(k=k, shares=shares, angle=angle), x, a, np.array([f]), cr)
+        entry = float(tr.entry_reflection[0])
+        if continues:
+            assert abs(tr.fractions["transmitted_surface"][0] - (1 - entry)) < 1e-12
+            assert np.isnan(tr.turning_position[0])
+        else:
+            assert tr.fractions["transmitted_surface"][0] == 0.0
+            assert abs(tr.fractions["reflected_surface"][0] - 1.0) < 1e-12
+            assert abs(tr.turning_position[0] - x[5]) < 1e-15
+        assert tr.branch[0] == 0

@@ -151,6 +151,41 @@ def _rows(study, rng, n=60):
     return rows
 
 
+def _continuity_path(k, order=(0, 1)):
+    """(path, tried, ended) boolean masks of shape k.shape: the points the march follows (entry
+    branch, lower first; the other branch from a cell where the followed one has no root and
+    the other's K' is within SWITCH_TOL of the last one) and the points tried where the
+    followed branch ends (both branches of that cell; ``ended``: the followed one there, which
+    has no root). Written from the rule in
+    optgrade/dispersion/_modes.py, independently of the kernel's and the march's code."""
+    from optgrade.dispersion._modes import SWITCH_TOL
+
+    path = np.zeros(k.shape, dtype=bool)
+    tried = np.zeros(k.shape, dtype=bool)
+    ended = np.zeros(k.shape, dtype=bool)
+    n_cells, n_freq = k.shape[1], k.shape[2]
+    for f in range(n_freq):
+        first, second = order
+        br = first if np.isfinite(k[first, 0, f]) else (
+            second if np.isfinite(k[second, 0, f]) else -1)
+        if br < 0:
+            continue
+        for j in range(n_cells):
+            if np.isfinite(k[br, j, f]):
+                path[br, j, f] = True
+                continue
+            tried[:, j, f] = True
+            ended[br, j, f] = True
+            other = k[1 - br, j, f]
+            prev = k[br, j - 1, f].real if j > 0 else np.nan
+            if j > 0 and np.isfinite(other) and abs(other.real - prev) <= SWITCH_TOL * abs(prev):
+                br = 1 - br
+                path[br, j, f] = True
+                continue
+            break
+    return path, tried, ended
+
+
 @pytest.mark.parametrize("which", ["bench", "site"])
 def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
     """The WKB march's row request (``WKB_PATH``) solves only the points the march reads (the
@@ -175,28 +210,22 @@ def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
         assert np.array_equal(t_full.turning_position, t_part.turning_position, equal_nan=True)
         for c in CHANNELS:
             assert np.allclose(t_full.fractions[c], t_part.fractions[c], rtol=0, atol=1e-8), c
-        # the points the march reads: the followed branch on the path, turning cell included
-        br = np.maximum(t_full.branch, 0)
-        kb = np.take_along_axis(full.k, br[None, None, :].repeat(60, axis=1), axis=0)[0]
-        kp = np.take_along_axis(part.k, br[None, None, :].repeat(60, axis=1), axis=0)[0]
-        ok = np.isfinite(kb)
-        on_path = (np.cumprod(ok, axis=0) > 0) & (t_full.branch >= 0)[None, :]
-        assert np.all(np.isfinite(kp[on_path]))
-        assert np.max(np.abs(kp[on_path] - kb[on_path]) / np.abs(kb[on_path])) < 1e-6
-        # and nothing else: the other branch only at the entry cell, nothing past the turn
-        read = np.zeros(full.k.shape, dtype=bool)
-        read[br, :, np.arange(freq.size)] = on_path.T
+        # the points the march reads: the followed branch on the path (switching to the other
+        # branch where it continues the followed one, SWITCH_TOL), plus at every cell where
+        # the followed branch ends both branches (the other one is tried there)
+        path, tried, ended = _continuity_path(full.k)
+        kp, kb = part.k[path], full.k[path]
+        assert np.all(np.isfinite(kp))
+        assert np.max(np.abs(kp - kb) / np.abs(kb)) < 1e-6
+        read = path | tried
         read[:, 0, :] = True
         assert not (np.isfinite(part.k) & ~read).any()
-        # solved: those and the turning cell, whose status says it has no root
-        n_on = on_path.sum(axis=0)
-        turn = (t_full.branch >= 0) & (n_on < 60)
-        read[br[turn], n_on[turn], np.flatnonzero(turn)] = True
         assert np.all(part.status[~read] == NOT_SOLVED)
-        assert np.all(part.status[br[turn], n_on[turn], np.flatnonzero(turn)] == ABSENT)
+        # where the followed branch ends it was solved and has no root (the other branch is
+        # tried there too, except where kR reaches the zone edge and nothing is solved)
+        assert np.all(part.status[ended] == ABSENT)
         both = read & part.is_solved
         assert np.array_equal(part.status[both], full.status[both])
-        assert part.is_solved[br, :, np.arange(freq.size)].T[on_path].all()
         n_full += int(np.isfinite(full.k).sum())
         n_path += int(np.isfinite(part.k).sum())
     assert n_path < 0.7 * n_full
@@ -369,8 +398,9 @@ def test_status_says_which_points_are_roots(site_sur):
 def test_row_request_follows_the_callers_entry_order(bench_sur):
     """A row request with the upper branch first (``RowPath((1, 0))``): at the entry cell
     branch 1 is solved at every frequency and branch 0 only where branch 1 has no root; along
-    the row the followed branch is solved up to and including its first cell without a root,
-    equal to the full solve within 1e-6 (relative), and nothing else is solved."""
+    the row the followed branch is solved up to and including its first cell without a root
+    (there the other branch is tried too, and followed where it continues the first,
+    SWITCH_TOL), equal to the full solve within 1e-6 (relative), and nothing else is solved."""
     study, sur = bench_sur
     # the entry rod (8 mm) has the upper branch over part of the band, the lower over the rest
     h = np.linspace(8e-3, study.layout.height[1], 60)
@@ -382,12 +412,8 @@ def test_row_request_follows_the_callers_entry_order(bench_sur):
     upper_at_entry = np.isfinite(full.k[1, 0])
     assert upper_at_entry.any() and (~upper_at_entry).any()
     assert np.array_equal(part.is_solved[0, 0], ~upper_at_entry)
-    br = np.where(upper_at_entry, 1, np.where(np.isfinite(full.k[0, 0]), 0, -1))
-    expected = np.zeros(full.k.shape, dtype=bool)
-    for j in np.flatnonzero(br >= 0):
-        ok = np.isfinite(full.k[br[j], :, j])
-        n = int(np.argmin(ok)) + 1 if not ok.all() else ok.size
-        expected[br[j], :n, j] = True
+    path, tried, _ = _continuity_path(full.k, order=(1, 0))
+    expected = path | tried
     expected[:, 0] |= part.is_solved[:, 0]
     assert np.array_equal(part.is_solved, expected)
     on = expected & np.isfinite(full.k)

@@ -69,7 +69,7 @@ from optgrade.dispersion._kernel_roots import (
     scan_bracket,
 )
 from optgrade.dispersion._kernel_sums import _blend_column, _ff2_re, _same_blend
-from optgrade.dispersion._modes import ABSENT, FIRST_ORDER, ROOT
+from optgrade.dispersion._modes import ABSENT, FIRST_ORDER, ROOT, SWITCH_TOL
 from optgrade.ground._halfspace import compliance_im_at, shear_share_at
 from optgrade.resonators._rod import rod_parts_at
 
@@ -158,6 +158,19 @@ def solve_grid(w_arr, cells, ground, lattice, tables, out, entry_order):
                     _channel_split(
                         br, ic, jf, pt, total, ground, b, radius, model, coef, n_main, k_out,
                         shares_out, angle_out, parts, best,
+                    )
+            if is_row and ic > 0 and math.isnan(k_out[path_br[jf], ic, jf].real):
+                # the followed branch ends here: the other one may continue it (a branch
+                # crossing the Rayleigh line changes label, `_advance_path`)
+                other = 1 - path_br[jf]
+                is_stored, total = _solve_branch(
+                    other, ic, jf, pt, table, cont, cnt, ground, lattice, b, radius, model,
+                    coef, n_main, k0, dk, k_out, status_out
+                )
+                if is_stored:
+                    _channel_split(
+                        other, ic, jf, pt, total, ground, b, radius, model, coef, n_main,
+                        k_out, shares_out, angle_out, parts, best,
                     )
             if is_row:
                 _advance_path(ic, jf, k_out, entry_order, path_br, path_on)
@@ -250,7 +263,15 @@ def _advance_path(ic, jf, k, entry_order, path_br, path_on):
                 return
         path_on[jf] = False
     elif math.isnan(k[path_br[jf], ic, jf].real):
-        path_on[jf] = False
+        # continue on the other branch where its K' is within SWITCH_TOL of the last one
+        # (the march's `_follow_by_continuity` applies the same rule)
+        other = 1 - path_br[jf]
+        prev = k[path_br[jf], ic - 1, jf].real
+        ko = k[other, ic, jf].real
+        if not math.isnan(ko) and abs(ko - prev) <= SWITCH_TOL * abs(prev):
+            path_br[jf] = other
+        else:
+            path_on[jf] = False
 
 
 @njit(cache=True, inline="always")

@@ -34,6 +34,12 @@ ABSENT = 0  # solved, no root on this branch (local gap, or an overdamped root d
 ROOT = 1  # a root of the dispersion relation (Newton converged and accepted, or exact real)
 FIRST_ORDER = 2  # first-order estimate K'' = -Im D / Re D' (near a branch point)
 
+#: A row request (and the march) continues on the other branch where the followed one has no
+#: root and the other's K' is within this relative change of the last cell's: one physical
+#: branch changes its label (slower / faster than Rayleigh) where it crosses the Rayleigh line
+#: at a rod anti-resonance (issue 13 item 2, docs/physics.md section 11.3).
+SWITCH_TOL = 0.02
+
 
 @dataclass(frozen=True)
 class LocalModes:

@@ -62,7 +62,7 @@ from numba import njit
 from numpy.typing import ArrayLike
 
 from optgrade.channels import CHANNELS
-from optgrade.dispersion._modes import Dispersion, RowPath
+from optgrade.dispersion._modes import SWITCH_TOL, Dispersion, RowPath
 from optgrade.layout import Layout
 from optgrade.propagation._base import PROPAGATION_MODELS, PropagationModel, study_frequencies
 from optgrade.propagation._trace import Trace
@@ -134,6 +134,7 @@ def march(
             f"{(2, 5, n_cells, n_freq)}/{(2, 4, n_cells, n_freq)}"
         )
 
+    k, shares, angle = _follow_by_continuity(k, shares, angle)
     out = _march_kernel(k, shares, angle, x, a, freq, float(cr))
     fr, pos, ang, eps_max, branch, x_turn, entry, phase = out
     fractions = {c: fr[i] for i, c in enumerate(CHANNELS)}
@@ -172,6 +173,46 @@ def _path_of(k, f):
             break
         n_path += 1
     return br, n_path
+
+
+@njit(cache=True)
+def _follow_by_continuity(k, shares, angle):
+    """Branches followed by continuity in K, not by label.
+
+    The labels ``lower`` / ``upper`` mean "slower / faster than Rayleigh"; one physical branch
+    changes label where it crosses the Rayleigh line (at a rod anti-resonance, where Z = 0 and
+    K = kR). Where the followed branch has no root at a cell but the other one has, with K'
+    within ``SWITCH_TOL`` of the previous cell's, the wave continues on it: its data are moved
+    into the followed slot from there on (the two slots swap), so the march reads one
+    continuous branch. Copies; the input is not changed."""
+    k = k.copy()
+    shares = shares.copy()
+    angle = angle.copy()
+    n_cells, n_freq = k.shape[1], k.shape[2]
+    for f in range(n_freq):
+        br, n_path = _path_of(k, f)
+        while br >= 0 and 0 < n_path < n_cells:
+            j = n_path
+            prev = k[br, j - 1, f].real
+            other = k[1 - br, j, f]
+            if not (math.isfinite(other.real) and math.isfinite(other.imag)):
+                break
+            if abs(other.real - prev) > SWITCH_TOL * abs(prev):
+                break
+            for jj in range(j, n_cells):
+                t = k[br, jj, f]
+                k[br, jj, f] = k[1 - br, jj, f]
+                k[1 - br, jj, f] = t
+                for c in range(shares.shape[1]):
+                    v = shares[br, c, jj, f]
+                    shares[br, c, jj, f] = shares[1 - br, c, jj, f]
+                    shares[1 - br, c, jj, f] = v
+                for c in range(angle.shape[1]):
+                    v = angle[br, c, jj, f]
+                    angle[br, c, jj, f] = angle[1 - br, c, jj, f]
+                    angle[1 - br, c, jj, f] = v
+            br, n_path = _path_of(k, f)
+    return k, shares, angle
 
 
 @njit(cache=True)
