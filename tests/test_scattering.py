@@ -427,8 +427,9 @@ def test_site_cell_long_row_confirms_each_variant(model):
     33-38 Hz, fast root at 40 Hz; lattice: one bound root slightly faster than Rayleigh at every
     frequency). The exact row model of a long uniform row of such posts (no Bloch roots, no
     branch labels; an independent solution of the same idealisation) reproduces each variant's
-    own answer: K' within 2e-3 relative where the variant has a root (measured 1.1e-3 at most), an evanescent wave with no
-    transmission where the line variant has its gap, transmission above 0.5 for the lattice."""
+    own answer: K' within 2e-3 relative where the variant has a root (measured 1.1e-3 at
+    most), an evanescent wave with no transmission where the line variant has its gap,
+    transmission above 0.5 for the lattice."""
     from pathlib import Path
 
     from optgrade.dispersion import direct_local_modes
