@@ -13,7 +13,6 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
-from types import SimpleNamespace
 
 HERE = Path(__file__).resolve().parent
 STUDY_DIRS = (HERE.parent / "studies", HERE / "studies")
@@ -31,7 +30,7 @@ def main(argv: list[str] | None = None) -> int:
     from optgrade.layout import read_table
     from optgrade.propagation import propagation_model
     from optgrade.study import load_study
-    from optgrade.verdict import verdict
+    from optgrade.verdict import verdict, verdict_of_fractions
 
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("dir", type=Path)
@@ -49,9 +48,8 @@ def main(argv: list[str] | None = None) -> int:
         v_ex = verdict(study, layout, ex)
         cells = [f"{v_ex.wanted.mean():.3f}, {int(v_ex.meets.sum())}/{v_ex.meets.size}"]
         if ver.status == "ok":
-            fw = SimpleNamespace(frequency=ver.frequency, fractions=ver.fractions,
-                                 propagation="full-wave")
-            v_fw = verdict(study, layout, fw)
+            v_fw = verdict_of_fractions(study, layout, ver.frequency, ver.fractions,
+                                        "full-wave")
             cells.append(f"{v_fw.wanted.mean():.3f}, {int(v_fw.meets.sum())}/{v_fw.meets.size}")
         else:
             cells.append("-")

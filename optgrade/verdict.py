@@ -159,6 +159,16 @@ def binding_limits(study: Study, layout: Layout) -> list[BindingLimit]:
     return out
 
 
+def verdict_of_fractions(study: Study, layout: Layout, frequency: np.ndarray,
+                         fractions: dict[str, np.ndarray], propagation: str) -> Verdict:
+    """The verdict on channel fractions that do not come as a `Trace` (the full-wave check's
+    own split): the same judgement as `verdict`."""
+    from types import SimpleNamespace
+
+    return verdict(study, layout, SimpleNamespace(frequency=frequency, fractions=fractions,
+                                                  propagation=propagation))
+
+
 def verdict(study: Study, layout: Layout, trace: Trace) -> Verdict:
     """The verdict on ``layout`` from its ``trace`` (any propagation model)."""
     from optgrade.objectives import wanted_fraction

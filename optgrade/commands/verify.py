@@ -179,13 +179,9 @@ def _verdict_of(study: Study, layout: Layout, ver: Any) -> Any:
     the run failed its self-checks (a failed run is not a result)."""
     if ver.status != "ok" or ver.fractions is None:
         return None
-    from types import SimpleNamespace
+    from optgrade.verdict import verdict_of_fractions
 
-    from optgrade.verdict import verdict
-
-    fw_trace = SimpleNamespace(frequency=ver.frequency, fractions=ver.fractions,
-                               propagation="full-wave 2-D")
-    return verdict(study, layout, fw_trace)
+    return verdict_of_fractions(study, layout, ver.frequency, ver.fractions, "full-wave 2-D")
 
 
 def _say_channels(say: Any, ver: Any) -> None:

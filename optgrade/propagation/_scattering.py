@@ -318,23 +318,26 @@ class _RowGeometry:
     def solve(self, compliance: np.ndarray, row_pitch: float, *,
               per_resonator: bool) -> dict[str, np.ndarray]:
         """`solve_row` for one set of base compliances (n_freq, n) on these positions."""
-        tables, x, jj, kk = self.tables, self.x, self.jj, self.kk
+        tables = self.tables
         c = np.ascontiguousarray(compliance)
-        n = x.size
-        w = tables.omega
-        n_f = w.size
+        n = self.x.size
+        n_f = tables.omega.size
         if c.shape != (n_f, n):
             raise ValueError(f"compliance: shape {c.shape}, expected {(n_f, n)}")
-        pc = tables.pole
-        res, skr = pc.res, pc.s_kr
-        tab = tables.table
-        ph, iph = self.ph, self.iph
-        m = np.empty((n_f, n, n), dtype=complex)
-        _fill(self.g_pairs, np.asarray(tab[0, 0]), jj, kk, row_pitch * c, ph, iph,
-              1j * res * skr * skr, m)
-        rhs = skr[:, None] * ph.T
+        m = self._matrix(c, row_pitch)
+        rhs = tables.pole.s_kr[:, None] * self.ph.T
         forces = np.linalg.solve(m, rhs[..., None])[..., 0]
         return self._channels(forces, c, row_pitch, per_resonator)
+
+    def _matrix(self, c: np.ndarray, row_pitch: float) -> np.ndarray:
+        """Foldy matrices (n_freq, n, n) for base compliances c (n_freq, n) on these
+        positions: diag(b c) minus the couplings (`_fill`)."""
+        tables, n = self.tables, self.x.size
+        pc = tables.pole
+        m = np.empty((tables.omega.size, n, n), dtype=complex)
+        _fill(self.g_pairs, np.asarray(tables.table[0, 0]), self.jj, self.kk, row_pitch * c,
+              self.ph, self.iph, 1j * pc.res * pc.s_kr * pc.s_kr, m)
+        return m
 
     def solve_near(self, compliances: list[np.ndarray], nominal: np.ndarray,
                    row_pitch: float, *, tol: float = 1e-12,
@@ -347,14 +350,12 @@ class _RowGeometry:
         settled to ``tol`` (relative change of the forces) after ``max_iter`` steps is solved
         directly, so every result is as good as `solve`'s. Returns the solutions and the count
         of directly solved frequencies (``"direct"``) over all draws (``"total"``)."""
-        tables, x, jj, kk = self.tables, self.x, self.jj, self.kk
+        tables = self.tables
         c0 = np.ascontiguousarray(nominal)
-        n = x.size
+        n = self.x.size
         n_f = tables.omega.size
         pc = tables.pole
-        m = np.empty((n_f, n, n), dtype=complex)
-        _fill(self.g_pairs, np.asarray(tables.table[0, 0]), jj, kk, row_pitch * c0, self.ph,
-              self.iph, 1j * pc.res * pc.s_kr * pc.s_kr, m)
+        m = self._matrix(c0, row_pitch)
         m_inv = np.linalg.inv(m)
         rhs = (pc.s_kr[:, None] * self.ph.T)[..., None]
         f0 = (m_inv @ rhs)[..., 0]
