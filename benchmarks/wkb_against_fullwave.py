@@ -2,7 +2,7 @@
 
 Run by hand (not in CI; a few minutes on two shared cores):
 
-    python benchmarks/wkb_against_fullwave.py [--quality fast|normal] [--json FILE]
+    python benchmarks/wkb_against_fullwave.py [--quality fast|normal] [--json FILE] [--case NAME]
 
 For each layout: the band-mean |WKB - full-wave| per channel (the WKB trace of the 2-D line
 model, ``trace_study`` with the line surrogate), the same for the exact row model, and how well
@@ -101,6 +101,8 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quality", default="fast", choices=["fast", "normal"])
     p.add_argument("--json", metavar="FILE")
+    p.add_argument("--case", action="append", choices=[c.name for c in CASES],
+                   help="run only this layout (repeatable; default: all)")
     args = p.parse_args(argv)
     from optgrade.fullwave import _kernel
 
@@ -110,6 +112,8 @@ def main(argv: list[str] | None = None) -> int:
           "| flagged by disagreement | flagged by eps |")
     print("| --- | --- | --- | --- | --- | --- |")
     for case in CASES:
+        if args.case and case.name not in args.case:
+            continue
         r = run_case(case, args.quality)
         rows.append(r)
         print(f"| {case.name} | {r['wkb_worst_channel']:.3f} | {r['exact_worst_channel']:.3f} | "

@@ -469,3 +469,63 @@ def test_site_cell_long_row_confirms_each_variant(model):
             assert abs(k_est.imag) * a > 0.01 and transmitted < 1e-3, (i, k_est, transmitted)
         if model == "lattice":
             assert np.isfinite(k_ref) and transmitted > 0.5
+
+
+@pytest.mark.parametrize(
+    ("height", "freqs_khz"), [(4e-3, (179.5, 185.0, 215.0)), (8e-3, (200.0,))]
+)
+def test_grating_regime_root_matches_long_row(height, freqs_khz):
+    """Issue 13 item 1: where the spacing exceeds a Rayleigh wavelength (kR >= 2 pi / a; bench
+    substrate, 16 mm spacing, above about 180 kHz) the surface wave travels on the folded
+    harmonic and leaks through it; the band solver returned no root there (a false gap, total
+    reflection in the march). Reference: the exact row model of 60 identical pins (an
+    independent solution of the same idealisation, no Bloch roots). Where the band solver has
+    a root, K' (compared modulo 2 pi / a, the only thing a row of forces can tell) within 1e-4
+    of the unfolded K' (measured 9e-6 at most) and K'' within 10 % (measured 0.1-0.3 %,
+    24 % on 4 mm at 185 kHz where K'' L = 0.02 is too small for the 60-pin estimate: K'' is
+    checked only where K'' L > 0.05), and the row transmits more than half; the one frequency
+    without a root, 179.5 kHz (the second Bragg gap, K a = 2 pi, 179.0-180.3 kHz on this cell),
+    is evanescent in the row too (K'' a > 0.01, reflected > 0.5)."""
+    from pathlib import Path
+
+    from optgrade.dispersion import direct_local_modes
+    from optgrade.ground import ground_of
+    from optgrade.layout import layout_from_cells
+    from optgrade.propagation._scattering import _compliance, _RowGeometry, tables_for_study
+    from optgrade.resonators import resonator_of
+    from optgrade.study import load_study
+
+    s = load_study(Path(__file__).resolve().parents[1] / "studies" / "bench_backward_shear.toml")
+    s = s.model_copy(update={
+        "layout": s.layout.model_copy(update={"count": (2, 200), "max_length": 2.0})})
+    a, n = 16e-3, 60
+    freq = np.array(freqs_khz) * 1e3
+    lay = layout_from_cells(np.full(n, height), np.full(n, a), s.resonator.diameter, 0.0, 0.01)
+    rod = resonator_of(s)
+    tab = tables_for_study(s, lay, freq, model="lattice", cache_dir=False)
+    sol = _RowGeometry.of(tab, lay.x).solve(_compliance(rod, tab, lay),
+                                            float(s.resonator.row_pitch), per_resonator=False)
+    ref = direct_local_modes(ground_of(s), rod, float(s.resonator.row_pitch), height, a, 0.0,
+                             freq)
+    g = 2 * np.pi / a
+    kr = 2 * np.pi * freq / ground_of(s).cr
+    assert np.all(kr * a / (2 * np.pi) > 0.99)  # at or beyond the grating condition
+    length = a * (n - 1)
+    for i in range(freq.size):
+        roots = ref.k[:, 0, i][np.isfinite(ref.k[:, 0, i])]
+        k_est = _bloch_from_forces(sol["forces"][i], a)
+        k_est = complex(k_est.real, abs(k_est.imag))
+        transmitted, reflected = sol["fractions"][0, i], sol["fractions"][1, i]
+        if roots.size == 0:
+            assert freqs_khz[i] == 179.5
+            assert k_est.imag * a > 0.01 and reflected > 0.5, (k_est, reflected)
+            continue
+        assert roots.size == 1
+        k_ref = roots[0]
+        assert k_ref.real > kr[i] * 0.9  # stored unfolded, next to kR
+        folded = k_ref.real % g
+        k_cmp = min((folded, g - folded), key=lambda k: abs(k - k_est.real))
+        assert abs(k_est.real - k_cmp) <= 1e-4 * k_ref.real, (freq[i], k_est, k_ref)
+        if k_ref.imag * length > 0.05:
+            assert abs(k_est.imag - k_ref.imag) <= 0.1 * k_ref.imag, (freq[i], k_est, k_ref)
+        assert transmitted > 0.5, (freq[i], transmitted)

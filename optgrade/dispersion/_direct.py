@@ -25,6 +25,9 @@ Branches (K in the extended zone 0 < K < 2 pi/a, so that a wave running in +x ha
   main harmonic, or to 1e-3 kR); above the rod resonance it emerges from the shear line and is
   leaky forward while K' < kT. Under heavy mass loading it can also exist just below the
   resonance.
+* grating regime (kR >= 2 pi/a, lattice and line variants): both branches are searched about
+  the folded pole kR_red = kR - 2 pi m_r/a of harmonic m_r = floor(kR a/2 pi) (`folded_order`)
+  and stored unfolded, K = K_red + 2 pi m_r/a (docs/physics.md section 5.4).
 
 Roots are found by scanning outwards from the Rayleigh pole (points clustered near the pole) for
 the first sign change of Re D times the pole factors of the bracket ends (pole-free), then
@@ -170,41 +173,58 @@ def _main_derivative(K, w, a, substrate, b, r, model, n_main):
 RestFn = Callable[..., tuple[np.ndarray, np.ndarray]]
 
 
-def _pole_free(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
-    """D(K) R_0(K): dispersion function times the ground's pole function at the m = 0 harmonic
-    (the Rayleigh function for the half-space), so no m = 0 pole."""
+def _pole_free(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main, shift=0.0):
+    """D(K) R(K + shift): dispersion function times the ground's pole function (the Rayleigh
+    function for the half-space) at the harmonic that carries the nearby Rayleigh pole: m = 0
+    (shift 0), or in the grating regime the folded harmonic m_r (shift = 2 pi m_r / a), so no
+    pole there."""
     d = iz - main_terms(K, w, a, sub, b, r, model, n_main) - (r0 + (K - k_re) * dr0)
-    return d * sub.pole_function(K, w)
+    return d * sub.pole_function(K + shift, w)
 
 
-def _newton_step(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main):
+def _newton_step(K, k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main, shift=0.0):
     h = 1e-6 * np.pi / a
-    args = (k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main)
+    args = (k_re, w, a, iz, r0, dr0, sub, b, r, model, n_main, shift)
     f0 = _pole_free(K, *args)
     f1 = _pole_free(K + h, *args)
     with np.errstate(divide="ignore", invalid="ignore"):
         return f0 / ((f1 - f0) / h)
 
 
-def _pole_bounds(kr, g, n_main, is_homog):
-    """Nearest Rayleigh poles of the main harmonics below and above kR in (0, 2 pi/a).
+def folded_order(kr, g, is_homog):
+    """The harmonic m_r that carries the forward Rayleigh pole inside the extended zone:
+    K + 2 pi m_r / a = kR with 0 <= K < 2 pi / a, i.e. m_r = floor(kR a / 2 pi) (0 below the
+    grating regime kR >= 2 pi / a; always 0 for the homogenised model, whose zone ends at
+    pi / a). Returns (m_r, kR_red = kR - m_r 2 pi / a), the pole the branches start from."""
+    kr = np.asarray(kr, dtype=float)
+    if is_homog:
+        m_r = np.zeros(kr.shape)
+    else:
+        m_r = np.floor(kr / g)
+    return m_r, kr - m_r * g
 
-    Returns (p_lo, p_hi): nan where there is none (then the bracket ends at 1e-3 kR, resp. at
-    pi/a (homogenised) or 2 pi/a).
+
+def _pole_bounds(kr, g, n_main, is_homog, m_r=None):
+    """Nearest Rayleigh poles of the main harmonics below and above the folded Rayleigh pole
+    kR_red = kR - m_r 2 pi / a (`folded_order`) in (0, 2 pi/a).
+
+    Returns (p_lo, p_hi): nan where there is none (then the bracket ends at 1e-3 kR_red, resp.
+    at pi/a (homogenised) or 2 pi/a).
     """
     p_lo = np.full(kr.shape, np.nan)
     p_hi = np.full(kr.shape, np.nan)
     if is_homog:
         return p_lo, p_hi
+    if m_r is None:
+        m_r = np.zeros(kr.shape)
+    kr_red = kr - m_r * g
     for m in range(-n_main, n_main):
         for sgn in (1.0, -1.0):
-            if m == 0 and sgn == 1.0:
-                continue
             p = sgn * kr - m * g
-            inside = (p > 0) & (p < g)
-            above = inside & (p > kr) & ~(p >= p_hi)
+            inside = (p > 0) & (p < g) & ~((m == m_r) & (sgn == 1.0))
+            above = inside & (p > kr_red) & ~(p >= p_hi)
             p_hi = np.where(above, p, p_hi)
-            below = inside & (p < kr) & ~(p <= p_lo)
+            below = inside & (p < kr_red) & ~(p <= p_lo)
             p_lo = np.where(below, p, p_lo)
     return p_lo, p_hi
 
@@ -253,7 +273,12 @@ def solve_points(
     kr = w / substrate.cr
     g = 2.0 * np.pi / a
     is_homog = model == "homogenised"
-    p_lo, p_hi = _pole_bounds(kr, g, n_main, is_homog)
+    # grating regime (kR >= 2 pi / a): the branches start from the folded Rayleigh pole of
+    # harmonic m_r; the roots are solved in the extended zone and stored unfolded,
+    # K = K_red + 2 pi m_r / a (the wavenumber of the harmonic that carries the surface wave)
+    m_r, kr_red = folded_order(kr, g, is_homog)
+    p_lo, p_hi = _pole_bounds(kr, g, n_main, is_homog, m_r)
+    shift = m_r * g
     out = {
         "k": np.full((2, n), np.nan + 0j),
         "shares": np.zeros((2, 5, n)),
@@ -271,10 +296,12 @@ def solve_points(
         f = f * np.where(pole_lo[sh], K - lo_s[sh], 1.0)
         return f * np.where(pole_hi[sh], hi_s[sh] - K, 1.0)
 
-    point = (w, a, inv_z, g)
+    point = (w, a, inv_z, g, shift)
     lattice = (substrate, lossless, b, r, model, n_main)
+    # the folded pole's harmonic must be a main one (closed form), else the Rest holds a pole
+    in_main = m_r <= n_main - 1
     for branch in (0, 1):
-        bounds = _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog)
+        bounds = _branch_bounds(branch, kr_red, g, p_lo, p_hi, is_homog, in_main)
         bracket = _scan_brackets(branch, bounds, h_of)
         if bracket is None:
             continue
@@ -285,12 +312,13 @@ def solve_points(
     return out
 
 
-def _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog):
-    """Real-axis bracket of a branch at every point: (lo, hi, pole_lo, pole_hi, valid). Branch
-    0 (lower, slow) lies between kR and the nearest harmonic pole above it (or the zone edge),
-    branch 1 (upper) between the nearest pole below kR (or 1e-3 kR) and kR; pole_lo / pole_hi
-    mark the ends that are poles; valid where the bracket is not empty and kR is inside the
-    zone (the homogenised model's zone edge is pi / a)."""
+def _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog, in_main=True):
+    """Real-axis bracket of a branch at every point: (lo, hi, pole_lo, pole_hi, valid), about
+    the (folded) Rayleigh pole kr. Branch 0 (lower, slow) lies between kr and the nearest
+    harmonic pole above it (or the zone edge), branch 1 (upper) between the nearest pole below
+    kr (or 1e-3 kr) and kr; pole_lo / pole_hi mark the ends that are poles; valid where the
+    bracket is not empty, kr is inside the zone (the homogenised model's zone edge is pi / a)
+    and the pole's harmonic is a main one (in_main)."""
     n = kr.size
     zone = 0.5 * g if is_homog else g
     if branch == 0:
@@ -303,7 +331,7 @@ def _branch_bounds(branch, kr, g, p_lo, p_hi, is_homog):
         lo = np.where(np.isfinite(p_lo), p_lo, 1e-3 * kr)
         pole_lo = np.isfinite(p_lo)
         pole_hi = np.ones(n, dtype=bool)
-    valid = (hi > lo * (1.0 + 1e-9)) & (kr < zone)
+    valid = (hi > lo * (1.0 + 1e-9)) & (kr < zone) & in_main
     return lo, hi, pole_lo, pole_hi, valid
 
 
@@ -374,10 +402,10 @@ def _complex_roots(k_re, sel, point, lattice, rest):
     loss factor), accepted where it converged without crossing a branch point of a radiating
     main harmonic and without growth; elsewhere the first-order estimate k_re - i Im D / Re D'.
     Returns (K with nan where dropped, is_first_order, main terms and Rest at k_re)."""
-    w, a, inv_z, g = point
+    w, a, inv_z, g, shift = point
     substrate, _, b, r, model, n_main = lattice
     orders = [0] if model == "homogenised" else list(range(-n_main, n_main))
-    w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
+    w_s, a_s, iz_s, sh_s = w[sel], a[sel], inv_z[sel], shift[sel]
     r0, dr0 = rest(k_re, sel)
     m0 = main_terms(k_re, w_s, a_s, substrate, b, r, model, n_main)
     dm0 = _main_derivative(k_re, w_s, a_s, substrate, b, r, model, n_main)
@@ -397,7 +425,9 @@ def _complex_roots(k_re, sel, point, lattice, rest):
         for _ in range(_N_NEWTON):
             # Newton on D(K) R_0(K): the Rayleigh function of the m = 0 harmonic removes
             # the nearby (loss-displaced) Rayleigh pole, widening Newton's basin
-            step = _newton_step(kk, k_re, w_s, a_s, iz_s, r0, dr0, sub_s, b, r, model, n_main)
+            step = _newton_step(
+                kk, k_re, w_s, a_s, iz_s, r0, dr0, sub_s, b, r, model, n_main, sh_s
+            )
             step = np.where(is_real, 0.0, step)
             kk = kk - step
     ok = np.isfinite(kk) & (np.abs(step) <= 1e-7 * np.abs(kk))
@@ -412,8 +442,8 @@ def _complex_roots(k_re, sel, point, lattice, rest):
     fo = ~ok
     # a first-order value with K'' < 0 (growth) is not a mode we can follow
     kk = np.where(fo & (kk.imag < 0), np.nan, kk)
-    # drop overdamped roots
-    keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real)
+    # drop overdamped roots (K'' beyond the unfolded K': no travelling wave)
+    keep = np.isfinite(kk) & (np.abs(kk.imag) <= kk.real + sh_s)
     return np.where(keep, kk, np.nan), fo, m0, r0
 
 
@@ -421,12 +451,12 @@ def _store_roots(out, branch, sel, kk, fo, m0, r0, point, lattice):
     """Store a branch's roots at points sel into out, with the channel split: each radiating
     main harmonic's part (`_channels`), the rest of Im(Sigma - 1/Z) absorbed; shares where
     K'' > 0, angles and the leaky flag where a bulk channel radiates."""
-    w, a, inv_z, _ = point
+    w, a, inv_z, _, shift = point
     substrate, lossless, b, r, model, n_main = lattice
     orders = [0] if model == "homogenised" else list(range(-n_main, n_main))
     w_s, a_s, iz_s = w[sel], a[sel], inv_z[sel]
     keep = np.isfinite(kk)
-    out["k"][branch, sel] = kk
+    out["k"][branch, sel] = kk + shift[sel]
     out["is_first_order"][branch, sel] = fo & keep
     sh, an = _channels(kk.real, w_s, a_s, substrate, lossless, b, r, model, orders)
     total = (m0 + r0 - iz_s).imag
@@ -520,7 +550,7 @@ def validity_warnings(
     """Model-validity warnings for a frequency band (plain sentences).
 
     * sideways radiation: 2 pi / b < kT (docs/physics.md section 5.8);
-    * grating regime: kR >= 2 pi / a (informational; more main harmonics are used);
+    * grating regime: kR >= 2 pi / a (informational; roots about the folded Rayleigh pole);
     * the resonator type's own notes (`Resonator.validity_notes`; for the axial rod: thin-rod
       theory stretched where d > lambda_r / 5, bending modes not represented).
     """
@@ -541,8 +571,9 @@ def validity_warnings(
     if model != "homogenised" and kr >= 2 * np.pi / spacing_max:
         out.append(
             f"spacing {_eng(spacing_max, 'm')} exceeds a Rayleigh wavelength at "
-            f"{_eng(freq_max, 'Hz')}: grating regime, several harmonics radiate (handled as "
-            "main harmonics)"
+            f"{_eng(freq_max, 'Hz')}: grating regime, the surface wave runs on a folded "
+            "harmonic and leaks into bulk waves through the others (roots found about the folded "
+            "Rayleigh pole)"
         )
     out.extend(rod.validity_notes(freq_max))
     return out

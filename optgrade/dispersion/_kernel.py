@@ -127,6 +127,7 @@ def solve_grid(w_arr, cells, ground, lattice, tables, out, entry_order):
         if not _same_blend(idx, wts, ic):
             is_blended[:] = False
         cont, cnt = _fresh_state()
+        m_last = 0  # the folded order at this cell's last frequency (grating regime)
         for jf in range(nf):
             if is_row and ic > 0 and not path_on[jf]:
                 continue
@@ -136,16 +137,26 @@ def solve_grid(w_arr, cells, ground, lattice, tables, out, entry_order):
                 table, is_blended,
             )
             kr = w / ground.cr
-            p_lo, p_hi = _main_poles(kr, g, model, n_main)
+            # grating regime (kR >= 2 pi / a): the branches start from the folded Rayleigh
+            # pole of harmonic m_r, are solved in the extended zone and stored unfolded
+            # (`optgrade.dispersion._direct.folded_order`)
+            m_r = 0 if model == 2 else int(math.floor(kr / g))
+            if m_r != m_last:
+                # the reduced roots jump: the continuation starts afresh
+                cont, cnt = _fresh_state()
+                m_last = m_r
+            kr_red = kr - m_r * g
+            p_lo, p_hi = _main_poles(kr, g, model, n_main, m_r)
             zone = 0.5 * g if model == 2 else g
             n_br = 2 if not is_row else (entry_order.size if ic == 0 else 1)
-            if kr >= zone:
+            if kr_red >= zone or m_r > n_main - 1:
                 path_on[jf] = False  # no root on either branch: the path ends here
                 for ib in range(n_br):
                     br = _branch_of(ib, ic, jf, is_row, entry_order, path_br)
                     status_out[br, ic, jf] = ABSENT
                 continue
-            pt = (w, iz, a, g, wi, wt, kr, p_lo, p_hi, zone, kl2_arr[jf], kt2_arr[jf])
+            pt = (w, iz, a, g, wi, wt, kr_red, p_lo, p_hi, zone, kl2_arr[jf], kt2_arr[jf],
+                  m_r * g)
             for ib in range(n_br):
                 br = _branch_of(ib, ic, jf, is_row, entry_order, path_br)
                 if is_row and ic == 0 and _entry_has_root(k_out, entry_order, ib, jf):
@@ -214,20 +225,22 @@ def _frequency_point(w, h, m, rod_root, rod_slowness, ic, rest, idx, wts, w0, dw
 
 
 @njit(cache=True, inline="always")
-def _main_poles(kr, g, model, n_main):
-    """Nearest poles of the main harmonics below / above kR in (0, 2 pi / a) (-1 where none)."""
+def _main_poles(kr, g, model, n_main, m_r):
+    """Nearest poles of the main harmonics below / above the folded Rayleigh pole
+    kR - 2 pi m_r / a in (0, 2 pi / a) (-1 where none)."""
     p_lo = -1.0
     p_hi = -1.0
+    kr_red = kr - m_r * g
     if model != 2:
         for m in range(-n_main, n_main):
             for sgn in (1.0, -1.0):
-                if m == 0 and sgn == 1.0:
+                if m == m_r and sgn == 1.0:
                     continue
                 p = sgn * kr - m * g
                 if p > 0.0 and p < g:
-                    if p > kr and (p_hi < 0.0 or p < p_hi):
+                    if p > kr_red and (p_hi < 0.0 or p < p_hi):
                         p_hi = p
-                    if p < kr and (p_lo < 0.0 or p > p_lo):
+                    if p < kr_red and (p_lo < 0.0 or p > p_lo):
                         p_lo = p
     return p_lo, p_hi
 
@@ -281,7 +294,7 @@ def _solve_branch(br, ic, jf, pt, table, cont, cnt, ground, lattice, b, radius, 
     then Illinois) and the complex K from it; stores K and its status (ABSENT where the branch
     has no root, or where its K is not finite, decays by more than K' or is a first-order
     estimate with K'' < 0). Returns (whether K was stored, Im(Sigma - 1/Z) at K')."""
-    w, iz, a, g, wi, wt, kr, p_lo, p_hi, zone, kl2, kt2 = pt
+    w, iz, a, g, wi, wt, kr, p_lo, p_hi, zone, kl2, kt2, shift = pt
     status_out[br, ic, jf] = ABSENT
     # the previous visits of this branch (every frequency unless a row request skips some)
     n_prev = cnt[br, N_VIS]
@@ -346,12 +359,13 @@ def _solve_branch(br, ic, jf, pt, table, cont, cnt, ground, lattice, b, radius, 
         k_re, iz, a, table, k0, dk, wi, wt, lattice, kl2, kt2, ground.mu_lossy
     )
     kk, is_first_order = complex_root(k_re, d0, dd0, w, iz, r0, dr0, a, g, lattice, ground,
-                                      kl2, kt2)
+                                      kl2, kt2, shift)
     if is_first_order and kk.imag < 0.0:
         return False, 0.0
-    if not (math.isfinite(kk.real) and math.isfinite(kk.imag)) or abs(kk.imag) > kk.real:
+    # overdamped (K'' beyond the unfolded K'): no travelling wave
+    if not (math.isfinite(kk.real) and math.isfinite(kk.imag)) or abs(kk.imag) > kk.real + shift:
         return False, 0.0
-    k_out[br, ic, jf] = kk
+    k_out[br, ic, jf] = kk + shift
     status_out[br, ic, jf] = FIRST_ORDER if is_first_order else ROOT
     return True, (m0 + r0 - iz).imag
 
@@ -363,11 +377,11 @@ def _channel_split(br, ic, jf, pt, total, ground, b, radius, model, coef, n_main
     (lossless substrate) split into shear and compressional (`shear_share_at`), forward where
     K' + 2 pi m / a > 0; the rest of total = Im(Sigma - 1/Z) at K' is absorbed. Shares are the
     parts over their sum where K'' > 0, else 0."""
-    w, a, g = pt[0], pt[2], pt[3]
+    w, a, g, shift = pt[0], pt[2], pt[3], pt[12]
     m_lo = 0 if model == 2 else -n_main
     m_hi = 1 if model == 2 else n_main
     kk = k_out[br, ic, jf]
-    kp = kk.real
+    kp = kk.real - shift  # the harmonics about the extended-zone root
     kl2r = (w / ground.cl) ** 2
     kt2r = (w / ground.ct) ** 2
     mu_re = ground.mu.real

@@ -123,9 +123,12 @@ def _inverse_quadratic(ka, ha, kb, hb, kc, hc):
 
 # -- complex Newton on D R_0 ----------------------------------------------------------------
 @njit(cache=True)
-def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
+def _pole_free(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0, shift):
+    """D(K) R(K + shift): the Rayleigh function at the harmonic that carries the nearby pole
+    (m = 0, or the folded harmonic in the grating regime, shift = 2 pi m_r / a)."""
     d = iz - _main(K, a, b, radius, model, kl2, kt2, mu, coef, n_main) - (r0 + (K - k_re) * dr0)
-    return d * rayleigh_at(K * K, kl2, kt2)
+    ks = K + shift
+    return d * rayleigh_at(ks * ks, kl2, kt2)
 
 @njit(cache=True)
 def _pole_free_d(K, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0):
@@ -194,16 +197,19 @@ def _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g):
 
 @njit(cache=True)
 def _newton(
-    kk, n_iter, tol, hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
+    kk, n_iter, tol, hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0,
+    shift=0.0,
 ):
     """Newton on the pole-free D(K) R_0(K) (see optgrade.dispersion._direct) from kk,
     forward-difference derivative (step hstep); stops when |step| <= tol |K|. Returns (K, last
     step)."""
     step = 0j
     for _ in range(n_iter):
-        f0 = _pole_free(kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0)
+        f0 = _pole_free(
+            kk, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0, shift
+        )
         f1 = _pole_free(
-            kk + hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0
+            kk + hstep, k_re, a, b, radius, model, kl2, kt2, mu, coef, n_main, iz, r0, dr0, shift
         )
         step = f0 / ((f1 - f0) / hstep)
         kk = kk - step
@@ -389,7 +395,7 @@ def analytic_newton(k_re, d0, dd0, iz, r0, dr0, a, lat, kl2, kt2, mu_lossy):
 
 
 @njit(cache=True)
-def difference_newton(kk, n_newton, k_re, w, iz, r0, dr0, a, lat, ground):
+def difference_newton(kk, n_newton, k_re, w, iz, r0, dr0, a, lat, ground, shift=0.0):
     """The difference-slope Newton (forward difference, step 1e-6 pi / a) from kk, over
     N_LOSS_STAGES stages of the substrate's loss factor. Returns (K, last step)."""
     b, radius, model, coef, n_main = lat
@@ -406,13 +412,13 @@ def difference_newton(kk, n_newton, k_re, w, iz, r0, dr0, a, lat, ground):
         if n_newton > 0:
             kk, step = _newton(
                 kk, n_newton, NEWTON_TOL, hstep, k_re, a, b, radius, model, kl2_s, kt2_s,
-                mu_s, coef, n_main, iz, r0, dr0,
+                mu_s, coef, n_main, iz, r0, dr0, shift,
             )
     return kk, step
 
 
 @njit(cache=True, inline="always")
-def complex_root(k_re, d0, dd0, w, iz, r0, dr0, a, g, lat, ground, kl2, kt2):
+def complex_root(k_re, d0, dd0, w, iz, r0, dr0, a, g, lat, ground, kl2, kt2, shift=0.0):
     """Complex Bloch wavenumber from the real-axis root k_re: the analytic Newton; where it is
     not accepted, the difference-slope Newton decides, but only where the analytic one missed
     the acceptance step by little (NEWTON_ACCEPT < |step|/|K| <= FD_RETRY: elsewhere both follow
@@ -432,7 +438,10 @@ def complex_root(k_re, d0, dd0, w, iz, r0, dr0, a, g, lat, ground, kl2, kt2):
         n_newton = 0  # lossless bound root: already exact on the real axis
     ok = False
     skip_fd = False
-    if n_newton > 0 and N_LOSS_STAGES == 1:
+    # the analytic Newton removes the m = 0 pole in closed form; in the grating regime
+    # (shift != 0) the nearby pole is the folded harmonic's: the difference Newton on
+    # D R(K + shift), as the direct solver
+    if n_newton > 0 and N_LOSS_STAGES == 1 and shift == 0.0:
         kk, step = analytic_newton(k_re, d0, dd0, iz, r0, dr0, a, lat, kl2, kt2, ground.mu_lossy)
         ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
         if not ok:
@@ -441,7 +450,7 @@ def complex_root(k_re, d0, dd0, w, iz, r0, dr0, a, g, lat, ground, kl2, kt2):
             kk = k_re + 0j
             step = 0j
     if not ok and not skip_fd:
-        kk, step = difference_newton(kk, n_newton, k_re, w, iz, r0, dr0, a, lat, ground)
+        kk, step = difference_newton(kk, n_newton, k_re, w, iz, r0, dr0, a, lat, ground, shift)
         ok = _newton_ok(kk, step, k_re, m_lo, m_hi, kt_s, kl_s, g)
     if ok:
         return kk, False

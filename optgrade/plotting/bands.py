@@ -75,12 +75,13 @@ def draw_band_diagram(ax, bands: Bands):
     sc = None
     for br, col in zip(bands.branches, _COLORS, strict=False):
         k = br.k
-        kp = k.real
+        # grating-regime roots are stored unfolded (K next to kR); drawn in the extended zone
+        kp = np.mod(k.real, g)
         finite = np.isfinite(k)
         ax.plot(np.where(finite & ~br.is_leaky, kp, np.nan), fs, color=col, lw=2.2)
         leaky = finite & br.is_leaky
         if leaky.any():
-            ratio = np.clip(k.imag[leaky] / kp[leaky], 1e-6, 1.0)
+            ratio = np.clip(k.imag[leaky] / k.real[leaky], 1e-6, 1.0)
             sc = ax.scatter(
                 kp[leaky], fs[leaky], c=np.log10(ratio), cmap="viridis_r", vmin=-6, vmax=0,
                 s=14, edgecolors=col, linewidths=0.6, zorder=3,
