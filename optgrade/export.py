@@ -12,8 +12,9 @@ Files of the set:
 ``table.csv``    machining table via :func:`optgrade.layout.write_table` (header: study name,
                  units, datum, material, date; plus trial, study hash and, at site scale, the
                  caution);
-``layout.dxf``   plan (rod footprints of a few rows at the row pitch) and elevation (rods and
-                 head masses), with dimensions, labels and layers (millimetres);
+``layout.dxf``   workshop drawing (`optgrade.drawing`): plan of a few rows at the row pitch,
+                 elevation with head masses, datums, hole table (every resonator's position,
+                 height, head mass, tolerance as in table.csv), title block (millimetres);
 ``sheet.png``    figure sheet: elevation, plan, channel map, fractions against frequency,
                  optimisation history, Pareto front (multi-objective) or a summary panel;
 ``result.json``  predicted performance by frequency and channel, objective values, study hash,
@@ -39,6 +40,7 @@ import numpy as np
 from optgrade import __version__, fabrication, objectives, profiles, search
 from optgrade._atomic import atomic_write
 from optgrade.study import SITE_CAUTION
+from optgrade.units import format_eng
 
 if TYPE_CHECKING:  # pragma: no cover
     import optuna
@@ -91,83 +93,33 @@ def _jsonable(obj: Any) -> Any:
 
 
 # ---------------------------------------------------------------------------------------------
-# DXF
+# DXF (optgrade.drawing)
 
 
-def write_dxf(layout: Layout, path: Path, *, row_pitch: float, title: str, n_rows: int = 3) -> Path:
-    """Plan and elevation drawing of a layout (mm) via ezdxf, written atomically.
+def _mm_text(value_m: float) -> str:
+    from optgrade.layout import _SCALE, _shortest
 
-    Layers: ``PLAN`` (footprint circles), ``ELEVATION`` (rods, surface line), ``HEAD_MASS``
-    (schematic head-mass blocks, 2 d wide, d high: the drawing does not know their shape),
-    ``DIMENSIONS``, ``TEXT``.
-    """
-    import ezdxf
+    return _shortest(float(value_m), _SCALE["x_mm"])
 
-    mm = 1e3
-    x = np.asarray(layout.x) * mm
-    h = np.asarray(layout.height) * mm
-    d = np.asarray(layout.diameter) * mm
-    m = np.asarray(layout.head_mass)
-    pitch = row_pitch * mm
-    doc = ezdxf.new("R2010", setup=True)
-    doc.units = ezdxf.units.MM
-    for name, colour in (("PLAN", 5), ("ELEVATION", 7), ("HEAD_MASS", 1), ("DIMENSIONS", 3),
-                         ("TEXT", 2)):
-        doc.layers.add(name, color=colour)
-    msp = doc.modelspace()
-    text_h = max(float(d.max()), float(x[-1] - x[0]) / 150.0)
-    # dimension text and arrows scaled with the drawing (the default 2.5 mm vanishes at site scale)
-    dim_style = {"dimtxt": 0.8 * text_h, "dimasz": 0.5 * text_h, "dimexo": 0.2 * text_h,
-                 "dimexe": 0.3 * text_h, "dimgap": 0.2 * text_h,
-                 "dimlfac": 1.0, "dimdec": 3}  # drawing units are mm, shown as mm
 
-    # plan: rows at y = 0, pitch, 2 pitch, ... (wave runs along +x)
-    for r in range(n_rows):
-        for xi, di in zip(x, d, strict=True):
-            msp.add_circle((xi, r * pitch), di / 2, dxfattribs={"layer": "PLAN"})
-    plan_top = (n_rows - 1) * pitch + d.max()
-    msp.add_text(f"PLAN ({n_rows} of the rows shown), wave enters at x = 0",
-                 height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(
-        (x[0], plan_top + 2 * text_h))
-    if n_rows > 1:
-        dim = msp.add_linear_dim(base=(x[0] - 3 * d.max(), pitch / 2), p1=(x[0], 0),
-                                 p2=(x[0], pitch), angle=90, dimstyle="EZDXF", override=dim_style,
-                                 dxfattribs={"layer": "DIMENSIONS"})
-        dim.render()
-    dim = msp.add_linear_dim(base=(0, -2 * d.max()), p1=(x[0], 0), p2=(x[1], 0),
-                             dimstyle="EZDXF", override=dim_style,
-                                 dxfattribs={"layer": "DIMENSIONS"})
-    dim.render()
+def write_dxf(study: Study, layout: Layout, path: Path, *, trial_number: int | None,
+              date: str) -> Path:
+    """The workshop drawing of ``layout`` (`optgrade.drawing.write_dxf`) with the study's title
+    block."""
+    from optgrade.drawing import TitleBlock
+    from optgrade.drawing import write_dxf as _draw
 
-    # elevation below the plan: surface line at y0, rods upwards
-    y0 = -(h.max() + 6 * text_h + 4 * d.max())
-    length = float(layout.x[-1] + (layout.x[-1] - layout.x[-2])) * mm
-    msp.add_line((x[0] - d.max(), y0), (x[0] + length, y0), dxfattribs={"layer": "ELEVATION"})
-    for j, (xi, hi, di, mj) in enumerate(zip(x, h, d, m, strict=True)):
-        msp.add_lwpolyline([(xi - di / 2, y0), (xi + di / 2, y0), (xi + di / 2, y0 + hi),
-                            (xi - di / 2, y0 + hi)], close=True,
-                           dxfattribs={"layer": "ELEVATION"})
-        if mj > 0:
-            msp.add_lwpolyline([(xi - di, y0 + hi), (xi + di, y0 + hi), (xi + di, y0 + hi + di),
-                                (xi - di, y0 + hi + di)], close=True,
-                               dxfattribs={"layer": "HEAD_MASS"})
-        if j % max(1, len(x) // 10) == 0 or j == len(x) - 1:
-            msp.add_text(f"{j}", height=text_h * 0.7, dxfattribs={"layer": "TEXT"}).set_placement(
-                (xi, y0 - 1.5 * text_h))
-    for j in (0, len(x) - 1):
-        dim = msp.add_linear_dim(base=(x[j] + (-3 if j == 0 else 3) * d.max(), y0),
-                                 p1=(x[j], y0), p2=(x[j], y0 + h[j]), angle=90,
-                                 dimstyle="EZDXF", override=dim_style,
-                                 dxfattribs={"layer": "DIMENSIONS"})
-        dim.render()
-    dim = msp.add_linear_dim(base=(0, y0 - 4 * text_h), p1=(x[0], y0), p2=(x[-1], y0),
-                             dimstyle="EZDXF", override=dim_style,
-                                 dxfattribs={"layer": "DIMENSIONS"})
-    dim.render()
-    msp.add_text(f"ELEVATION  {title}  (mm; resonator index below each labelled rod)",
-                 height=text_h, dxfattribs={"layer": "TEXT"}).set_placement(
-        (x[0], y0 - 7 * text_h))
-    return atomic_write(Path(path), lambda p: doc.saveas(p))
+    title = TitleBlock(
+        study=study.meta.name, trial=trial_number,
+        rod_material=study.resonator.material or "custom (see study file)",
+        substrate_material=study.substrate.material or "custom (see study file)",
+        diameter_mm=_mm_text(float(np.max(layout.diameter))),
+        row_pitch_mm=_mm_text(study.resonator.row_pitch),
+        height_tolerance_mm=_mm_text(study.fabrication.height_tolerance),
+        date=date, package=f"optgrade {__version__}",
+        caution=SITE_CAUTION if study.meta.scale == "site" else None,
+    )
+    return _draw(layout, path, row_pitch=study.resonator.row_pitch, title=title)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -340,8 +292,8 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     paths["table"] = Path(write_table(layout, out / "table.csv", study_name=study.meta.name,
                                       material=study.resonator.material or "custom",
                                       date=today, extra_header=header))
-    paths["dxf"] = write_dxf(layout, out / "layout.dxf", row_pitch=study.resonator.row_pitch,
-                             title=f"{study.meta.name} trial {trial_number}")
+    paths["dxf"] = write_dxf(study, layout, out / "layout.dxf", trial_number=trial_number,
+                             date=today.isoformat())
     summary = _summary_lines(study, trace, values, violations, score)
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
                                  pareto=pareto, summary=summary, trial_number=trial_number)
@@ -385,7 +337,7 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
     wanted = objectives.wanted_fraction(trace, study.goal.channel, layout, study)
     wanted = np.nan_to_num(wanted, nan=0.0)
     meets = wanted >= study.goal.required_fraction
-    h = np.asarray(layout.height) * 1e3
+    np.asarray(layout.height) * 1e3
     from optgrade.verdict import verdict
 
     judged = verdict(study, layout, trace)
@@ -397,18 +349,23 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         "",
         "ASKED",
         f"  send the incoming Rayleigh wave to: {study.goal.channel}",
-        f"  band {study.goal.band[0]:.6g} to {study.goal.band[1]:.6g} Hz, at least "
-        f"{study.goal.required_fraction:.0%} of the power at each frequency",
+        f"  band {format_eng(study.goal.band[0], 'Hz')} to {format_eng(study.goal.band[1], 'Hz')},"
+        f" at least {study.goal.required_fraction:.0%} of the power at each frequency",
         "",
         "LAYOUT",
-        f"  {layout.n_resonators} resonators over {layout.length * 1e3:.4g} mm, heights "
-        f"{h.max():.4g} to {h.min():.4g} mm, diameter {np.max(layout.diameter) * 1e3:.4g} mm, "
-        f"row pitch {study.resonator.row_pitch * 1e3:.4g} mm",
+        f"  {layout.n_resonators} resonators, {_mm_text(float(layout.x[-1]))} mm from the first to "
+        f"the last axis (the drawing's overall dimension; with the last cell the row takes "
+        f"{_mm_text(layout.length)} mm)",
+        f"  heights in table order {_mm_text(float(layout.height[0]))} to "
+        f"{_mm_text(float(layout.height[-1]))} mm (range {_mm_text(float(np.min(layout.height)))}"
+        f" to {_mm_text(float(np.max(layout.height)))} mm), diameter "
+        f"{_mm_text(float(np.max(layout.diameter)))} mm, row pitch "
+        f"{_mm_text(study.resonator.row_pitch)} mm",
         "",
         "PREDICTED (" + _MODEL_WORDS.get(trace.propagation,
                                          f"propagation model {trace.propagation!r}") + ")",
         f"  wanted fraction: mean {wanted.mean():.3f}, worst {wanted.min():.3f} at "
-        f"{f[int(np.argmin(wanted))]:.6g} Hz",
+        f"{format_eng(f[int(np.argmin(wanted))], 'Hz')}",
         f"  frequencies meeting the requirement: {int(meets.sum())} of {len(f)}",
     ]
     lines += ["  " + s for s in summary[1:]]
@@ -421,7 +378,8 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
                         "incident power (bound 1e-6): do not trust these numbers.")
     if bad.any():
         warn.append(f"{int(bad.sum())} frequencies are outside the adiabatic model's validity "
-                    f"(eps > 0.1), e.g. {f[bad][0]:.6g} Hz: check them with `optgrade verify`.")
+                    f"(eps > 0.1), e.g. {format_eng(f[bad][0], 'Hz')}: check them with "
+                    "`optgrade verify`.")
     for v in violations:
         warn.append(f"fabrication: {v.field}: {v.reason} (resonator {v.index})")
     warn.append(BENDING_NOTE)

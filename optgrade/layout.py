@@ -373,12 +373,19 @@ def read_header(path: str | os.PathLike) -> dict[str, str]:
     return out
 
 
-def read_table(path: str | os.PathLike) -> Layout:
+#: columns a table must have; the others default to 0 (no head mass, no tolerance stated)
+REQUIRED_COLUMNS = ("x_mm", "height_mm", "diameter_mm")
+
+
+def read_table(path: str | os.PathLike, notes: list[str] | None = None) -> Layout:
     """Read a machining table written by :func:`write_table` (or by hand) into a Layout.
 
-    Comment lines (``#``) and blank lines are skipped; the first other line must name the
-    columns ``index, x_mm, height_mm, diameter_mm, head_mass_kg, height_tol_mm`` in that order.
-    Rows must be numbered 0, 1, 2, ... and have positions that start at 0 and increase.
+    Comment lines (``#``) and blank lines are skipped; the first other line names the columns.
+    ``x_mm``, ``height_mm`` and ``diameter_mm`` are required, ``head_mass_kg`` and
+    ``height_tol_mm`` default to 0, in any order; ``index`` is optional and, where given, any
+    increasing integers (a hand-made table may number from 1, or skip numbers); other columns
+    are ignored with a note appended to ``notes`` (when given). Positions must start at 0 and
+    increase.
 
     Raises
     ------
@@ -389,6 +396,7 @@ def read_table(path: str | os.PathLike) -> Layout:
     lines = _read_lines(path)
     errors: list[str] = []
     header_line = None
+    header: list[str] = []
     rows: list[tuple[int, list[str]]] = []
     for lineno, line in enumerate(lines, start=1):
         s = line.strip()
@@ -397,34 +405,53 @@ def read_table(path: str | os.PathLike) -> Layout:
         fields = [f.strip() for f in s.split(",")]
         if header_line is None:
             header_line = lineno
-            if tuple(fields) != COLUMNS:
-                raise TableError(
-                    [
-                        f"{path}: line {lineno}: column header must be "
-                        f"'{', '.join(COLUMNS)}', got '{s}'"
-                    ]
-                )
+            header = fields
+            missing = [c for c in REQUIRED_COLUMNS if c not in fields]
+            dup = sorted({c for c in fields if fields.count(c) > 1 and c})
+            if missing or dup:
+                why = (f"missing column(s) {', '.join(missing)}" if missing
+                       else f"column(s) named twice: {', '.join(dup)}")
+                raise TableError([f"{path}: line {lineno}: column header: {why}; expected "
+                                  f"'{', '.join(COLUMNS)}' (index, head_mass_kg and "
+                                  f"height_tol_mm optional), got '{_clip(s, 120)}'"])
+            extra = [c for c in fields if c not in COLUMNS]
+            if extra and notes is not None:
+                notes.append(f"{path}: line {lineno}: column(s) {', '.join(extra)} not used "
+                             "(not part of the layout)")
             continue
         rows.append((lineno, fields))
     if header_line is None:
         raise TableError([f"{path}: no column header line (file is empty or all comments)"])
     if len(rows) < 2:
         raise TableError([f"{path}: at least 2 resonator rows are needed, found {len(rows)}"])
+    where = {c: header.index(c) for c in COLUMNS if c in header}
 
-    data = np.full((len(rows), len(COLUMNS) - 1), np.nan)
+    data = np.zeros((len(rows), len(COLUMNS) - 1))
+    data[:, :len(REQUIRED_COLUMNS)] = np.nan
+    last_index = None
     for r, (lineno, fields) in enumerate(rows):
-        if len(fields) != len(COLUMNS):
+        if len(fields) != len(header):
             errors.append(
-                f"{path}: line {lineno}: expected {len(COLUMNS)} columns, got {len(fields)}"
+                f"{path}: line {lineno}: expected {len(header)} columns (as the header), got "
+                f"{len(fields)}"
             )
             continue
-        if fields[0] != str(r):
-            errors.append(
-                f"{path}: line {lineno}: column index: expected {r} (rows numbered from 0 "
-                f"in order), got '{fields[0]}'"
-            )
+        if "index" in where:
+            text = fields[where["index"]]
+            try:
+                number = int(text)
+            except ValueError:
+                errors.append(f"{path}: line {lineno}: column index: '{_clip(text)}' is not an "
+                              "integer")
+            else:
+                if last_index is not None and number <= last_index:
+                    errors.append(f"{path}: line {lineno}: column index: {number} after "
+                                  f"{last_index}; the index must increase down the table")
+                last_index = number
         for c, name in enumerate(COLUMNS[1:]):
-            text = fields[c + 1]
+            if name not in where:
+                continue
+            text = fields[where[name]]
             try:
                 dec = Decimal(text)
             except InvalidOperation:
@@ -453,15 +480,16 @@ def read_table(path: str | os.PathLike) -> Layout:
                 errors.append(f"{path}: line {lineno}: column {name}: must be >= 0, got {text}")
     if not errors:
         x = data[:, 0]
+        ix = where["x_mm"]
         if x[0] != 0.0:
             errors.append(
                 f"{path}: line {rows[0][0]}: column x_mm: the first resonator must be at 0 "
-                f"(datum: {DATUM}), got {rows[0][1][1]}"
+                f"(datum: {DATUM}), got {rows[0][1][ix]}"
             )
         for r in np.flatnonzero(np.diff(x) <= 0) + 1:
             errors.append(
                 f"{path}: line {rows[r][0]}: column x_mm: positions must increase along the row "
-                f"({rows[r - 1][1][1]} then {rows[r][1][1]})"
+                f"({rows[r - 1][1][ix]} then {rows[r][1][ix]})"
             )
     if errors:
         raise TableError(errors)

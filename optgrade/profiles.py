@@ -26,6 +26,7 @@ mirror image.
 
 from __future__ import annotations
 
+import math
 import re
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
@@ -348,6 +349,44 @@ def quantise(values: np.ndarray, step: float, lo: float, hi: float) -> np.ndarra
     return np.round(out, 12)
 
 
+def quantise_positions(spacing: np.ndarray, step: float, s_lo: float, s_hi: float,
+                       max_length: float | None) -> np.ndarray:
+    """Positions x (m) of the cells ``spacing`` rounded to multiples of ``step`` (the
+    workshop's position step), the rounding taken on the positions (no accumulated error) with
+    every cell length kept in [s_lo, s_hi] rounded inwards to the step where the range holds a
+    multiple, and the row (x[-1] plus the last cell) kept within ``max_length``. Values are
+    snapped to picometres so that the table reads them without binary noise. ``step`` 0: the
+    positions are the plain cumulative sum."""
+    n = spacing.size
+    x_exact = np.concatenate([[0.0], np.cumsum(spacing[:-1])])
+    if not step or step <= 0 or n < 2:
+        return x_exact
+    k_lo = int(math.ceil(s_lo / step - 1e-9))
+    k_hi = int(math.floor(s_hi / step + 1e-9))
+    if k_lo > k_hi or k_lo < 1:
+        return x_exact
+    k_max = None
+    if max_length is not None and np.isfinite(max_length):
+        k_max = int(math.floor(max_length / step + 1e-9))
+    target = np.rint(x_exact / step).astype(np.int64)
+    ks = np.empty(n, dtype=np.int64)
+    ks[0] = 0
+    for j in range(1, n):
+        ks[j] = min(max(target[j], ks[j - 1] + k_lo), ks[j - 1] + k_hi)
+    if k_max is not None:
+        # too long by a few steps after rounding: take them off the longest cells (the far end
+        # first among equals), never below the shortest cell; the last cell repeats the one
+        # before it, so the row is sum(cells) + cells[-1] steps long
+        cells = np.diff(ks)
+        while cells.sum() + cells[-1] > k_max:
+            j = cells.size - 1 - int(np.argmax(cells[::-1]))
+            if cells[j] <= k_lo:
+                break
+            cells[j] -= 1
+        ks = np.concatenate([[0], np.cumsum(cells)])
+    return np.round(ks * step, 12)
+
+
 def _fit_length(spacing: np.ndarray, s_lo: float, max_length: float | None) -> np.ndarray:
     """Pull cell spacings towards ``s_lo`` (shape kept) until the row fits ``max_length``."""
     n = spacing.size
@@ -383,7 +422,8 @@ def layout_arrays(study: Study, params: dict[str, Any]) -> dict[str, np.ndarray]
     m_lo, m_hi = (float(v) for v in study.resonator.head_mass)
     if "head_mass_start" in params or "head_mass_c0" in params or "head_mass_f00" in params:
         u = shape_values(plan.head_mass, params, "head_mass", s, is_monotone=False)
-        head_mass = m_lo + u * (m_hi - m_lo)
+        head_mass = quantise(m_lo + u * (m_hi - m_lo), study.resonator.head_mass_step, m_lo,
+                             m_hi)
     else:
         head_mass = np.full(n, m_lo)
 
@@ -405,7 +445,11 @@ def layout_arrays(study: Study, params: dict[str, Any]) -> dict[str, np.ndarray]
         u = u[::-1]
     height = quantise(h_lo + u * (h_top - h_lo), study.layout.height_step, h_lo, h_top)
 
-    x = np.concatenate([[0.0], np.cumsum(spacing[:-1])])
+    # positions rounded to the workshop's step; the cells follow from them (the layout scored
+    # is the one the table states)
+    x = quantise_positions(spacing, study.layout.position_step, s_lo, s_hi,
+                           study.layout.max_length)
+    spacing = np.append(np.diff(x), np.diff(x)[-1]) if n >= 2 else spacing
     return {
         "x": x,
         "height": height,

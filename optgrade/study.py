@@ -81,6 +81,8 @@ LIMITS: dict[str, tuple[float, float]] = {
     "row_pitch": (1e-6, 100.0),
     "height": (1e-6, 100.0),
     "height_step": (1e-7, 10.0),
+    "position_step": (1e-7, 10.0),
+    "head_mass_step": (1e-9, 1e4),
     "spacing": (1e-6, 100.0),
     "max_length": (1e-6, 10_000.0),
     "min_gap": (1e-7, 10.0),
@@ -94,6 +96,7 @@ _UNIT_OF = {  # display unit of each limit in messages
     "speed": ("speed", "m/s"),
     "frequency": ("frequency", "Hz"),
     "head_mass": ("mass", "kg"),
+    "head_mass_step": ("mass", "kg"),
     "angle": ("angle", "deg"),
 }
 
@@ -338,6 +341,7 @@ class _ResonatorIn(_Raw):
     diameter: _Q("length", "diameter")
     row_pitch: _Q("length", "row_pitch")
     head_mass: _R("mass", "head_mass", allow_zero=True) = (0.0, 0.0)
+    head_mass_step: _Q("mass", "head_mass_step") | None = None
     kind: Annotated[str, BeforeValidator(_registry_choice("optgrade.resonators.RESONATORS"))] = (
         "axial_rod"
     )
@@ -347,6 +351,7 @@ class _LayoutIn(_Raw):
     count: Annotated[tuple[int, int], BeforeValidator(_count_range(1, 10_000))]
     height: _R("length", "height")
     height_step: _Q("length", "height_step")
+    position_step: _Q("length", "position_step") | None = None
     spacing: _R("length", "spacing")
     profile: Annotated[str, BeforeValidator(_registry_choice(_PROFILES))] = "spline"
     max_length: _Q("length", "max_length") | None = None
@@ -455,6 +460,8 @@ class ResonatorSpec(_Frozen):
     row_pitch: float
     head_mass: tuple[float, float]
     kind: str = "axial_rod"
+    #: head masses are rounded to this step (kg; 0: not rounded)
+    head_mass_step: float = 0.0
 
     @property
     def bar_speed(self) -> float:
@@ -477,6 +484,8 @@ class LayoutSpec(_Frozen):
     profile: str
     max_length: float
     entry: Literal["tall", "short"]
+    #: resonator positions are rounded to this step (m; 0: not rounded)
+    position_step: float = 0.0
 
 
 class GoalSpec(_Frozen):
@@ -709,7 +718,22 @@ def _resolve_resonator(raw: _ResonatorIn, out: _Collector) -> dict[str, Any] | N
         "diameter": raw.diameter,
         "row_pitch": raw.row_pitch,
         "head_mass": raw.head_mass,
+        "head_mass_step": _head_mass_step(raw, section, out),
     }
+
+
+def _head_mass_step(raw: _ResonatorIn, section: tuple, out: _Collector) -> float:
+    """The step head masses are rounded to (kg): as written, else a power of ten near 1/1000 of
+    the largest head mass (1 kg for a 2.4 t head, 1 mg for 5 g), 0 without head masses."""
+    m_lo, m_hi = raw.head_mass
+    if raw.head_mass_step is not None:
+        if m_hi > m_lo and raw.head_mass_step > m_hi - m_lo:
+            out.add((*section, "head_mass_step"), f"{raw.head_mass_step:g} kg is larger than "
+                    f"the head-mass range ({m_hi - m_lo:g} kg): only one mass would be possible")
+        return float(raw.head_mass_step)
+    if m_hi <= 0.0:
+        return 0.0
+    return float(10.0 ** math.floor(math.log10(1e-3 * m_hi)))
 
 
 def first_resonance_range(resonator: ResonatorSpec, height: tuple[float, float]):
@@ -768,7 +792,14 @@ def _cross_checks(raw: _FileIn, substrate: dict, resonator: dict, out: _Collecto
         weights = {"channel": 1.0}
     elif not any(v > 0 for v in weights.values()):
         out.add(("goal", "weights"), "at least one weight must be positive")
-    return {"max_length": float(max_length), "weights": weights}
+    position_step = lay.position_step if lay.position_step is not None else lay.height_step
+    if position_step > s_min:
+        key = "position_step" if lay.position_step is not None else "height_step"
+        out.add(("layout", key), f"position step ({position_step:g} m"
+                f"{'' if lay.position_step is not None else ', the default: the height step'}) is "
+                f"larger than the smallest spacing ({s_min:g} m); set layout.position_step")
+    return {"max_length": float(max_length), "weights": weights,
+            "position_step": float(position_step)}
 
 
 def _goal_weights(raw: Mapping[str, float], out: _Collector) -> dict[str, float]:
@@ -860,7 +891,7 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
         layout=LayoutSpec(count=raw.layout.count, height=raw.layout.height,
                           height_step=raw.layout.height_step, spacing=raw.layout.spacing,
                           profile=raw.layout.profile, max_length=extra["max_length"],
-                          entry=raw.layout.entry),
+                          entry=raw.layout.entry, position_step=extra["position_step"]),
         goal=GoalSpec(band=band, n_frequencies=raw.goal.n_frequencies, channel=raw.goal.channel,
                       required_fraction=raw.goal.required_fraction,
                       angle_window_deg=raw.goal.angle_window, weights=extra["weights"],

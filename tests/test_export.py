@@ -153,3 +153,172 @@ def test_real_search_export_cli_round_trip(tmp_path):
                                    tr.fractions[c], atol=1e-12)
     assert main(["export", str(study_path), "--storage", url, "--trial", "9999",
                  "--out", str(tmp_path / "x")]) == 2
+
+
+# --- workshop-ready exports (issue 15 item 3) -------------------------------------------------
+
+
+def _decimals(text: str) -> int:
+    return len(text.split(".")[1]) if "." in text else 0
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(u=st.floats(0.0, 1.0), which=st.sampled_from(["bench", "site"]))
+def test_positions_and_head_masses_sit_on_their_steps(u, which):
+    """Positions on multiples of layout.position_step (default: the height step), head masses on
+    multiples of resonator.head_mass_step, every cell still inside the spacing range and the row
+    inside max_length, and the machining table's text carries no more decimals than the steps
+    (no binary noise such as 154.00000000000003 mm: common trade practice is a table a
+    machinist reads as written). Before, positions were the raw cumulative sum."""
+    from optgrade.layout import _SCALE, _shortest
+    from optgrade.study import load_study
+
+    name = "bench_backward_shear.toml" if which == "bench" else "site_ground_barrier.toml"
+    s = load_study(REPO / "studies" / name)
+    lay = profiles.layout_from_params(s, _params(s, u))
+    step = s.layout.position_step
+    assert step == s.layout.height_step
+    k = np.asarray(lay.x) / step
+    np.testing.assert_allclose(k, np.round(k), atol=1e-6)
+    s_lo, s_hi = profiles.spacing_range(s)
+    assert np.all(np.diff(lay.x) >= s_lo * (1 - 1e-9))
+    assert np.all(np.diff(lay.x) <= s_hi * (1 + 1e-9))
+    assert lay.length <= s.layout.max_length * (1 + 1e-9)
+    m_step = s.resonator.head_mass_step
+    if s.resonator.head_mass[1] > 0:
+        assert m_step > 0
+        q = np.asarray(lay.head_mass) / m_step
+        np.testing.assert_allclose(q, np.round(q), atol=1e-6)
+    step_dec = _decimals(_shortest(step, _SCALE["x_mm"]))
+    for v in lay.x:
+        assert _decimals(_shortest(float(v), _SCALE["x_mm"])) <= step_dec, v
+    for v in lay.height:
+        assert _decimals(_shortest(float(v), _SCALE["height_mm"])) <= step_dec, v
+    if m_step:
+        m_dec = _decimals(_shortest(m_step, _SCALE["head_mass_kg"]))
+        for v in lay.head_mass:
+            assert _decimals(_shortest(float(v), _SCALE["head_mass_kg"])) <= m_dec, v
+
+
+def test_position_step_refused_when_larger_than_the_smallest_spacing(tmp_path):
+    """A position step above the smallest spacing would merge neighbours: refused by name."""
+    from optgrade.study import StudyError, load_study
+
+    text = (REPO / "studies" / "bench_backward_shear.toml").read_text()
+    text = text.replace('height_step = "0.05 mm"',
+                        'height_step = "0.05 mm"\nposition_step = "7 mm"')
+    p = tmp_path / "s.toml"
+    p.write_text(text)
+    with pytest.raises(StudyError) as err:
+        load_study(p)
+    assert "layout.position_step" in str(err.value)
+
+
+def _dxf_texts(doc):
+    """Every text of the drawing with its bounding box (texts inside dimensions included)."""
+    from ezdxf import bbox
+
+    out = []
+    for e in doc.modelspace():
+        kids = [e] if e.dxftype() in ("TEXT", "MTEXT") else (
+            [v for v in e.virtual_entities() if v.dxftype() in ("TEXT", "MTEXT")]
+            if e.dxftype() == "DIMENSION" else [])
+        for t in kids:
+            body = t.dxf.text if t.dxftype() == "TEXT" else t.text
+            out.append((body, t.dxf.layer, bbox.extents([t])))
+    return out
+
+
+def _overlaps(texts):
+    bad = []
+    for i, (t1, _, b1) in enumerate(texts):
+        for t2, _, b2 in texts[i + 1:]:
+            if b1.has_intersection(b2):
+                ov = b1.intersection(b2)
+                if ov.size.x > 1e-9 and ov.size.y > 1e-9:
+                    bad.append((t1, t2))
+    return bad
+
+
+def _layouts_for_drawing():
+    """The two examples' bundled layouts, a dense 150-pin row at the smallest spacing (three
+    hole-table blocks) and a row with head masses (invented scenarios)."""
+    from optgrade.layout import layout_from_cells
+    from optgrade.study import load_study
+
+    bench = load_study(REPO / "studies" / "bench_backward_shear.toml")
+    site = load_study(REPO / "studies" / "site_ground_barrier.toml")
+    dense = layout_from_cells(np.round(np.linspace(4e-3, 12e-3, 150), 5), 6e-3, 1e-3, 0.0, 2e-5)
+    heads = layout_from_cells(np.linspace(2.0, 6.0, 12), 2.5, 0.25,
+                              np.round(np.linspace(500, 3000, 12)), 0.05)
+    return [(bench, read_table(REPO / "studies" / "layouts" / "bench_backward_shear.csv")),
+            (site, read_table(REPO / "studies" / "layouts" / "site_ground_barrier.csv")),
+            (bench, dense), (site, heads)]
+
+
+@pytest.mark.parametrize("case", range(4))
+def test_dxf_is_workshop_ready(case, tmp_path):
+    """The drawing (issue 15 item 3): datum A and B, a hole table row for every resonator with
+    the same position, height, head mass and tolerance text as the machining table, the
+    diameter, rows across and row pitch, a title block (study, materials, tolerance, units,
+    scale, date, revision, trial), the first-to-last-axis dimension equal to the report's row
+    length, and no text overlapping another (bounding boxes from ezdxf.bbox, texts inside the
+    dimensions included)."""
+    from optgrade.layout import _SCALE, _shortest
+
+    study, lay = _layouts_for_drawing()[case]
+    path = export.write_dxf(study, lay, tmp_path / "l.dxf", trial_number=12, date="2026-12-03")
+    doc = ezdxf.readfile(path)
+    texts = _dxf_texts(doc)
+    assert len(texts) > lay.n_resonators * 3
+    assert _overlaps(texts) == []
+    bodies = [t for t, _, _ in texts]
+    joined = "\n".join(bodies)
+    for word in ("DATUM A", "DATUM B", "HOLE TABLE", "ROWS ACROSS", "STUDY", "TRIAL", "REVISION",
+                 "SCALE", "UNITS", "HEIGHT TOLERANCE", "ROD MATERIAL", "SPECIMEN", "DATE"):
+        assert word in joined, word
+    assert study.meta.name in bodies and "12" in bodies and "2026-12-03" in bodies
+    assert f"ALL RODS DIA {_shortest(float(lay.diameter[0]), _SCALE['x_mm'])} MM" in bodies
+    pitch = _shortest(study.resonator.row_pitch, _SCALE["x_mm"])
+    assert f"{pitch} MM" in bodies
+    # the hole table: rows of (index, x, height, [head], tol) texts at one y each
+    table = [(t, b) for t, layer, b in texts if layer == "TABLE"]
+    rows: dict[float, list] = {}
+    for t, b in table:
+        rows.setdefault(round(b.extmin.y, 6), []).append((b.extmin.x, t))
+    has_heads = bool(np.any(lay.head_mass > 0))
+    got = {}
+    for cells in rows.values():
+        cells = [t for _, t in sorted(cells)]
+        # side-by-side blocks share a y: split them into rows of the right width
+        width = 5 if has_heads else 4
+        for i in range(0, len(cells) - width + 1, width):
+            chunk = cells[i:i + width]
+            if chunk[0].isdigit():
+                got[int(chunk[0])] = chunk[1:]
+    assert sorted(got) == list(range(lay.n_resonators))
+    for j in range(lay.n_resonators):
+        want = [_shortest(float(lay.x[j]), _SCALE["x_mm"]),
+                _shortest(float(lay.height[j]), _SCALE["height_mm"])]
+        if has_heads:
+            want.append(_shortest(float(lay.head_mass[j]), _SCALE["head_mass_kg"]))
+        want.append(_shortest(float(lay.height_tol[j]), _SCALE["height_tol_mm"]))
+        assert got[j] == want, j
+    measured = [d.get_measurement() for d in doc.modelspace().query("DIMENSION")]
+    assert any(m == pytest.approx(lay.x[-1] * 1e3) for m in measured)
+
+
+def test_report_row_length_equals_the_drawing_overall_dimension(tmp_path):
+    """The report states the first-to-last-axis length the drawing dimensions (before: the
+    report said 600 mm, the path with the last cell, and the drawing 590.013 mm)."""
+    from optgrade.layout import _SCALE, _shortest
+
+    s = fake_study(resonator__head_mass=(0.0, 0.005))
+    lay = profiles.layout_from_params(s, _params(s, 0.55))
+    paths = export.export_layout(s, lay, tmp_path, context=_ctx(s), trial_number=3)
+    report = paths["report"].read_text()
+    overall = _shortest(float(lay.x[-1]), _SCALE["x_mm"])
+    assert f"{overall} mm from the first to the last axis" in report
+    doc = ezdxf.readfile(paths["dxf"])
+    measured = [d.get_measurement() for d in doc.modelspace().query("DIMENSION")]
+    assert max(measured) == pytest.approx(float(overall))

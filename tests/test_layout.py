@@ -126,8 +126,9 @@ def _table(tmp_path, body: str):
         ("0,0,10,2,0,0\n1,5,10,2,-0.1,0\n", "line 4: column head_mass_kg: must be >= 0"),
         ("0,0,10,2,0,0\n1,0,10,2,0,0\n", "line 4: column x_mm: positions must increase"),
         ("0,1,10,2,0,0\n1,5,10,2,0,0\n", "line 3: column x_mm: the first resonator must be at 0"),
-        ("0,0,10,2,0,0\n2,5,10,2,0,0\n", "line 4: column index: expected 1"),
-        ("0,0,10,2,0,0\n1,5,10,2,0\n", "line 4: expected 6 columns, got 5"),
+        ("1,0,10,2,0,0\n1,5,10,2,0,0\n", "line 4: column index: 1 after 1"),
+        ("0,0,10,2,0,0\nB,5,10,2,0,0\n", "line 4: column index: 'B' is not an integer"),
+        ("0,0,10,2,0,0\n1,5,10,2,0\n", "line 4: expected 6 columns (as the header), got 5"),
         ("0,0,10,2,0,0\n1,5,nan,2,0,0\n", "line 4: column height_mm: 'nan' is not finite"),
         ("0,0,10,2,0,0\n", "at least 2 resonator rows"),
     ],
@@ -147,9 +148,29 @@ def test_bad_files(tmp_path):
         read_table(junk)
     wrong = tmp_path / "wrong.csv"
     wrong.write_text("index,x,height\n0,0,1\n")
-    with pytest.raises(TableError, match="line 1: column header must be"):
+    with pytest.raises(TableError, match="line 1: column header: missing column.s. x_mm"):
         read_table(wrong)
     empty = tmp_path / "empty.csv"
     empty.write_text("# only comments\n\n")
     with pytest.raises(TableError, match="no column header"):
         read_table(empty)
+
+
+def test_hand_made_tables_any_increasing_index_or_none_and_extra_columns(tmp_path):
+    """Issue 15 item 8: a hand-made table may number from 1 (or skip numbers, or give no
+    index), order the columns differently, leave out head mass and tolerance, and carry
+    columns of its own (a note says they are not used)."""
+    ref = read_table(_table(tmp_path, "0,0,10,2,0,0\n1,5,12,2,0,0\n"))
+    variants = [
+        "index,x_mm,height_mm,diameter_mm,head_mass_kg,height_tol_mm\n1,0,10,2,0,0\n5,5,12,2,0,0\n",
+        "x_mm,height_mm,diameter_mm\n0,10,2\n5,12,2\n",
+        "height_mm,x_mm,note,diameter_mm\n10,0,first,2\n12,5,second,2\n",
+    ]
+    for k, body in enumerate(variants):
+        p = tmp_path / f"v{k}.csv"
+        p.write_text(body)
+        notes: list[str] = []
+        assert read_table(p, notes) == ref, body
+        assert (notes != []) == ("note" in body), notes
+        if notes:
+            assert "column(s) note not used" in notes[0]

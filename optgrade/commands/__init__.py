@@ -14,6 +14,7 @@ exits with status 2. Use the helpers below so that every subcommand reports bad 
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -130,13 +131,16 @@ def open_layout(path: str | Path, option_name: str = "--layout") -> Layout:
     """
     from optgrade.layout import TableError, read_table
 
+    notes: list[str] = []
     try:
-        layout = read_table(path)
+        layout = read_table(path, notes)
     except TableError as exc:
         raise StudyError([f"{option_name}: {m}" for m in exc.messages]) from None
     except (OSError, ValueError, ArithmeticError) as exc:
         raise StudyError([f"{option_name}: {path}: {exc}"]) from None
     _check_export_set(Path(path), option_name)
+    for note in notes:
+        print(f"note: {option_name}: {note}", file=sys.stderr)
     return layout
 
 

@@ -7,7 +7,8 @@ for or that this machine cannot hold:
   the rods' first axial resonances, the cell and the row against the wavelengths at the top of
   the band, and memory estimates of the dispersion-table build and of the exact row model
   before anything is allocated;
-- a table against the study it is traced or verified with (:func:`check_layout_for_study`);
+- a table against the study it is traced or verified with (:func:`fit_study_to_layout`: the
+  study's layout limits widened to include it, refused only over the memory budget);
 - the full-wave grid of ``verify`` (:func:`check_verify_plan`);
 - output folders and journal files (:func:`check_output_dir`, :func:`check_journal_path`);
 - worker counts (:func:`cap_jobs`).
@@ -32,7 +33,7 @@ if TYPE_CHECKING:  # pragma: no cover
 __all__ = [
     "BAND_ABOVE_RESONANCE", "BAND_BELOW_RESONANCE", "MAX_CELL_WAVELENGTHS",
     "MAX_CELL_UPDATES", "MAX_ROW_WAVELENGTHS", "cap_jobs", "check_journal_path",
-    "check_layout_for_study", "check_output_dir", "check_study_work", "check_verify_plan",
+    "fit_study_to_layout", "check_output_dir", "check_study_work", "check_verify_plan",
     "memory_budget",
 ]
 
@@ -161,55 +162,77 @@ def check_study_work(study: Study, source: str) -> None:
                           for field, reason in problems])
 
 
-def check_layout_for_study(study: Study, layout: Layout, path: str | os.PathLike,
-                           option: str = "--layout") -> None:
-    """Refuse a table that cannot belong to ``study``: more rows than layout.count allows, a
-    longer row than layout.max_length, cell lengths or heights outside the study's ranges (its
-    tables cover only those), or a memory estimate of the exact model over the budget. The
-    table's header study name is quoted when it names another study."""
+def fit_study_to_layout(study: Study, layout: Layout, path: str | os.PathLike,
+                        option: str = "--layout") -> tuple[Study, list[str]]:
+    """The study to trace or verify ``layout`` with, and notes on what was changed for it.
+
+    A measured or hand-made layout is not bound by the search's limits: where its row count,
+    length, cell lengths or heights lie outside the study's layout limits, those limits are
+    widened to include it (so the dispersion tables are built for the cells it has; a note says
+    which and that the tables take time). What is refused (StudyError, exit 2) is what this
+    machine cannot do: the exact row model of the layout over the memory budget. The table's
+    header study name is quoted when it names another study."""
     from optgrade.layout import read_header
 
     n = int(layout.n_resonators)
-    reasons: list[str] = []
-    n_max = int(study.layout.count[1])
-    if n > n_max:
-        reasons.append(f"{n} resonators, more than the study's layout.count maximum {n_max}")
-    max_len = float(study.layout.max_length)
-    if float(layout.length) > max_len * (1 + _SLACK):
-        reasons.append(f"row length {_m(float(layout.length))} exceeds the study's "
-                       f"layout.max_length {_m(max_len)}")
-    a_lo, a_hi = (float(v) for v in study.layout.spacing)
-    bad = np.flatnonzero((layout.spacing < a_lo * (1 - _SLACK)) |
-                         (layout.spacing > a_hi * (1 + _SLACK)))
-    if bad.size:
-        i = int(bad[0])
-        reasons.append(f"resonator {i}: cell length {layout.spacing[i] * 1e3:.6g} mm is outside "
-                       f"the study's layout.spacing range {a_lo * 1e3:.6g} .. {a_hi * 1e3:.6g} mm "
-                       f"({bad.size} cells outside); the dispersion tables cover only that range")
-    h_lo, h_hi = (float(v) for v in study.layout.height)
+    lay = study.layout
+    update: dict = {}
+    notes: list[str] = []
+    if n > int(lay.count[1]):
+        update["count"] = (int(lay.count[0]), n)
+        notes.append(f"{n} resonators, more than the study's layout.count maximum "
+                     f"{int(lay.count[1])}")
+    if float(layout.length) > float(lay.max_length) * (1 + _SLACK):
+        update["max_length"] = float(layout.length)
+        notes.append(f"row length {_m(float(layout.length))} exceeds the study's "
+                     f"layout.max_length {_m(float(lay.max_length))}")
+    a_lo, a_hi = (float(v) for v in lay.spacing)
+    sp = np.asarray(layout.spacing, dtype=float)
+    if sp.min() < a_lo * (1 - _SLACK) or sp.max() > a_hi * (1 + _SLACK):
+        new = (min(a_lo, float(sp.min())), max(a_hi, float(sp.max())))
+        update["spacing"] = new
+        notes.append(f"cell lengths {sp.min() * 1e3:.6g} .. {sp.max() * 1e3:.6g} mm reach "
+                     f"outside the study's layout.spacing range {a_lo * 1e3:.6g} .. "
+                     f"{a_hi * 1e3:.6g} mm; tables are built for {new[0] * 1e3:.6g} .. "
+                     f"{new[1] * 1e3:.6g} mm")
+    h_lo, h_hi = (float(v) for v in lay.height)
     tol = float(study.fabrication.height_tolerance)
-    bad = np.flatnonzero((layout.height < h_lo * (1 - _SLACK) - tol) |
-                         (layout.height > h_hi * (1 + _SLACK) + tol))
-    if bad.size:
-        i = int(bad[0])
-        reasons.append(f"resonator {i}: height {layout.height[i] * 1e3:.6g} mm is outside the "
-                       f"study's layout.height range {h_lo * 1e3:.6g} .. {h_hi * 1e3:.6g} mm "
-                       f"({bad.size} outside)")
-    if not reasons:
-        need = exact_model_bytes(study.goal.n_frequencies, n)
-        if need > memory_budget():
-            reasons.append(f"the exact row model of {n} resonators needs about {_gib(need)}, "
-                           "more than half of this machine's memory")
-    if not reasons:
-        return
-    try:
-        named = read_header(path).get("study")
-    except Exception:  # noqa: BLE001 - the header is only quoted in the message
-        named = None
-    whose = ""
-    if named and named != study.meta.name:
-        whose = f" (its header names the study {named!r}, not {study.meta.name!r})"
-    raise StudyError([f"{option}: {path}: does not fit the study{whose}: {r}" for r in reasons])
+    hh = np.asarray(layout.height, dtype=float)
+    if hh.min() < h_lo * (1 - _SLACK) - tol or hh.max() > h_hi * (1 + _SLACK) + tol:
+        new = (min(h_lo, float(hh.min())), max(h_hi, float(hh.max())))
+        update["height"] = new
+        notes.append(f"heights {hh.min() * 1e3:.6g} .. {hh.max() * 1e3:.6g} mm reach outside "
+                     f"the study's layout.height range {h_lo * 1e3:.6g} .. {h_hi * 1e3:.6g} mm;"
+                     f" the rods' range is taken as {new[0] * 1e3:.6g} .. {new[1] * 1e3:.6g} mm")
+    reasons: list[str] = []
+    need = exact_model_bytes(study.goal.n_frequencies, n)
+    if need > memory_budget():
+        reasons.append(f"the exact row model of {n} resonators needs about {_gib(need)}, "
+                       "more than half of this machine's memory")
+    widened = study
+    if update:
+        widened = study.model_copy(update={"layout": lay.model_copy(update=update)})
+        # the widened limits must still be work this tool can do (cells of many wavelengths,
+        # table sizes: docs/limits.md); the limit the layout pushed is named with its reason
+        reasons += [f"{field} (widened from the study's to include the layout): {reason}"
+                    for field, reason in study_work_problems(widened)]
+    if reasons:
+        try:
+            named = read_header(path).get("study")
+        except Exception:  # noqa: BLE001 - the header is only quoted in the message
+            named = None
+        whose = ""
+        if named and named != study.meta.name:
+            whose = f" (its header names the study {named!r}, not {study.meta.name!r})"
+        raise StudyError([f"{option}: {path}: does not fit the study{whose}: {r}"
+                          for r in reasons])
+    if not update:
+        return study, []
+    notes = [f"{option}: {path}: {t}" for t in notes]
+    notes.append(f"{option}: the layout is traced with the study's limits widened to include "
+                 "it (a table outside the search's limits is not refused); new dispersion "
+                 "tables may take a few minutes")
+    return widened, notes
 
 
 def check_verify_plan(study: Study, layout: Layout, is_fast: bool) -> dict:

@@ -267,12 +267,14 @@ def run(args: argparse.Namespace) -> int:
                               + ", ".join(PROPAGATION_MODELS.names())])
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
-    from optgrade.commands._limits import check_layout_for_study
+    from optgrade.commands._limits import fit_study_to_layout
 
-    # rows against layout.count, length, spacing and height ranges, memory (docs/limits.md)
-    check_layout_for_study(study, layout, args.layout)
+    # limits widened to the layout where it reaches outside them; memory (docs/limits.md)
+    study, notes = fit_study_to_layout(study, layout, args.layout)
     d_study = float(study.resonator.diameter)
     console = Console(stderr=False, highlight=False, soft_wrap=True)
+    for note in notes:
+        console.print(f"[yellow]note[/]: {note}")
     from optgrade.fabrication import check_layout
 
     violations = check_layout(study, layout)  # advisory here: printed, the trace still runs

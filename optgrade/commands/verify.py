@@ -212,15 +212,17 @@ def run(args: argparse.Namespace) -> int:
     """Entry point of ``optgrade verify``."""
     from rich.console import Console
 
-    from optgrade.commands._limits import check_layout_for_study, check_verify_plan
+    from optgrade.commands._limits import check_verify_plan, fit_study_to_layout
 
     study = open_study(args.study)
     layout = open_layout(args.layout)
     out = open_output_dir(args.out)
     # the table must fit the study, and the grid this machine (docs/limits.md)
-    check_layout_for_study(study, layout, args.layout)
+    study, notes = fit_study_to_layout(study, layout, args.layout)
     check_verify_plan(study, layout, args.fast)
     console = Console(highlight=False)
+    for note in notes:
+        console.print(f"[yellow]note[/]: {note}")
     payload = run_verify(study, layout, out, is_fast=args.fast,
                          is_animation=not args.no_animation, is_lattice=not args.no_lattice,
                          console=console)

@@ -313,9 +313,13 @@ def load_search(study: Study, storage: str) -> optuna.Study:
         different study file (the stored trials would not match its layouts).
     """
     store = open_storage(storage)
-    if study.meta.name not in optuna.study.get_all_study_names(store):
+    names = optuna.study.get_all_study_names(store)
+    if study.meta.name not in names:
+        present = ", ".join(repr(n) for n in sorted(names)[:20]) or "none"
+        more = f" and {len(names) - 20} more" if len(names) > 20 else ""
         raise SearchError("--storage", f"no study named {study.meta.name!r} in "
-                          f"{mask_url(storage)}")
+                          f"{mask_url(storage)} (the study file's [study] name); studies "
+                          f"stored there: {present}{more}")
     ostudy = optuna.load_study(study_name=study.meta.name, storage=store)
     stored_hash = ostudy.user_attrs.get("study_hash")
     if stored_hash and stored_hash != study_hash(study):
@@ -440,8 +444,8 @@ def _open_study(store: Any, study: Study, url: str, *, is_resume: bool,
     """(optuna study, existed before, created by this run); identity written or checked."""
     name = study.meta.name
     exists = name in optuna.study.get_all_study_names(store)
-    refuse = SearchError("--resume", f"study {name!r} already exists in {mask_url(url)}; pass "
-                         "--resume to continue it or choose another --out/--storage")
+    refuse = SearchError("--storage", f"study {name!r} already exists in {mask_url(url)}; "
+                         "pass --resume to continue it, or choose another --out or --storage")
     if exists and not is_resume:
         raise refuse
     is_first = False

@@ -98,6 +98,12 @@ def _resolve_url(url: str) -> Any:
     from sqlalchemy.engine import make_url
     from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 
+    if "://" not in url and not url.startswith("journal:"):
+        # a plain file path: say which URL it most likely means
+        raise SearchError("--storage", f"{url!r} is a file path, not a storage URL; for an "
+                          f"SQLite file write sqlite:///{Path(url)} (three slashes, then the "
+                          f"path, so an absolute path gives four), or journal:{url} for a "
+                          "journal file on a shared file system")
     try:
         parsed = make_url(url)
     except (ArgumentError, ValueError) as exc:
