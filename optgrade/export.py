@@ -50,7 +50,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from optgrade.study import Study
 
 __all__ = ["EXPORT_FILES", "MANIFEST", "SITE_CAUTION", "ExportError", "check_export",
-           "export_layout", "export_trial"]
+           "export_candidates", "export_layout", "export_trial"]
 
 #: The files of an export set, in the order they are moved into place.
 EXPORT_FILES = ("table.csv", "layout.dxf", "sheet.png", "result.json", "report.txt")
@@ -180,17 +180,36 @@ def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
 def _summary_lines(study: Study, trace: Trace, values: dict, violations: list,
                    score: float) -> list[str]:
     f = np.asarray(trace.frequency, dtype=float)
-    band = f"{study.goal.band[0]:.6g}-{study.goal.band[1]:.6g} Hz"
+    band = f"{format_eng(study.goal.band[0], 'Hz')}-{format_eng(study.goal.band[1], 'Hz')}"
+    weights = {n: w for n, w in study.goal.weights.items() if w}
+    top = _largest_score(weights)
     lines = [f"goal: {study.goal.channel} over {band} ({len(f)} frequencies), "
              f"required fraction {study.goal.required_fraction:g}",
-             f"weighted score: {score:.4f}"]
+             f"weighted score: {score:.4f} of at most {top:.4g} (the sum below: weight x score,"
+             " maximised goals added, minimised ones subtracted; a maximised goal scores at "
+             "most 1, a minimised penalty at least 0)"]
     for name, v in values.items():
-        lines.append(f"  {name}: {v.score:.4f}")
+        obj = objectives.get(name)
+        w = weights.get(name, 0.0)
+        sign = "+" if obj.direction == "maximize" else "-"
+        said = {"maximize": "maximised", "minimize": "minimised"}[obj.direction]
+        lines.append(f"  {name}: {v.score:.4f} ({said}, weight {w:g}, adds "
+                     f"{sign}{w * abs(v.score):.4f})")
     bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
     lines.append(f"non-adiabatic frequencies (eps > 0.1): {int(bad.sum())} of {len(f)}")
     fab = "all limits met" if not violations else f"{len(violations)} violation(s)"
     lines.append(f"fabrication check: {fab}")
     return lines
+
+
+def _largest_score(weights: dict[str, float]) -> float:
+    """The largest weighted score the goals allow: every maximised goal at 1, every minimised
+    penalty at 0; a composite goal (robustness: a quantile of the main score) at the largest
+    main score."""
+    main = sum(w for n, w in weights.items()
+               if not objectives.get(n).is_composite and objectives.get(n).direction == "maximize")
+    return float(sum(w * (main if objectives.get(n).is_composite else 1.0)
+                     for n, w in weights.items() if objectives.get(n).direction == "maximize"))
 
 
 def export_layout(
@@ -355,7 +374,7 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         "LAYOUT",
         f"  {layout.n_resonators} resonators, {_mm_text(float(layout.x[-1]))} mm from the first to "
         f"the last axis (the drawing's overall dimension; with the last cell the row takes "
-        f"{_mm_text(layout.length)} mm)",
+        f"{_mm_text(round(layout.length, 12))} mm)",
         f"  heights in table order {_mm_text(float(layout.height[0]))} to "
         f"{_mm_text(float(layout.height[-1]))} mm (range {_mm_text(float(np.min(layout.height)))}"
         f" to {_mm_text(float(np.max(layout.height)))} mm), diameter "
@@ -443,3 +462,76 @@ def export_trial(
     return export_layout(study, layout, out_dir, context=context, trial_number=trial_number,
                          history=_history(source), pareto=_pareto(source, study, trial_number),
                          extra=extra)
+
+
+#: scores within this of the best (relative to max(1, |best|)) count as a tie
+TIE_TOL = 1e-9
+
+
+def export_candidates(study: Study, source: optuna.Study | str, out_dir: str | os.PathLike,
+                      n_best: int | None = None) -> dict[str, Any]:
+    """Write the best ``n_best`` distinct layouts of a search (default ``search.keep_best``) as
+    machining tables into ``out_dir/candidates/`` (``rank1_trial12.csv``, ...) with a summary
+    ``candidates.csv``, for ``optgrade compare``. Layouts are distinct when their tables differ
+    (two parameter sets that round to one layout are one candidate). Also reports how many
+    finished trials tie at the best score: where most do, the goal does not tell the layouts
+    apart and a secondary goal is suggested.
+
+    Returns a dict with ``paths`` (the tables, best first), ``n_tied``, ``n_complete`` and
+    ``advice`` (None, or the sentence about ties).
+    """
+    from optuna.trial import TrialState
+
+    from optgrade.layout import write_table
+
+    if isinstance(source, str):
+        source = search.load_search(study, source)
+    n_best = int(study.search.keep_best if n_best is None else n_best)
+    space = set(profiles.search_space(study))
+    scored = [(float(t.user_attrs["score"]), t.number, t) for t in
+              source.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+              if "score" in t.user_attrs and np.isfinite(t.user_attrs["score"])
+              and set(t.params) == space]
+    scored.sort(key=lambda r: (-r[0], r[1]))
+    out: dict[str, Any] = {"paths": [], "n_tied": 0, "n_complete": len(scored), "advice": None}
+    if not scored:
+        return out
+    best = scored[0][0]
+    tol = TIE_TOL * max(1.0, abs(best))
+    out["n_tied"] = n_tied = sum(1 for r in scored if r[0] >= best - tol)
+    if n_tied >= 3 and n_tied >= 0.5 * len(scored):
+        others = [n for n in objectives.names() if n not in study.goal.weights][:3]
+        out["advice"] = (f"{n_tied} of {len(scored)} finished trials tie at the best score "
+                         f"{best:.4f}: the goal does not tell these layouts apart; add a "
+                         "secondary goal with a small weight in [goal.weights]"
+                         + (f" (e.g. {', '.join(others)})" if others else ""))
+    if n_best <= 0:
+        return out
+    folder = Path(out_dir) / "candidates"
+    folder.mkdir(parents=True, exist_ok=True)
+    for old in folder.glob("rank*_trial*.csv"):  # a previous export's candidates
+        old.unlink()
+    kept: list[tuple[float, int, Layout]] = []
+    for score, number, trial in scored:
+        layout = profiles.layout_from_params(study, trial.params)
+        if any(layout == k[2] for k in kept):
+            continue
+        kept.append((score, number, layout))
+        if len(kept) >= n_best:
+            break
+    today = _dt.datetime.now(_dt.timezone.utc).date()
+    lines = ["rank,trial,score,n_resonators,first_to_last_axis_mm,file"]
+    for rank, (score, number, layout) in enumerate(kept, start=1):
+        name = f"rank{rank}_trial{number}.csv"
+        header = [f"candidate {rank} of the {len(kept)} best distinct layouts; trial: {number}; "
+                  f"score {score:.6g}", f"study hash (sha256): {search.study_hash(study)}"]
+        if study.meta.scale == "site":
+            header.append(SITE_CAUTION)
+        out["paths"].append(Path(write_table(layout, folder / name, study_name=study.meta.name,
+                                             material=study.resonator.material or "custom",
+                                             date=today, extra_header=header)))
+        lines.append(f"{rank},{number},{score:.6g},{layout.n_resonators},"
+                     f"{_mm_text(float(layout.x[-1]))},{name}")
+    comment = [f"# {out['advice']}"] if out["advice"] else []
+    _write_text(folder / "candidates.csv", "\n".join(comment + lines) + "\n")
+    return out

@@ -389,6 +389,7 @@ class _SearchIn(_Raw):
     storage: Annotated[str, Field(min_length=1)] | None = None
     objectives: Annotated[list[str], BeforeValidator(_objective_list)] = ["weighted"]
     batch_size: Annotated[int, Field(ge=1, le=100_000)] | None = None
+    keep_best: Annotated[int, Field(ge=0, le=1000)] = 5
 
 
 class _FileIn(_Raw):
@@ -518,6 +519,8 @@ class SearchSpec(_Frozen):
     storage: str | None
     objectives: list[str]
     batch_size: int
+    #: the best N distinct layouts written as tables beside the export (candidates/)
+    keep_best: int = 5
 
 
 class Study(_Frozen):
@@ -901,7 +904,8 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
                                     slenderness_max=raw.fabrication.slenderness_max),
         search=SearchSpec(trials=search.trials, workers=search.workers, sampler=search.sampler,
                           storage=search.storage, objectives=list(search.objectives),
-                          batch_size=search.batch_size or 4 * search.workers),
+                          batch_size=search.batch_size or 4 * search.workers,
+                          keep_best=search.keep_best),
         source_path=None if source == "<study>" else source,
         source_sha256=sha256,
     )

@@ -322,3 +322,63 @@ def test_report_row_length_equals_the_drawing_overall_dimension(tmp_path):
     doc = ezdxf.readfile(paths["dxf"])
     measured = [d.get_measurement() for d in doc.modelspace().query("DIMENSION")]
     assert max(measured) == pytest.approx(float(overall))
+
+
+def _stored(study, scores):
+    """An in-memory optuna study with one COMPLETE trial per score, parameters spread over the
+    search space (so the layouts differ) and the score as the search stores it."""
+    space = profiles.search_space(study)
+    ost = optuna.create_study(direction="maximize")
+    for i, sc in enumerate(scores):
+        u = (i + 0.5) / len(scores)
+        ost.add_trial(optuna.trial.create_trial(
+            params=_params(study, u), distributions=space, value=sc, user_attrs={"score": sc}))
+    return ost
+
+
+def test_candidates_are_the_best_distinct_layouts_in_score_order(tmp_path):
+    """Issue 15 item 6: the best N distinct layouts, best first, each table the layout its
+    trial's parameters give; a repeated layout (here the same parameters twice) counts once."""
+    s = fake_study()
+    scores = [0.3, 0.9, 0.5, 0.9 - 1e-3, 0.7, 0.1]
+    ost = _stored(s, scores)
+    dup = ost.trials[1]
+    ost.add_trial(optuna.trial.create_trial(params=dup.params, distributions=dup.distributions,
+                                            value=0.95, user_attrs={"score": 0.95}))
+    res = export.export_candidates(s, ost, tmp_path, n_best=4)
+    names = [p.name for p in res["paths"]]
+    assert names == ["rank1_trial6.csv", "rank2_trial3.csv", "rank3_trial4.csv",
+                     "rank4_trial2.csv"]
+    for p in res["paths"]:
+        number = int(p.stem.split("trial")[1])
+        assert read_table(p) == profiles.layout_from_params(s, ost.trials[number].params)
+    assert res["advice"] is None
+    summary = (tmp_path / "candidates" / "candidates.csv").read_text().splitlines()
+    assert summary[0].startswith("rank,trial,score") and len(summary) == 5
+
+
+def test_most_trials_tied_at_the_best_score_is_said(tmp_path):
+    """Issue 15 item 2: a search where most finished trials tie at the best score says so and
+    suggests a secondary goal."""
+    s = fake_study()
+    res = export.export_candidates(s, _stored(s, [0.6] * 7 + [0.2, 0.1]), tmp_path, n_best=0)
+    assert res["n_tied"] == 7 and "tie at the best score" in res["advice"]
+    assert "[goal.weights]" in res["advice"]
+    assert export.export_candidates(s, _stored(s, [0.6, 0.5, 0.4, 0.3]), tmp_path,
+                                    n_best=0)["advice"] is None
+
+
+def test_report_explains_the_weighted_score(tmp_path):
+    """Issue 15 item 2: each goal's direction, weight and share of the score, and the largest
+    possible value (maximised goals at 1, minimised penalties at 0: with weights channel 1 and
+    compactness 0.5 that is 1)."""
+    s = fake_study(goal__weights={"channel": 1.0, "compactness": 0.5})
+    lay = profiles.layout_from_params(s, _params(s, 0.4))
+    paths = export.export_layout(s, lay, tmp_path, context=_ctx(s), trial_number=1)
+    report = paths["report"].read_text()
+    assert "of at most 1 " in report
+    assert "channel:" in report and "(maximised, weight 1, adds +" in report
+    assert "(minimised, weight 0.5, adds -" in report
+    res = json.loads(paths["result"].read_text())
+    parts = [res["objectives"]["channel"]["score"], -0.5 * res["objectives"]["compactness"]["score"]]
+    assert res["weighted_score"] == pytest.approx(sum(parts))

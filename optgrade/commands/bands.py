@@ -308,7 +308,7 @@ def run(args: argparse.Namespace) -> int:
 
     study = open_study(args.study)
     open_output_dir(args.out)  # before the progress display: an existing file etc., exit 2
-    console = Console(stderr=True)
+    console = Console(stderr=True, soft_wrap=True)
     with Progress(console=console, transient=True) as prog:
         task = prog.add_task("solving bands", total=args.points)
 

@@ -83,13 +83,20 @@ def run(args: argparse.Namespace) -> int:
         outcome = run_search(
             study, args.out, n_trials=args.trials, n_jobs=n_jobs, storage=args.storage,
             is_resume=args.resume, sampler=args.sampler, chunk_size=args.chunk,
-            show_progress=not args.quiet and sys.stderr.isatty(),
+            show_progress=not args.quiet,
         )
     except (SearchError, ProfileError) as exc:
         raise StudyError([f"{args.study}: {exc}"]) from None
+    candidates = None
     if not args.no_export and outcome.best_number is not None:
+        if not args.quiet:
+            print(f"search: exporting trial {outcome.best_number} (the exact row model traces "
+                  "it once more) ...", file=sys.stderr, flush=True)
         export_trial(study, outcome.storage, outcome.best_number, args.out,
                      context=outcome.context)
+        from optgrade.export import export_candidates
+
+        candidates = export_candidates(study, outcome.storage, args.out)
     best = "none" if outcome.best_score is None else (
         f"trial {outcome.best_number}, score {outcome.best_score:.4f}")
     print(f"{outcome.study_name}: {outcome.n_finished} trials finished "
@@ -101,6 +108,12 @@ def run(args: argparse.Namespace) -> int:
     print(f"storage: {mask_url(outcome.storage)}")
     if not args.no_export and outcome.best_number is not None:
         print(f"exported to {args.out}: table.csv layout.dxf sheet.png result.json report.txt")
+        if candidates and candidates["paths"]:
+            print(f"the {len(candidates['paths'])} best distinct layouts: {args.out}/candidates/ "
+                  f"(compare them with: optgrade compare STUDY {args.out}/candidates/rank*.csv "
+                  "--out DIR)")
+        if candidates and candidates["advice"]:
+            print(f"note: {candidates['advice']}")
     if outcome.is_interrupted:
         print("interrupted: run again with --resume to continue", file=sys.stderr)
         return 130

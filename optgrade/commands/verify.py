@@ -220,7 +220,7 @@ def run(args: argparse.Namespace) -> int:
     # the table must fit the study, and the grid this machine (docs/limits.md)
     study, notes = fit_study_to_layout(study, layout, args.layout)
     check_verify_plan(study, layout, args.fast)
-    console = Console(highlight=False)
+    console = Console(highlight=False, soft_wrap=True)
     for note in notes:
         console.print(f"[yellow]note[/]: {note}")
     payload = run_verify(study, layout, out, is_fast=args.fast,

@@ -36,6 +36,7 @@ import json
 import math
 import os
 import signal
+import sys
 import time
 import warnings
 from collections import deque
@@ -399,15 +400,61 @@ def _executor(n_jobs: int):
 
 def _progress(enabled: bool, total: int, done: int):
     from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
 
+    is_live = enabled and sys.stderr.isatty()
     prog = Progress(
         TextColumn("[bold]search[/]"), BarColumn(), MofNCompleteColumn(),
         TextColumn("{task.fields[rate]:.1f} trials/s"), TextColumn("best {task.fields[best]}"),
-        TimeElapsedColumn(), disable=not enabled, transient=False, console=Console(stderr=True),
+        TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
+        disable=not is_live, transient=False, console=Console(stderr=True),
     )
     task = prog.add_task("search", total=total, completed=done, rate=0.0, best="-")
-    return prog, task
+    plain = _PlainProgress(total, done) if enabled and not is_live else None
+    return prog, task, plain
+
+
+class _PlainProgress:
+    """Progress as plain lines on stderr when it is not a terminal (a log, a pipe): one line
+    at every further tenth of the trials, or every PLAIN_EVERY seconds, with the time left."""
+
+    PLAIN_EVERY = 30.0
+
+    def __init__(self, total: int, done: int) -> None:
+        self.total, self.start_done = max(int(total), 1), int(done)
+        self.t0 = self.t_last = time.monotonic()
+        self.next_tenth = (10 * int(done)) // self.total + 1
+
+    def update(self, n: int, rate: float, best: float | None) -> None:
+        n = min(int(n), self.total)  # the count may run past the total by the trials in flight
+        now = time.monotonic()
+        tenth = (10 * int(n)) // self.total
+        if tenth < self.next_tenth and now - self.t_last < self.PLAIN_EVERY and n < self.total:
+            return
+        self.next_tenth = tenth + 1
+        self.t_last = now
+        left = ""
+        if rate > 0 and n < self.total:
+            left = f", about {_duration((self.total - n) / rate)} left"
+        best_text = f"{best:.4f}" if best is not None else "-"
+        print(f"search: {n} of {self.total} trials ({rate:.1f} trials/s, best {best_text}, "
+              f"{_duration(now - self.t0)} spent{left})", file=sys.stderr, flush=True)
+
+
+def _duration(seconds: float) -> str:
+    seconds = max(0.0, float(seconds))
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 def _write_identity(ostudy: optuna.Study, study: Study, key: str) -> None:
@@ -543,9 +590,16 @@ def run_search(
     ostudy.sampler = make_sampler(sampler or study.search.sampler,
                                   session_seed(int(study.meta.seed), owner, is_first),
                                   is_multi_objective(study))
+    def say(message: str) -> None:
+        if show_progress:
+            print(f"search: {message}", file=sys.stderr, flush=True)
+
     context = None
     if not is_dry:
+        t_tab = time.perf_counter()
+        say("building or loading the dispersion and row-model tables ...")
         context = make_context(study, pipeline)  # builds/loads the tables once, before workers
+        say(f"tables ready in {_duration(time.perf_counter() - t_tab)}")
     if "table_hashes" not in ostudy.user_attrs:
         ostudy.set_user_attr("table_hashes", _table_hashes(context))
     n_recovered = recover_lost(ostudy, owner) if exists else 0
@@ -554,11 +608,21 @@ def run_search(
     loop = _OwnerLoop(study, ostudy, owner, key, n_trials, n_jobs, chunk_size, pipeline, is_dry,
                       context, t_start, on_told)
     loop.n_recovered = n_recovered
-    prog, task = _progress(show_progress, n_trials, len(finished_trials(ostudy)))
+    prog, task, plain = _progress(show_progress, n_trials, len(finished_trials(ostudy)))
+    say(f"scoring up to {n_trials} trials in total with "
+        + (f"{n_jobs} worker process{'es' if n_jobs != 1 else ''}" if n_jobs > 0
+           else "this process") + (f"; {n_recovered} lost trials recovered" if n_recovered
+                                   else ""))
+
+    def update(n: int, rate: float, best: float | None) -> None:
+        prog.update(task, completed=n, rate=rate,
+                    best=f"{best:.4f}" if best is not None else "-")
+        if plain is not None:
+            plain.update(n, rate, best)
+
     with _sigint_flag() as flag, prog, HeartbeatThread(store, loop.trial_ids) as beats:
         loop.beats = beats
-        loop.run(flag, time_budget, lambda n, rate, best: prog.update(
-            task, completed=n, rate=rate, best=f"{best:.4f}" if best is not None else "-"))
+        loop.run(flag, time_budget, update)
     n_finished = len(finished_trials(ostudy))
     return SearchOutcome(
         storage=url, study_name=study.meta.name, n_finished=n_finished,
