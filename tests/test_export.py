@@ -380,5 +380,6 @@ def test_report_explains_the_weighted_score(tmp_path):
     assert "channel:" in report and "(maximised, weight 1, adds +" in report
     assert "(minimised, weight 0.5, adds -" in report
     res = json.loads(paths["result"].read_text())
-    parts = [res["objectives"]["channel"]["score"], -0.5 * res["objectives"]["compactness"]["score"]]
+    goals = res["objectives"]
+    parts = [goals["channel"]["score"], -0.5 * goals["compactness"]["score"]]
     assert res["weighted_score"] == pytest.approx(sum(parts))
