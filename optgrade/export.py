@@ -154,8 +154,9 @@ def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
     else:
         _plot_search.describe(ax[4], ["no optimisation history (single layout)"])
     if pareto is not None:
-        values, is_front, names, chosen = pareto
-        _plot_search.plot_pareto(ax[5], values, is_front, names, chosen=chosen)
+        values, is_front, names, chosen, numbers = pareto
+        _plot_search.plot_pareto(ax[5], values, is_front, names, chosen=chosen,
+                                 numbers=numbers)
     else:
         _plot_search.describe(ax[5], summary)
     fig.suptitle(f"{study.meta.name}: trial {trial_number}", fontsize=11)
@@ -185,9 +186,9 @@ def _summary_lines(study: Study, trace: Trace, values: dict, violations: list,
     top = _largest_score(weights)
     lines = [f"goal: {study.goal.channel} over {band} ({len(f)} frequencies), "
              f"required fraction {study.goal.required_fraction:g}",
-             f"weighted score: {score:.4f} of at most {top:.4g} (the sum below: weight x score,"
-             " maximised goals added, minimised ones subtracted; a maximised goal scores at "
-             "most 1, a minimised penalty at least 0)"]
+             f"weighted score: {score:.4f} of at most {top:.4g}",
+             "  = sum of weight x score: maximised goals add (each at most 1),",
+             "    minimised penalties subtract (each at least 0)"]
     for name, v in values.items():
         obj = objectives.get(name)
         w = weights.get(name, 0.0)
@@ -426,7 +427,8 @@ def _pareto(ostudy: optuna.Study, study: Study, number: int) -> tuple | None:
     vals = np.array([t.values[:2] for t in done], dtype=float)
     is_front = np.array([t.number in front for t in done])
     chosen = next((t.values[:2] for t in done if t.number == number), None)
-    return vals, is_front, list(study.search.objectives[:2]), chosen
+    numbers = np.array([t.number for t in done], dtype=int)
+    return vals, is_front, list(study.search.objectives[:2]), chosen, numbers
 
 
 def export_trial(

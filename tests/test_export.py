@@ -376,10 +376,35 @@ def test_report_explains_the_weighted_score(tmp_path):
     lay = profiles.layout_from_params(s, _params(s, 0.4))
     paths = export.export_layout(s, lay, tmp_path, context=_ctx(s), trial_number=1)
     report = paths["report"].read_text()
-    assert "of at most 1 " in report
+    assert "of at most 1\n" in report
     assert "channel:" in report and "(maximised, weight 1, adds +" in report
     assert "(minimised, weight 0.5, adds -" in report
     res = json.loads(paths["result"].read_text())
     goals = res["objectives"]
     parts = [goals["channel"]["score"], -0.5 * goals["compactness"]["score"]]
     assert res["weighted_score"] == pytest.approx(sum(parts))
+
+
+def test_sheet_plan_shows_every_resonator_and_pareto_members_carry_trial_numbers():
+    """Issue 15 item 5: the plan panel showed the first 12 resonators in a mostly empty panel;
+    the Pareto front had no trial numbers to export a member by."""
+    from matplotlib.figure import Figure
+
+    from optgrade.plotting import search as plot_search
+
+    fig = Figure()
+    ax = fig.subplots()
+    x = np.arange(54) * 10e-3
+    plot_search.plot_plan(ax, x, 1e-3, 4e-3)
+    drawn = sum(len(c.get_offsets()) for c in ax.collections) + len(ax.patches)
+    assert drawn == 3 * 54
+    assert "all 54 resonators" in ax.get_title() and "stretched" in ax.get_title()
+    lo, hi = ax.get_ylim()
+    assert hi - lo < 4 * 4.0  # the rows fill the panel (mm)
+    fig = Figure()
+    ax = fig.subplots()
+    vals = np.array([[0.1, 0.9], [0.5, 0.5], [0.9, 0.1], [0.2, 0.2]])
+    plot_search.plot_pareto(ax, vals, np.array([True, True, True, False]), ["a", "b"],
+                            numbers=np.array([3, 8, 11, 20]))
+    labels = {t.get_text() for t in ax.texts}
+    assert labels == {"#3", "#8", "#11"}

@@ -36,15 +36,25 @@ def plot_history(ax: Axes, numbers: np.ndarray, scores: np.ndarray, *,
 
 
 def plot_pareto(ax: Axes, values: np.ndarray, is_front: np.ndarray, names: list[str], *,
-                chosen: np.ndarray | None = None) -> Axes:
-    """First two objectives of every complete trial, Pareto-front trials highlighted."""
+                chosen: np.ndarray | None = None, numbers: np.ndarray | None = None,
+                n_labels: int = 12) -> Axes:
+    """First two objectives of every complete trial, Pareto-front trials highlighted and
+    labelled with their trial numbers (at most ``n_labels``, spread along the front), so that
+    a member can be exported with ``optgrade export --trial N``."""
     values = np.asarray(values, dtype=float)
     is_front = np.asarray(is_front, dtype=bool)
     ax.plot(values[~is_front, 0], values[~is_front, 1], ".", color="#999999", ms=3,
             label="trial")
-    front = values[is_front]
-    front = front[np.argsort(front[:, 0])]
+    order = np.argsort(values[is_front][:, 0])
+    front = values[is_front][order]
     ax.plot(front[:, 0], front[:, 1], "o-", color="#0072B2", ms=4, label="Pareto front")
+    if numbers is not None and front.size:
+        nums = np.asarray(numbers)[is_front][order]
+        pick = np.unique(np.linspace(0, nums.size - 1, min(n_labels, nums.size)).round()
+                         .astype(int))
+        for i in pick:
+            ax.annotate(f"#{nums[i]}", front[i], textcoords="offset points", xytext=(4, 4),
+                        fontsize=6.5, color="#0072B2")
     if chosen is not None:
         ax.plot([chosen[0]], [chosen[1]], "o", mfc="none", mec="k", ms=9, label="exported")
     ax.set_xlabel(names[0])
@@ -55,23 +65,39 @@ def plot_pareto(ax: Axes, values: np.ndarray, is_front: np.ndarray, names: list[
 
 
 def plot_plan(ax: Axes, x: np.ndarray, diameter: np.ndarray, row_pitch: float, *,
-              n_rows: int = 3, n_show: int = 12, scale: float = 1e3, unit: str = "mm") -> Axes:
-    """Plan view: rod footprints of the first ``n_show`` resonators of a few rows (pitch
-    ``row_pitch`` across the row), drawn to scale."""
-    n_all = np.asarray(x).size
-    x = np.asarray(x, dtype=float)[:n_show] * scale
-    d = np.broadcast_to(np.asarray(diameter, dtype=float), (n_all,))[:n_show] * scale
-    for r in range(n_rows):
-        y = r * row_pitch * scale
-        for xi, di in zip(x, d, strict=True):
-            ax.add_patch(Circle((xi, y), di / 2, fc="#56B4E9", ec="k", lw=0.3))
-    ax.set_aspect("equal", adjustable="datalim")
-    ax.autoscale_view()
+              n_rows: int = 3, scale: float = 1e3, unit: str = "mm") -> Axes:
+    """Plan view of the whole row: the footprints of every resonator in ``n_rows`` rows (pitch
+    ``row_pitch`` across the row). Drawn to scale when the rows fill the panel that way;
+    otherwise the across-row direction is stretched to fill it (said in the title) and the
+    footprints are markers."""
+    x = np.asarray(x, dtype=float) * scale
+    n_all = x.size
+    d = np.broadcast_to(np.asarray(diameter, dtype=float), (n_all,)) * scale
+    pitch = row_pitch * scale
+    span = float(x[-1] - x[0] + d.max())
+    across = float((n_rows - 1) * pitch + d.max())
+    # the panel is about 3 : 2; to scale the rows would fill across / span of its height
+    stretch = (0.5 * span) / max(across, 1e-30)
+    ys = np.arange(n_rows) * pitch
+    if stretch <= 1.5:
+        for y in ys:
+            for xi, di in zip(x, d, strict=True):
+                ax.add_patch(Circle((xi, y), di / 2, fc="#56B4E9", ec="k", lw=0.3))
+        ax.set_aspect("equal", adjustable="datalim")
+        ax.autoscale_view()
+        note = "to scale"
+    else:
+        xx, yy = np.meshgrid(x, ys)
+        ax.scatter(xx.ravel(), yy.ravel(), s=max(2.0, min(30.0, 3000.0 / n_all)),
+                   fc="#56B4E9", ec="k", lw=0.3)
+        pad = 0.6 * pitch
+        ax.set_ylim(ys[0] - pad, ys[-1] + pad)
+        ax.set_xlim(x[0] - 0.03 * span, x[-1] + 0.03 * span)
+        note = f"y stretched {stretch:.0f}x"
     ax.set_xlabel(f"x along the row ({unit}), wave enters at x = 0")
     ax.set_ylabel(f"y ({unit})")
-    shown = f"first {x.size} of {n_all} resonators" if x.size < n_all else f"{n_all} resonators"
-    ax.set_title(f"plan: {shown}, {n_rows} rows at pitch {row_pitch * scale:.3g} {unit}",
-                 fontsize=9)
+    ax.set_title(f"plan: all {n_all} resonators, {n_rows} rows at pitch {pitch:.3g} {unit} "
+                 f"({note})", fontsize=9)
     return ax
 
 
