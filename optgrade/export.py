@@ -128,7 +128,7 @@ def write_dxf(study: Study, layout: Layout, path: Path, *, trial_number: int | N
 
 def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
                 history: tuple | None, pareto: tuple | None, summary: list[str],
-                trial_number: int | None) -> Path:
+                trial_number: int | None, spread: tuple | None = None) -> Path:
     """Figure sheet PNG: layout, channel map, fractions, history, Pareto front or summary.
 
     Drawn on a bare :class:`matplotlib.figure.Figure` (no pyplot), so the caller's plotting
@@ -148,7 +148,8 @@ def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
     _plot_trace.plot_channel_map(ax[2], trace, layout)
     _plot_trace.plot_fractions(ax[3], trace, goal_channel=study.goal.channel,
                                required=(float(study.goal.required_fraction)
-                                         if study.goal.channel in trace.fractions else None))
+                                         if study.goal.channel in trace.fractions else None),
+                               spread=spread)
     if history is not None and len(history[0]):
         _plot_search.plot_history(ax[4], history[0], history[1], chosen=trial_number)
     else:
@@ -315,8 +316,13 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     paths["dxf"] = write_dxf(study, layout, out / "layout.dxf", trial_number=trial_number,
                              date=today.isoformat())
     summary = _summary_lines(study, trace, values, violations, score)
+    rob = values.get("robustness")
+    spread = None
+    if rob is not None and "wanted_p10" in rob.details:
+        spread = (np.asarray(rob.details["wanted_p10"]), np.asarray(rob.details["wanted_p90"]))
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
-                                 pareto=pareto, summary=summary, trial_number=trial_number)
+                                 pareto=pareto, summary=summary, trial_number=trial_number,
+                                 spread=spread)
     from optgrade.verdict import verdict
 
     judged = verdict(study, layout, trace)

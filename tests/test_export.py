@@ -408,3 +408,21 @@ def test_sheet_plan_shows_every_resonator_and_pareto_members_carry_trial_numbers
                             numbers=np.array([3, 8, 11, 20]))
     labels = {t.get_text() for t in ax.texts}
     assert labels == {"#3", "#8", "#11"}
+
+
+def test_fractions_plot_draws_the_tolerance_band():
+    """Issue 15 item 5: the spread of the wanted fraction over the robustness goal's
+    machining-error draws is drawn as a band, its widest value in the legend."""
+    from matplotlib.figure import Figure
+
+    from optgrade.plotting.trace import plot_fractions
+
+    s = fake_study()
+    lay = profiles.layout_from_params(s, _params(s, 0.5))
+    tr = fake_trace(s, lay)
+    lo = np.asarray(tr.fractions["backward_shear"]) - 0.05
+    hi = lo + 0.1
+    ax = Figure().subplots()
+    plot_fractions(ax, tr, goal_channel="backward_shear", spread=(lo, hi))
+    labels = ax.get_legend_handles_labels()[1]
+    assert "height tolerance, 10-90 % of draws (widest 0.10)" in labels

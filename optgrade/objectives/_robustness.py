@@ -18,6 +18,7 @@ import numpy as np
 
 from optgrade.layout import with_height_errors
 from optgrade.objectives import EvalContext, Objective, ObjectiveValue, main_score, register
+from optgrade.objectives._common import wanted_fraction
 
 if TYPE_CHECKING:  # pragma: no cover
     from optgrade.layout import Layout
@@ -58,6 +59,10 @@ class Robustness(Objective):
                              "to trace perturbed layouts")
         scores = np.asarray([main_score(tr, lay, study, context)
                              for tr, lay in zip(traces, lays, strict=True)])
+        # the wanted fraction per frequency over the draws: its 10-90 % spread is the
+        # tolerance band of the fractions plot
+        wanted = np.asarray([np.nan_to_num(wanted_fraction(tr, study.goal.channel, lay, study))
+                             for tr, lay in zip(traces, lays, strict=True)])
         return ObjectiveValue(
             float(np.quantile(scores, QUANTILE)),
             {
@@ -66,5 +71,7 @@ class Robustness(Objective):
                 "n_draws": N_DRAWS,
                 "mean": float(scores.mean()),
                 "min": float(scores.min()),
+                "wanted_p10": np.quantile(wanted, 0.1, axis=0).tolist(),
+                "wanted_p90": np.quantile(wanted, 0.9, axis=0).tolist(),
             },
         )

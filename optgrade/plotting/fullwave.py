@@ -143,8 +143,14 @@ def write_animation(path: Any, snapshots: np.ndarray, times: np.ndarray, grid: A
     if not animation.writers.is_available("pillow") or len(snapshots) == 0:
         return False
     vmax = float(np.percentile(np.abs(snapshots), 99.7)) or 1.0
-    fig, ax = plt.subplots(figsize=(9, 3.4), layout="constrained")
+    u = _len_unit(grid.nx * grid.h)[0]
+    top = float(np.max(rods.height)) * 1.15 if rods is not None else 1.0 / u
+    aspect = (grid.nz * grid.h + top) / (grid.nx * grid.h)
+    # a frame as tall as the domain drawn to scale (plus title and axis labels), not a fixed
+    # 3.4 in with the picture in a thin band across it
+    fig, ax = plt.subplots(figsize=(9, min(8.0, 7.6 * aspect + 1.1)), layout="constrained")
     im = _draw_frame(ax, snapshots[0], grid, rods, vmax)
+    fig.colorbar(im, ax=ax, shrink=0.9, label="u_z (arbitrary units)")
     title = ax.set_title("")
     ax.set_xlabel(f"x from the first resonator ({_len_unit(grid.nx * grid.h)[1]})")
     ax.set_ylabel(f"depth ({_len_unit(grid.nx * grid.h)[1]})")

@@ -284,7 +284,8 @@ def _model_label(name: str) -> str:
 
 
 def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
-                   compare: Trace | None = None, required: float | None = None) -> Axes:
+                   compare: Trace | None = None, required: float | None = None,
+                   spread: tuple | None = None) -> Axes:
     """Stacked channel fractions against frequency.
 
     Frequencies where the WKB march is outside its validity (eps > 0.1) are hatched when the
@@ -294,6 +295,8 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
     ``required`` (the goal's required fraction) is drawn as a horizontal line. Above the stack,
     two strips mark the frequencies where the WKB picture is outside its validity (eps > 0.1)
     and, with ``compare``, where the two models differ by more than 0.1 on some channel.
+    ``spread`` (low, high: the wanted fraction's 10 and 90 % quantiles over the robustness
+    goal's machining-error draws) is drawn as a band about the goal line.
     """
     fs, funit = frequency_unit(float(np.max(trace.frequency)))
     f = trace.frequency / fs
@@ -301,9 +304,14 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
     ax.stackplot(f, ys, colors=[CHANNEL_COLOURS[c] for c in CHANNELS],
                  labels=[CHANNEL_LABELS[c] for c in CHANNELS], alpha=0.9, lw=0)
     halo = [patheffects.withStroke(linewidth=3.2, foreground="#ffffff")]
+    if spread is not None and len(spread[0]) == f.size:
+        widest = float(np.max(np.asarray(spread[1]) - np.asarray(spread[0])))
+        ax.fill_between(f, spread[0], spread[1], facecolor="#ffffff", alpha=0.55,
+                        edgecolor="k", lw=0.5, hatch="////", zorder=3,
+                        label=f"height tolerance, 10-90 % of draws (widest {widest:.2f})")
     if goal_channel in trace.fractions:
         ax.plot(f, trace.fractions[goal_channel], color="k", lw=1.4, path_effects=halo,
-                label=f"goal: {CHANNEL_LABELS[goal_channel]}")
+                label=f"goal: {CHANNEL_LABELS[goal_channel]}", zorder=4)
     if required is not None:
         ax.axhline(required, color="#c1121f", lw=1.3, ls=(0, (6, 3)), path_effects=halo,
                    label=f"required fraction {required:.0%}")
