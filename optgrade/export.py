@@ -32,6 +32,7 @@ import math
 import os
 import shutil
 import tempfile
+from decimal import Decimal
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -128,7 +129,7 @@ def write_dxf(study: Study, layout: Layout, path: Path, *, trial_number: int | N
 
 def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
                 history: tuple | None, pareto: tuple | None, summary: list[str],
-                trial_number: int | None, spread: tuple | None = None) -> Path:
+                trial_number: int | None, spread: tuple | None = None, reach=None) -> Path:
     """Figure sheet PNG: layout, channel map, fractions, history, Pareto front or summary.
 
     Drawn on a bare :class:`matplotlib.figure.Figure` (no pyplot), so the caller's plotting
@@ -149,7 +150,8 @@ def write_sheet(path: Path, study: Study, layout: Layout, trace: Trace, *,
     _plot_trace.plot_fractions(ax[3], trace, goal_channel=study.goal.channel,
                                required=(float(study.goal.required_fraction)
                                          if study.goal.channel in trace.fractions else None),
-                               spread=spread)
+                               spread=spread,
+                               reachable=None if reach is None else np.asarray(reach.reachable))
     if history is not None and len(history[0]):
         _plot_search.plot_history(ax[4], history[0], history[1], chosen=trial_number)
     else:
@@ -320,9 +322,10 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     spread = None
     if rob is not None and "wanted_p10" in rob.details:
         spread = (np.asarray(rob.details["wanted_p10"]), np.asarray(rob.details["wanted_p90"]))
+    reach = _reach_of(study, context, trace)
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
                                  pareto=pareto, summary=summary, trial_number=trial_number,
-                                 spread=spread)
+                                 spread=spread, reach=reach)
     from optgrade.verdict import verdict
 
     judged = verdict(study, layout, trace)
@@ -346,25 +349,45 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
         "performance": trace.to_dict(),
         "notes": [BENDING_NOTE] + ([SITE_CAUTION] if is_site else []),
     }
+    if reach is not None:
+        result["reach"] = reach.to_dict()
     if extra:
         result.update(extra)
     paths["result"] = _write_text(out / "result.json",
                                   json.dumps(_jsonable(result), indent=1) + "\n")
     paths["report"] = _write_text(out / "report.txt",
                                   _report(study, layout, trace, summary, violations, is_site,
-                                          trial_number))
+                                          trial_number, reach))
     return paths
 
 
+def _reach_of(study: Study, context, trace: Trace):
+    """The reachability estimate of the study's goal (optgrade/reach.py) on the trace's
+    frequencies, shown beside the result; None for a stand-in pipeline (no physical model)."""
+    if context is None or context.model is None:
+        return None
+    from optgrade.reach import reachability
+
+    return reachability(study, freq=np.asarray(trace.frequency, dtype=float))
+
+
 def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], violations: list,
-            is_site: bool, trial_number: int | None) -> str:
+            is_site: bool, trial_number: int | None, reach=None) -> str:
     f = np.asarray(trace.frequency, dtype=float)
     # the same measure the search scored (blocking: insertion effect against bare ground)
     wanted = objectives.wanted_fraction(trace, study.goal.channel, layout, study)
     wanted = np.nan_to_num(wanted, nan=0.0)
     meets = wanted >= study.goal.required_fraction
     np.asarray(layout.height) * 1e3
+    from optgrade.layout import _shortest
+    from optgrade.plotting.trace import length_unit
     from optgrade.verdict import verdict
+
+    unit = length_unit(float(layout.length))[1]  # mm on the bench, m at site scale
+
+    def ln(value_m: float) -> str:
+        """A length as the machining table would write it, in the report's unit."""
+        return f"{_shortest(float(value_m), Decimal(1000 if unit == 'mm' else 1))} {unit}"
 
     judged = verdict(study, layout, trace)
     lines = [
@@ -379,14 +402,13 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         f" at least {study.goal.required_fraction:.0%} of the power at each frequency",
         "",
         "LAYOUT",
-        f"  {layout.n_resonators} resonators, {_mm_text(float(layout.x[-1]))} mm from the first to "
-        f"the last axis (the drawing's overall dimension; with the last cell the row takes "
-        f"{_mm_text(round(layout.length, 12))} mm)",
-        f"  heights in table order {_mm_text(float(layout.height[0]))} to "
-        f"{_mm_text(float(layout.height[-1]))} mm (range {_mm_text(float(np.min(layout.height)))}"
-        f" to {_mm_text(float(np.max(layout.height)))} mm), diameter "
-        f"{_mm_text(float(np.max(layout.diameter)))} mm, row pitch "
-        f"{_mm_text(study.resonator.row_pitch)} mm",
+        f"  {layout.n_resonators} resonators, {ln(float(layout.x[-1]))} from the first to the "
+        f"last axis (the drawing's overall dimension; with the last cell the row takes "
+        f"{ln(round(layout.length, 12))})",
+        f"  heights in table order {ln(float(layout.height[0]))} to "
+        f"{ln(float(layout.height[-1]))} (range {ln(float(np.min(layout.height)))} to "
+        f"{ln(float(np.max(layout.height)))}), diameter {ln(float(np.max(layout.diameter)))}, "
+        f"row pitch {ln(study.resonator.row_pitch)}",
         "",
         "PREDICTED (" + _MODEL_WORDS.get(trace.propagation,
                                          f"propagation model {trace.propagation!r}") + ")",
@@ -395,6 +417,9 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         f"  frequencies meeting the requirement: {int(meets.sum())} of {len(f)}",
     ]
     lines += ["  " + s for s in summary[1:]]
+    if reach is not None:
+        lines += ["", "REACHABLE (estimate from the local modes of the admissible cells, before "
+                  "any search)"] + ["  " + t.strip() for t in reach.lines()]
     warn = []
     bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
     if trace.balance_error is not None and np.isfinite(trace.balance_error).any():

@@ -318,7 +318,7 @@ def test_report_row_length_equals_the_drawing_overall_dimension(tmp_path):
     paths = export.export_layout(s, lay, tmp_path, context=_ctx(s), trial_number=3)
     report = paths["report"].read_text()
     overall = _shortest(float(lay.x[-1]), _SCALE["x_mm"])
-    assert f"{overall} mm from the first to the last axis" in report
+    assert f"{overall} mm from the first to the last axis" in report, report
     doc = ezdxf.readfile(paths["dxf"])
     measured = [d.get_measurement() for d in doc.modelspace().query("DIMENSION")]
     assert max(measured) == pytest.approx(float(overall))
@@ -426,3 +426,28 @@ def test_fractions_plot_draws_the_tolerance_band():
     plot_fractions(ax, tr, goal_channel="backward_shear", spread=(lo, hi))
     labels = ax.get_legend_handles_labels()[1]
     assert "height tolerance, 10-90 % of draws (widest 0.10)" in labels
+
+
+def test_report_and_fractions_plot_show_the_reachable_band(tmp_path):
+    """Issue 15 item 1: the report and the sheet show the reachability estimate next to the
+    result (a Reach built here by hand: reachable above 200 kHz only)."""
+    from matplotlib.figure import Figure
+
+    from optgrade.plotting.trace import plot_fractions
+    from optgrade.reach import Reach
+
+    s = fake_study()
+    lay = profiles.layout_from_params(s, _params(s, 0.5))
+    tr = fake_trace(s, lay)
+    f = np.asarray(tr.frequency)
+    ok = f > 200e3
+    reach = Reach(channel="backward_shear", required=0.5, frequency_hz=f,
+                  best_share=np.where(ok, 0.7, 0.2), reachable=ok, limiting=[None] * f.size,
+                  best_cell=np.zeros((f.size, 3)), shear_speed=3130.0)
+    text = export._report(s, lay, tr, ["x"], [], False, 1, reach)
+    assert "REACHABLE" in text and "backward_shear reachable" in text
+    assert "no admissible cell reaches it" in text
+    ax = Figure().subplots()
+    plot_fractions(ax, tr, goal_channel="backward_shear", reachable=ok)
+    assert "reachable by some admissible cell (estimate)" in ax.get_legend_handles_labels()[1]
+    assert ax.get_ylim()[0] < 0

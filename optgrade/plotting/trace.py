@@ -285,7 +285,7 @@ def _model_label(name: str) -> str:
 
 def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
                    compare: Trace | None = None, required: float | None = None,
-                   spread: tuple | None = None) -> Axes:
+                   spread: tuple | None = None, reachable: np.ndarray | None = None) -> Axes:
     """Stacked channel fractions against frequency.
 
     Frequencies where the WKB march is outside its validity (eps > 0.1) are hatched when the
@@ -296,7 +296,9 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
     two strips mark the frequencies where the WKB picture is outside its validity (eps > 0.1)
     and, with ``compare``, where the two models differ by more than 0.1 on some channel.
     ``spread`` (low, high: the wanted fraction's 10 and 90 % quantiles over the robustness
-    goal's machining-error draws) is drawn as a band about the goal line.
+    goal's machining-error draws) is drawn as a band about the goal line. ``reachable`` (bool
+    per frequency, `optgrade.reach`) is a green strip under the axis where some admissible cell
+    could deliver the required fraction at all.
     """
     fs, funit = frequency_unit(float(np.max(trace.frequency)))
     f = trace.frequency / fs
@@ -304,6 +306,12 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
     ax.stackplot(f, ys, colors=[CHANNEL_COLOURS[c] for c in CHANNELS],
                  labels=[CHANNEL_LABELS[c] for c in CHANNELS], alpha=0.9, lw=0)
     halo = [patheffects.withStroke(linewidth=3.2, foreground="#ffffff")]
+    if reachable is not None and len(reachable) == f.size:
+        width_r = float(np.median(np.diff(f))) if f.size > 1 else 0.01 * float(f[0])
+        ok = np.asarray(reachable, bool)
+        if ok.any():
+            ax.bar(f[ok], 0.025, bottom=-0.04, width=width_r, color="#2a9d8f", lw=0,
+                   label="reachable by some admissible cell (estimate)")
     if spread is not None and len(spread[0]) == f.size:
         widest = float(np.max(np.asarray(spread[1]) - np.asarray(spread[0])))
         ax.fill_between(f, spread[0], spread[1], facecolor="#ffffff", alpha=0.55,
@@ -335,7 +343,7 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
             ax.bar(f[off], 0.03, bottom=1.05, width=width, color="#e85d04", lw=0,
                    label=f"{_model_label(compare.propagation)} off by > 0.1 on some channel")
     ax.set_xlim(f.min(), f.max())
-    ax.set_ylim(0, 1.09)
+    ax.set_ylim(-0.045 if reachable is not None else 0.0, 1.09)
     ax.set_yticks(np.linspace(0, 1, 6))
     ax.set_xlabel(f"frequency ({funit})")
     ax.set_ylabel("fraction of incident power")
