@@ -143,7 +143,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     aspect = (grid.nz * grid.h + 1.15 * float(np.max(rods.height))) / (grid.nx * grid.h)
     # each panel: the image at the width the colour bar leaves (about 9.2 in), its title and
     # ticks (0.55 in); the sheet no taller than that, so no empty bands between the frames
-    fig = plt.figure(figsize=(11, min(14.0, 0.8 + 4 * (9.2 * aspect + 0.55))),
+    fig = plt.figure(figsize=(11, min(14.0, 0.7 + 4 * (9.6 * aspect + 0.42))),
                      layout="constrained")
     pf.plot_snapshots(fig, run_rec.snapshots, run_rec.snapshot_times, grid, rods)
     save_figure(fig, out / "snapshots.png")
