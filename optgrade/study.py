@@ -27,6 +27,7 @@ from pydantic import AfterValidator, BaseModel, BeforeValidator, ConfigDict, Fie
 from optgrade.channels import GOAL_CHANNELS
 from optgrade.errors import StudyError
 from optgrade.units import UnitError, format_quantity, parse_quantity
+from optgrade.units import format_eng as _eng
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -650,8 +651,8 @@ def _resolve_substrate(raw: _SubstrateIn, out: _Collector) -> dict[str, Any] | N
             out.add((*section, missing), "give both cl and ct (or neither)")
             return None
         if raw.ct >= raw.cl:
-            out.add((*section, "ct"), f"shear speed ct ({raw.ct:g} m/s) must be below cl "
-                    f"({raw.cl:g} m/s)")
+            out.add((*section, "ct"), f"shear speed ct ({_eng(raw.ct, 'm/s')}) must be below cl "
+                    f"({_eng(raw.cl, 'm/s')})")
             return None
         modulus, poisson = (float(v) for v in elastic_from_speeds(raw.cl, raw.ct, density))
         if not (-1.0 < poisson < 0.5):
@@ -673,7 +674,7 @@ def _resolve_substrate(raw: _SubstrateIn, out: _Collector) -> dict[str, Any] | N
         low, high = LIMITS["speed"]
         if not (low <= value <= high):
             out.add((*section, key), f"derived {key} = {value:.4g} m/s is outside the plausible "
-                    f"range {low:g} .. {high:g} m/s")
+                    f"range {_eng(low, 'm/s')} .. {_eng(high, 'm/s')}")
             return None
     try:
         cr = float(rayleigh_speed(cl, ct))
@@ -709,8 +710,9 @@ def _resolve_resonator(raw: _ResonatorIn, out: _Collector) -> dict[str, Any] | N
     if not ok:
         return None
     if raw.row_pitch <= raw.diameter:
-        out.add((*section, "row_pitch"), f"row pitch ({raw.row_pitch:g} m) must exceed the "
-                f"diameter ({raw.diameter:g} m): neighbouring rods across the row would overlap")
+        out.add((*section, "row_pitch"), f"row pitch ({_eng(raw.row_pitch, 'm')}) must exceed "
+                f"the diameter ({_eng(raw.diameter, 'm')}): neighbouring rods across the row "
+                "would overlap")
         return None
     return {
         "material": raw.material,
@@ -731,8 +733,9 @@ def _head_mass_step(raw: _ResonatorIn, section: tuple, out: _Collector) -> float
     m_lo, m_hi = raw.head_mass
     if raw.head_mass_step is not None:
         if m_hi > m_lo and raw.head_mass_step > m_hi - m_lo:
-            out.add((*section, "head_mass_step"), f"{raw.head_mass_step:g} kg is larger than "
-                    f"the head-mass range ({m_hi - m_lo:g} kg): only one mass would be possible")
+            out.add((*section, "head_mass_step"), f"{_eng(raw.head_mass_step, 'kg')} is larger "
+                    f"than the head-mass range ({_eng(m_hi - m_lo, 'kg')}): only one mass would "
+                    "be possible")
         return float(raw.head_mass_step)
     if m_hi <= 0.0:
         return 0.0
@@ -762,30 +765,32 @@ def _cross_checks(raw: _FileIn, substrate: dict, resonator: dict, out: _Collecto
     s_min, s_max = lay.spacing
     n_min, n_max = lay.count
     if lay.height_step > h_max:
-        out.add(("layout", "height_step"), f"machining step ({lay.height_step:g} m) is larger "
-                f"than the tallest height ({h_max:g} m)")
+        out.add(("layout", "height_step"), f"machining step ({_eng(lay.height_step, 'm')}) is "
+                f"larger than the tallest height ({_eng(h_max, 'm')})")
     elif h_max > h_min and lay.height_step > h_max - h_min:
-        out.add(("layout", "height_step"), f"machining step ({lay.height_step:g} m) is larger "
-                f"than the height range ({h_max - h_min:g} m): only one height would be possible")
+        out.add(("layout", "height_step"), f"machining step ({_eng(lay.height_step, 'm')}) is "
+                f"larger than the height range ({_eng(h_max - h_min, 'm')}): only one height "
+                "would be possible")
     shortest = (n_min - 1) * s_min
     max_length = lay.max_length if lay.max_length is not None else max((n_max - 1) * s_max, s_max)
     if lay.max_length is not None and max_length < shortest:
-        out.add(("layout", "max_length"), f"{max_length:g} m is shorter than the shortest "
-                f"possible row ((count min - 1) x spacing min = {shortest:g} m)")
+        out.add(("layout", "max_length"), f"{_eng(max_length, 'm')} is shorter than the shortest "
+                f"possible row ((count min - 1) x spacing min = {_eng(shortest, 'm')})")
     if fab.min_gap >= s_max - d:
-        out.add(("fabrication", "min_gap"), f"minimum clear gap ({fab.min_gap:g} m) must be "
-                f"below spacing max - diameter ({s_max - d:g} m), otherwise no spacing is "
+        out.add(("fabrication", "min_gap"), f"minimum clear gap ({_eng(fab.min_gap, 'm')}) must be "
+                f"below spacing max - diameter ({_eng(s_max - d, 'm')}), otherwise no spacing is "
                 "machinable")
     if resonator["row_pitch"] - d < fab.min_gap:
         out.add(("resonator", "row_pitch"), f"clear gap across the row "
-                f"({resonator['row_pitch'] - d:g} m) is below fabrication.min_gap "
-                f"({fab.min_gap:g} m)")
+                f"({_eng(resonator['row_pitch'] - d, 'm')}) is below fabrication.min_gap "
+                f"({_eng(fab.min_gap, 'm')})")
     if h_min / d > fab.slenderness_max:
         out.add(("fabrication", "slenderness_max"), f"even the shortest rod has slenderness "
                 f"height/diameter = {h_min / d:.3g}, above the limit {fab.slenderness_max:g}")
     if fab.height_tolerance >= h_max:
-        out.add(("fabrication", "height_tolerance"), f"height tolerance ({fab.height_tolerance:g}"
-                f" m) is not small against the heights (max {h_max:g} m)")
+        out.add(("fabrication", "height_tolerance"), "height tolerance "
+                f"({_eng(fab.height_tolerance, 'm')}) is not small against the heights (max "
+                f"{_eng(h_max, 'm')})")
     if goal.band[0] >= goal.band[1]:
         out.add(("goal", "band"), "band min must be below band max")
     if goal.angle_window is not None and goal.angle_window[0] >= goal.angle_window[1]:
@@ -798,9 +803,9 @@ def _cross_checks(raw: _FileIn, substrate: dict, resonator: dict, out: _Collecto
     position_step = lay.position_step if lay.position_step is not None else lay.height_step
     if position_step > s_min:
         key = "position_step" if lay.position_step is not None else "height_step"
-        out.add(("layout", key), f"position step ({position_step:g} m"
+        out.add(("layout", key), f"position step ({_eng(position_step, 'm')}"
                 f"{'' if lay.position_step is not None else ', the default: the height step'}) is "
-                f"larger than the smallest spacing ({s_min:g} m); set layout.position_step")
+                f"larger than the smallest spacing ({_eng(s_min, 'm')}); set layout.position_step")
     return {"max_length": float(max_length), "weights": weights,
             "position_step": float(position_step)}
 

@@ -280,7 +280,17 @@ _PREFIXES = {-9: "n", -6: "µ", -3: "m", 0: "", 3: "k", 6: "M", 9: "G"}
 def format_eng(value: float, symbol: str, digits: int = 4) -> str:
     """Engineering notation with an SI prefix: ``format_eng(105200.0, "Hz") -> "105.2 kHz"``,
     ``format_eng(0.0025, "m") -> "2.5 mm"``. Exponents outside nano..giga fall back to ``e``
-    notation; zero and non-finite values are printed as they are."""
+    notation; zero and non-finite values are printed as they are. Masses (``"kg"``) read in
+    g, kg or t (``2400 -> "2.4 t"``), speeds (``"m/s"``) in plain m/s as the trade writes
+    them."""
+    if symbol == "kg" and math.isfinite(value) and value != 0.0:
+        if abs(value) >= 1000.0:
+            return f"{value / 1000.0:.{digits}g} t"
+        if abs(value) >= 1.0:
+            return f"{value:.{digits}g} kg"
+        return format_eng(value * 1000.0, "g", digits)
+    if symbol == "m/s":
+        return f"{value:.{digits}g} m/s"
     if not math.isfinite(value) or value == 0.0:
         return f"{value:g} {symbol}"
     exp3 = int(math.floor(math.log10(abs(value)) / 3.0)) * 3
