@@ -251,9 +251,9 @@ def test_channel_map_with_nothing_to_show_says_so():
 
 
 def test_nothing_past_the_turning_point_or_on_the_other_branch_is_read():
-    """The march reads the followed branch up to its first cell without a root and the other
-    branch only at the entry cell (what its row request ``WKB_PATH`` relies on):
-    filling every other point with other values changes nothing."""
+    """The march reads the followed branch up to the first cell where neither branch has a
+    root, the other branch at the entry cell and at that last cell (what its row request
+    ``WKB_PATH`` relies on): filling every other point with other values changes nothing."""
     rng = np.random.default_rng(5)
     n, nf = 30, 9
     freq = np.linspace(20e3, 90e3, nf)
@@ -265,13 +265,15 @@ def test_nothing_past_the_turning_point_or_on_the_other_branch_is_read():
     br = np.where(np.isfinite(k[0, 0]), 0, 1)
     for f in range(nf):
         if turn[f] < n:
-            k[br[f], turn[f], f] = np.nan
+            k[:, turn[f], f] = np.nan  # neither branch: the path ends there
     shares = rng.uniform(0, 1, (2, 5, n, nf))
     angle = rng.uniform(-1.5, 1.5, (2, 4, n, nf))
     ref = march(SimpleNamespace(k=k, shares=shares, angle=angle), lay.x, lay.spacing, freq, CR)
     unread = np.ones((2, n, nf), dtype=bool)
     for f in range(nf):
         unread[br[f], : turn[f] + 1, f] = False  # the turning cell is read (no root)
+        if turn[f] < n:
+            unread[:, turn[f], f] = False  # the other branch is tried there
         unread[:, 0, f] = False
     k2, sh2, an2 = k.copy(), shares.copy(), angle.copy()
     k2[unread] = rng.uniform(1, 2, unread.sum()) * 7e3 + 3e2j
@@ -324,7 +326,9 @@ def test_march_follows_a_branch_across_the_rayleigh_line_by_continuity():
     anti-resonance and ``upper`` (K < kR) on the other. Synthetic lossless modes: branch 0 at
     K = 1.001 kR in cells 0-4, branch 1 at 0.999 kR in cells 5-9. The march continues across
     (transmitted = 1 - entry step; the label-following march turned the wave at cell 5 and
-    reflected everything); a jump to 0.9 kR is a different branch and still turns the wave."""
+    reflected everything). A jump to 0.9 kR is a different branch: a step (issue 13 item 3)
+    that passes t = 4 K_a K_b / (K_a + K_b)^2 (the normal-incidence impedance-step estimate,
+    written out here) and reflects the rest back out at x = 0 (lossless cells)."""
     from types import SimpleNamespace
 
     from optgrade.propagation import march
@@ -347,7 +351,39 @@ def test_march_follows_a_branch_across_the_rayleigh_line_by_continuity():
             assert abs(tr.fractions["transmitted_surface"][0] - (1 - entry)) < 1e-12
             assert np.isnan(tr.turning_position[0])
         else:
-            assert tr.fractions["transmitted_surface"][0] == 0.0
-            assert abs(tr.fractions["reflected_surface"][0] - 1.0) < 1e-12
-            assert abs(tr.turning_position[0] - x[5]) < 1e-15
+            ka, kb = 1.001 * kr, k_upper
+            t = 4 * ka * kb / (ka + kb) ** 2
+            assert abs(tr.fractions["transmitted_surface"][0] - (1 - entry) * t) < 1e-12
+            assert abs(tr.fractions["reflected_surface"][0] - (entry + (1 - entry) * (1 - t))) \
+                < 1e-12
+            assert np.isnan(tr.turning_position[0])
+            # the reflected power turned back at the step (cell 5) and at the entry (x = 0)
+            want = x[5] * (1 - entry) * (1 - t) / tr.fractions["reflected_surface"][0]
+            assert abs(tr.position["reflected_surface"][0] - want) < 1e-12
         assert tr.branch[0] == 0
+
+
+def test_march_passes_a_height_step_between_branches_as_the_exact_model_does():
+    """Issue 13 item 3: 40 pins, 6 mm then 10 mm at 8 mm on the bench block (band 100-200 kHz):
+    between 126 and 210 kHz the short pins carry the lower branch and the tall ones (above
+    their resonance) only the upper one. The march booked everything left as reflected at the
+    step; with the step rule (a mismatch estimate, wave onto the other branch) it follows the
+    exact row model (an independent solution: multiple scattering of the finite row).
+    Worst channel's band-mean |WKB - exact|: 0.589 before, 0.138 after (measured)."""
+    from pathlib import Path
+
+    from optgrade.channels import CHANNELS
+    from optgrade.layout import layout_from_cells
+    from optgrade.propagation import propagation_model
+    from optgrade.study import load_study
+
+    s = load_study(Path(__file__).resolve().parents[1] / "studies" / "bench_backward_shear.toml")
+    lay = layout_from_cells(np.r_[np.full(20, 6e-3), np.full(20, 10e-3)], 8e-3, 1e-3, 0.0, 2e-5)
+    freq = np.linspace(100e3, 200e3, 128)
+    wkb = propagation_model(s, "wkb").trace(lay, freq)
+    ex = propagation_model(s, "scattering").trace(lay, freq)
+    err = [np.mean(np.abs(np.asarray(wkb.fractions[c]) - np.asarray(ex.fractions[c])))
+           for c in CHANNELS]
+    assert max(err) < 0.25, dict(zip(CHANNELS, np.round(err, 3)))
+    total = sum(np.asarray(wkb.fractions[c]) for c in CHANNELS)
+    assert np.max(np.abs(total - 1)) < 1e-9

@@ -154,12 +154,10 @@ def _rows(study, rng, n=60):
 def _continuity_path(k, order=(0, 1)):
     """(path, tried, ended) boolean masks of shape k.shape: the points the march follows (entry
     branch, lower first; the other branch from a cell where the followed one has no root and
-    the other's K' is within SWITCH_TOL of the last one) and the points tried where the
-    followed branch ends (both branches of that cell; ``ended``: the followed one there, which
-    has no root). Written from the rule in
+    the other one has: the same branch relabelled, or a step between branches) and the points
+    tried where the followed branch ends (both branches of that cell; ``ended``: the followed
+    one there, which has no root). Written from the rule in
     optgrade/dispersion/_modes.py, independently of the kernel's and the march's code."""
-    from optgrade.dispersion._modes import SWITCH_TOL
-
     path = np.zeros(k.shape, dtype=bool)
     tried = np.zeros(k.shape, dtype=bool)
     ended = np.zeros(k.shape, dtype=bool)
@@ -177,8 +175,7 @@ def _continuity_path(k, order=(0, 1)):
             tried[:, j, f] = True
             ended[br, j, f] = True
             other = k[1 - br, j, f]
-            prev = k[br, j - 1, f].real if j > 0 else np.nan
-            if j > 0 and np.isfinite(other) and abs(other.real - prev) <= SWITCH_TOL * abs(prev):
+            if j > 0 and np.isfinite(other):
                 br = 1 - br
                 path[br, j, f] = True
                 continue
@@ -211,7 +208,7 @@ def test_path_only_gives_the_march_the_same_modes(which, bench_sur, site_sur):
         for c in CHANNELS:
             assert np.allclose(t_full.fractions[c], t_part.fractions[c], rtol=0, atol=1e-8), c
         # the points the march reads: the followed branch on the path (switching to the other
-        # branch where it continues the followed one, SWITCH_TOL), plus at every cell where
+        # branch where the followed one has no root and the other one has), plus where
         # the followed branch ends both branches (the other one is tried there)
         path, tried, ended = _continuity_path(full.k)
         kp, kb = part.k[path], full.k[path]

@@ -69,7 +69,7 @@ from optgrade.dispersion._kernel_roots import (
     scan_bracket,
 )
 from optgrade.dispersion._kernel_sums import _blend_column, _ff2_re, _same_blend
-from optgrade.dispersion._modes import ABSENT, FIRST_ORDER, ROOT, SWITCH_TOL
+from optgrade.dispersion._modes import ABSENT, FIRST_ORDER, ROOT
 from optgrade.ground._halfspace import compliance_im_at, shear_share_at
 from optgrade.resonators._rod import rod_parts_at
 
@@ -276,12 +276,11 @@ def _advance_path(ic, jf, k, entry_order, path_br, path_on):
                 return
         path_on[jf] = False
     elif math.isnan(k[path_br[jf], ic, jf].real):
-        # continue on the other branch where its K' is within SWITCH_TOL of the last one
-        # (the march's `_follow_by_continuity` applies the same rule)
+        # continue on the other branch where it has a root (the march's `_follow_by_continuity`
+        # applies the same rule: the same branch under its other label within SWITCH_TOL,
+        # a step between two branches otherwise)
         other = 1 - path_br[jf]
-        prev = k[path_br[jf], ic - 1, jf].real
-        ko = k[other, ic, jf].real
-        if not math.isnan(ko) and abs(ko - prev) <= SWITCH_TOL * abs(prev):
+        if not math.isnan(k[other, ic, jf].real):
             path_br[jf] = other
         else:
             path_on[jf] = False

@@ -35,9 +35,11 @@ ROOT = 1  # a root of the dispersion relation (Newton converged and accepted, or
 FIRST_ORDER = 2  # first-order estimate K'' = -Im D / Re D' (near a branch point)
 
 #: A row request (and the march) continues on the other branch where the followed one has no
-#: root and the other's K' is within this relative change of the last cell's: one physical
-#: branch changes its label (slower / faster than Rayleigh) where it crosses the Rayleigh line
-#: at a rod anti-resonance (issue 13 item 2, docs/physics.md section 11.3).
+#: root and the other one has. Within this relative change of the last cell's K' it is one
+#: physical branch that changes its label (slower / faster than Rayleigh) where it crosses the
+#: Rayleigh line at a rod anti-resonance (issue 13 item 2, docs/physics.md section 11.3);
+#: beyond it the march treats the cell as a step between two branches (partial transmission,
+#: optgrade/propagation/_wkb.py step 4a).
 SWITCH_TOL = 0.02
 
 
@@ -86,7 +88,8 @@ def status_from(k: np.ndarray, is_first_order: np.ndarray) -> np.ndarray:
 class RowPath:
     """Request for the points along a row: the cells are a row in order from the entry; per
     frequency the branches of ``entry_order`` are tried at the entry cell in turn, the first
-    with a root is followed cell by cell up to and including the first cell where it has none.
+    with a root is followed cell by cell (on the other branch from a cell where it has no root
+    but the other one has) up to and including the first cell where neither has one.
     Every other point may be left unsolved (status NOT_SOLVED, k nan).
 
     Attributes
