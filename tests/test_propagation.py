@@ -384,6 +384,6 @@ def test_march_passes_a_height_step_between_branches_as_the_exact_model_does():
     ex = propagation_model(s, "scattering").trace(lay, freq)
     err = [np.mean(np.abs(np.asarray(wkb.fractions[c]) - np.asarray(ex.fractions[c])))
            for c in CHANNELS]
-    assert max(err) < 0.25, dict(zip(CHANNELS, np.round(err, 3)))
+    assert max(err) < 0.25, dict(zip(CHANNELS, np.round(err, 3), strict=True))
     total = sum(np.asarray(wkb.fractions[c]) for c in CHANNELS)
     assert np.max(np.abs(total - 1)) < 1e-9
