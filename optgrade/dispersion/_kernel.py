@@ -11,8 +11,9 @@ rod's in `optgrade.resonators._rod`.
 
 A row request (`entry_order` not empty; `optgrade.dispersion.RowPath`) solves the cells as a
 row in order from the entry: at the entry cell the branches of ``entry_order`` in turn until
-one has a root, that branch at the later cells, each frequency up to and including the first
-cell where its branch has no root. The rest is left unsolved (status NOT_SOLVED, k nan).
+one has a root, that branch at the later cells (the other one from a cell where it has no root
+but the other has: the march's continuity and step rule), each frequency up to and including
+the first cell where neither has a root. The rest is left unsolved (status NOT_SOLVED, k nan).
 
 Speed-ups (benchmarks/bench_dispersion.py, benchmarks/bench_propagation.py; method, checks
 and figures in docs/surrogate-speed.md). Real axis: the pole-side sign of the pole-free Re D is
@@ -268,7 +269,8 @@ def _entry_has_root(k, entry_order, ib, jf):
 @njit(cache=True, inline="always")
 def _advance_path(ic, jf, k, entry_order, path_br, path_on):
     """Row request: the branch followed from the entry cell (the first of the entry order with
-    a root), and the end of the path at the first cell where it has none."""
+    a root), the other one from a cell where it has no root but the other has, and the end of
+    the path at the first cell where neither has one."""
     if ic == 0:
         for ib in range(entry_order.size):
             if not math.isnan(k[entry_order[ib], 0, jf].real):

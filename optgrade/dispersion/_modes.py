@@ -3,9 +3,10 @@
 `LocalModes` holds the local Bloch modes of cells at frequencies, with a per-point status
 (exact root, first-order estimate, absent, not solved) in the manner of a root finder's
 result flag. `RowPath` is a request a caller may pass to ``local_modes``: the cells are a row in
-order from the entry, and per frequency only one branch is followed, from the entry cell until
-(and including) the first cell where it has no root, the branch being the first of the caller's
-``entry_order`` that has a root at the entry cell. `Dispersion` is what a propagation model
+order from the entry, and per frequency one path is followed, from the entry cell until (and
+including) the first cell where neither branch has a root: the first of the caller's
+``entry_order`` that has a root at the entry cell, the other branch from a cell where the
+followed one has none but the other has. `Dispersion` is what a propagation model
 needs from the dispersion stage (the surrogate, or anything else with the same two members).
 """
 

@@ -279,7 +279,8 @@ class Surrogate:
 
         With a row request ``path`` (`RowPath`) the cells are a row in order from the entry
         and only the points of the request are solved (per frequency, the branch chosen at the
-        entry cell, up to and including the first cell where it has no root); every other point
+        entry cell, the other one from a cell where it has no root but the other has, up to and
+        including the first cell where neither has one); every other point
         has status NOT_SOLVED (k nan). Without, every point is solved.
         """
         h, a, m = np.broadcast_arrays(

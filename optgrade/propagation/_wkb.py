@@ -373,8 +373,9 @@ def _march_kernel(k, shares, angle, t_step, x, a, freq, cr):
 
 
 #: the points the march reads (what it asks the dispersion stage for): per frequency the
-#: branch chosen at the entry cell, the lower (surface) branch first, followed up to and
-#: including the first cell without a root (steps 1 and 4 of the module docstring)
+#: branch chosen at the entry cell, the lower (surface) branch first, followed (onto the other
+#: branch where it has no root and the other has) up to and including the first cell where
+#: neither has a root (steps 1, 4a and 4 of the module docstring)
 WKB_PATH = RowPath(entry_order=(0, 1))
 
 
