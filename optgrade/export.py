@@ -97,10 +97,11 @@ def _jsonable(obj: Any) -> Any:
 # DXF (optgrade.drawing)
 
 
-def _mm_text(value_m: float) -> str:
-    from optgrade.layout import _SCALE, _shortest
+def _length_text(value_m: float, unit: str = "mm") -> str:
+    """A length (m) as the machining table writes it (shortest exact decimal), in mm or m."""
+    from optgrade.layout import _shortest
 
-    return _shortest(float(value_m), _SCALE["x_mm"])
+    return _shortest(float(value_m), Decimal(1000 if unit == "mm" else 1))
 
 
 def write_dxf(study: Study, layout: Layout, path: Path, *, trial_number: int | None,
@@ -114,9 +115,9 @@ def write_dxf(study: Study, layout: Layout, path: Path, *, trial_number: int | N
         study=study.meta.name, trial=trial_number,
         rod_material=study.resonator.material or "custom (see study file)",
         substrate_material=study.substrate.material or "custom (see study file)",
-        diameter_mm=_mm_text(float(np.max(layout.diameter))),
-        row_pitch_mm=_mm_text(study.resonator.row_pitch),
-        height_tolerance_mm=_mm_text(study.fabrication.height_tolerance),
+        diameter_mm=_length_text(float(np.max(layout.diameter))),
+        row_pitch_mm=_length_text(study.resonator.row_pitch),
+        height_tolerance_mm=_length_text(study.fabrication.height_tolerance),
         date=date, package=f"optgrade {__version__}",
         caution=SITE_CAUTION if study.meta.scale == "site" else None,
     )
@@ -195,10 +196,9 @@ def _summary_lines(study: Study, trace: Trace, values: dict, violations: list,
     for name, v in values.items():
         obj = objectives.get(name)
         w = weights.get(name, 0.0)
-        sign = "+" if obj.direction == "maximize" else "-"
         said = {"maximize": "maximised", "minimize": "minimised"}[obj.direction]
         lines.append(f"  {name}: {v.score:.4f} ({said}, weight {w:g}, adds "
-                     f"{sign}{w * abs(v.score):.4f})")
+                     f"{w * objectives.signed(obj, v.score):+.4f})")
     bad = ~np.asarray(trace.is_adiabatic, dtype=bool)
     lines.append(f"non-adiabatic frequencies (eps > 0.1): {int(bad.sum())} of {len(f)}")
     fab = "all limits met" if not violations else f"{len(violations)} violation(s)"
@@ -379,15 +379,13 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
     wanted = np.nan_to_num(wanted, nan=0.0)
     meets = wanted >= study.goal.required_fraction
     np.asarray(layout.height) * 1e3
-    from optgrade.layout import _shortest
     from optgrade.plotting.trace import length_unit
     from optgrade.verdict import verdict
 
     unit = length_unit(float(layout.length))[1]  # mm on the bench, m at site scale
 
     def ln(value_m: float) -> str:
-        """A length as the machining table would write it, in the report's unit."""
-        return f"{_shortest(float(value_m), Decimal(1000 if unit == 'mm' else 1))} {unit}"
+        return f"{_length_text(value_m, unit)} {unit}"
 
     judged = verdict(study, layout, trace)
     lines = [
@@ -564,7 +562,7 @@ def export_candidates(study: Study, source: optuna.Study | str, out_dir: str | o
                                              material=study.resonator.material or "custom",
                                              date=today, extra_header=header)))
         lines.append(f"{rank},{number},{score:.6g},{layout.n_resonators},"
-                     f"{_mm_text(float(layout.x[-1]))},{name}")
+                     f"{_length_text(float(layout.x[-1]))},{name}")
     comment = [f"# {out['advice']}"] if out["advice"] else []
     _write_text(folder / "candidates.csv", "\n".join(comment + lines) + "\n")
     return out

@@ -449,7 +449,8 @@ def layout_arrays(study: Study, params: dict[str, Any]) -> dict[str, np.ndarray]
     # is the one the table states)
     x = quantise_positions(spacing, study.layout.position_step, s_lo, s_hi,
                            study.layout.max_length)
-    spacing = np.append(np.diff(x), np.diff(x)[-1]) if n >= 2 else spacing
+    cells = np.diff(x)
+    spacing = np.append(cells, cells[-1])
     return {
         "x": x,
         "height": height,
@@ -461,10 +462,11 @@ def layout_arrays(study: Study, params: dict[str, Any]) -> dict[str, np.ndarray]
 
 
 def layout_from_params(study: Study, params: dict[str, Any]) -> Layout:
-    """Build the :class:`optgrade.layout.Layout` described by a parameter dict."""
-    from optgrade.layout import layout_from_cells
+    """Build the :class:`optgrade.layout.Layout` described by a parameter dict (its positions
+    as rounded, not re-summed from the cells, so the table states them without binary
+    noise)."""
+    from optgrade.layout import Layout
 
     a = layout_arrays(study, params)
-    return layout_from_cells(
-        a["height"], a["spacing"], a["diameter"], a["head_mass"], a["height_tol"]
-    )
+    return Layout(x=a["x"], height=a["height"], diameter=a["diameter"],
+                  head_mass=a["head_mass"], height_tol=a["height_tol"])

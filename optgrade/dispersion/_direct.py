@@ -204,7 +204,7 @@ def folded_order(kr, g, is_homog):
     return m_r, kr - m_r * g
 
 
-def _pole_bounds(kr, g, n_main, is_homog, m_r=None):
+def _pole_bounds(kr, g, n_main, is_homog, m_r):
     """Nearest Rayleigh poles of the main harmonics below and above the folded Rayleigh pole
     kR_red = kR - m_r 2 pi / a (`folded_order`) in (0, 2 pi/a).
 
@@ -215,8 +215,6 @@ def _pole_bounds(kr, g, n_main, is_homog, m_r=None):
     p_hi = np.full(kr.shape, np.nan)
     if is_homog:
         return p_lo, p_hi
-    if m_r is None:
-        m_r = np.zeros(kr.shape)
     kr_red = kr - m_r * g
     for m in range(-n_main, n_main):
         for sgn in (1.0, -1.0):

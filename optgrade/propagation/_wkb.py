@@ -237,7 +237,8 @@ def _follow_by_continuity(k, shares, angle):
 @njit(cache=True)
 def _book_channels(f, br, n_path, sh, w_f, w_r, angle, x, a, fr, pos, ang):
     """The five decay channels' fractions, positions and angles at frequency index f from the
-    cells' shares sh and the forward / return weights w_f, w_r of the path."""
+    cells' normalised shares sh and the power w_f, w_r each cell of the path loses on the
+    forward and the return pass."""
     # a wave travelling towards -x radiates mirror-imaged: its own forward harmonic points to -x
     swap = (2, 3, 0, 1, 4)
     for c in range(5):
@@ -286,7 +287,7 @@ def _march_kernel(k, shares, angle, t_step, x, a, freq, cr):
     phase = np.full(n_freq, np.nan)
     x_end = x[n_cells - 1] + a[n_cells - 1]
     tau = np.zeros(n_cells)
-    cum = np.zeros(n_cells)  # power reflected at each cell's step
+    step_back = np.zeros(n_cells)  # power reflected at each cell's step
     sh = np.zeros((5, n_cells))
     w_f = np.zeros(n_cells)
     w_r = np.zeros(n_cells)
@@ -316,10 +317,12 @@ def _march_kernel(k, shares, angle, t_step, x, a, freq, cr):
             if s_sum <= 0.0:
                 sh[4, j] += 1.0
                 s_sum += 1.0
-            cum[j] = power * (1.0 - t_step[j, f])  # reflected at this cell's step
+            for c in range(5):
+                sh[c, j] /= s_sum
+            step_back[j] = power * (1.0 - t_step[j, f])  # reflected at this cell's step
             power *= t_step[j, f]
             gone = power * -math.expm1(-tau[j])
-            w_f[j] = gone / s_sum
+            w_f[j] = gone
             power -= gone
         # 4. return path: the power turned at the end of the path and the parts reflected at
         # the steps travel back towards x = 0, still leaking (a step passes the returning wave
@@ -327,14 +330,10 @@ def _march_kernel(k, shares, angle, t_step, x, a, freq, cr):
         back = power if is_turning else 0.0
         through = 0.0 if is_turning else power
         for j in range(n_path - 1, -1, -1):
-            if j + 1 < n_path:
-                back += cum[j + 1]
             gone = back * -math.expm1(-tau[j])
-            s_sum = sh[0, j] + sh[1, j] + sh[2, j] + sh[3, j] + sh[4, j]
-            w_r[j] = gone / s_sum
+            w_r[j] = gone
             back -= gone
-        if n_path > 0:
-            back += cum[0]
+            back += step_back[j]  # reflected at the cell's entry: it does not cross the cell
         _book_channels(f, br, n_path, sh, w_f, w_r, angle, x, a, fr, pos, ang)
         # 5. exit
         reflected = entry[f] + back
@@ -352,7 +351,7 @@ def _march_kernel(k, shares, angle, t_step, x, a, freq, cr):
             xs = 0.0
             depth = 0.0  # optical depth from x = 0 to the cell
             for j in range(n_path):
-                xs += cum[j] * math.exp(-depth) * x[j]
+                xs += step_back[j] * math.exp(-depth) * x[j]
                 depth += tau[j]
             if is_turning:
                 xs += power * math.exp(-depth) * x_turn[f]

@@ -428,7 +428,7 @@ class _PlainProgress:
     PLAIN_EVERY = 30.0
 
     def __init__(self, total: int, done: int) -> None:
-        self.total, self.start_done = max(int(total), 1), int(done)
+        self.total = max(int(total), 1)
         self.t0 = self.t_last = time.monotonic()
         self.next_tenth = (10 * int(done)) // self.total + 1
 
