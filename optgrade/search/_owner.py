@@ -30,6 +30,7 @@ The search never writes exports: ``optgrade search`` calls :func:`run_search` an
 
 from __future__ import annotations
 
+import datetime
 import functools
 import hashlib
 import json
@@ -49,7 +50,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import optuna
 from optuna.exceptions import UpdateFinishedTrialError
-from optuna.trial import TrialState
+from optuna.trial import FrozenTrial, TrialState
 
 from optgrade import __version__, fabrication, objectives, profiles, propagation
 from optgrade.dispersion import RowPath
@@ -634,6 +635,24 @@ def run_search(
     )
 
 
+@dataclass
+class _Asked:
+    """A trial this owner asked: its number and id in the storage, parameters, the lost trial
+    it replaces, and the optuna Trial when it was asked through optuna (else None)."""
+
+    number: int
+    trial_id: int
+    params: dict[str, Any]
+    requeued_from: int | None
+    trial: optuna.trial.Trial | None
+
+
+def _trial_number(storage: Any, trial_id: int) -> int:
+    """Number of a trial just created through ``storage`` (optuna's cache knows it)."""
+    known = getattr(storage, "_trial_id_to_study_id_and_number", {}).get(trial_id)
+    return int(known[1]) if known is not None else int(storage.get_trial_number_from_id(trial_id))
+
+
 class _OwnerLoop:
     """The ask / score / tell loop of one owner (state shared by its small steps)."""
 
@@ -660,65 +679,107 @@ class _OwnerLoop:
         self.last_recovery = time.monotonic()
 
     # -- asking ---------------------------------------------------------------------------
-    def _drop(self, trial: optuna.trial.Trial, attr: str, value: Any) -> None:
+    def _drop(self, rec: _Asked, attr: str, value: Any) -> None:
         """Fail an asked trial without scoring it (not counted); a re-enqueued candidate goes
         back into the queue."""
-        self.pending.pop(trial.number, None)
-        self.trial_ids.pop(trial.number, None)
-        trial.set_user_attr(attr, value)
-        self.ostudy.tell(trial, state=TrialState.FAIL)
-        origin = trial.user_attrs.get("requeued_from") if hasattr(trial, "user_attrs") else None
-        if origin is not None and attr == "surplus":
-            self.ostudy.enqueue_trial(dict(trial.params), user_attrs={"requeued_from": origin},
+        self.pending.pop(rec.number, None)
+        self.trial_ids.pop(rec.number, None)
+        self._finish(rec, TrialState.FAIL, None, {attr: value})
+        if rec.requeued_from is not None and attr == "surplus":
+            self.ostudy.enqueue_trial(dict(rec.params),
+                                      user_attrs={"requeued_from": rec.requeued_from},
                                       skip_if_exists=False)
 
-    def ask_chunk(self, n: int) -> list[tuple[int, dict]]:
-        asked = []
-        for _ in range(n):
-            with warnings.catch_warnings():
-                # the owner records heartbeats itself (ask-and-tell, no Study.optimize):
-                # optuna's reminder that heartbeats are meant for optimize() does not apply
-                warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed")
-                trial = self.ostudy.ask(fixed_distributions=self.space)
+    def _finish(self, rec: _Asked, state: TrialState, values: list | None,
+                attrs: dict[str, Any]) -> None:
+        """Write the trial's end: its attributes, then state and values (the storage's atomic
+        state change last). A trial asked through optuna is told through optuna (the sampler's
+        after-trial hook); one created by the fast path is written to the storage directly."""
+        if rec.trial is not None:
+            for k, v in attrs.items():
+                rec.trial.set_user_attr(k, v)
+            self.ostudy.tell(rec.trial, values, state=state)
+            return
+        storage = self.ostudy._storage
+        for k, v in attrs.items():
+            storage.set_trial_user_attr(rec.trial_id, k, v)
+        if not storage.set_trial_state_values(rec.trial_id, state, values):
+            raise UpdateFinishedTrialError(f"trial {rec.number} is no longer running")
+
+    def _ask_optuna(self) -> _Asked:
+        """One trial through optuna's ask (queued re-enqueued trials, samplers without a batch
+        method): created, then tagged with the owner."""
+        with warnings.catch_warnings():
+            # the owner records heartbeats itself (ask-and-tell, no Study.optimize):
+            # optuna's reminder that heartbeats are meant for optimize() does not apply
+            warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed")
+            trial = self.ostudy.ask(fixed_distributions=self.space)
+        if self.beats is not None:
+            self.beats.beat(trial._trial_id)  # before the tag: never untagged and unbeaten
+        trial.set_user_attr("owner", self.owner)
+        return _Asked(trial.number, trial._trial_id, dict(trial.params),
+                      trial.user_attrs.get("requeued_from"), trial)
+
+    def _ask_batch(self, n: int) -> list[_Asked]:
+        """``n`` fresh trials from the sampler's batch method, each created in one write with
+        its parameters and owner tag (no gap between ask and tag)."""
+        storage, sid = self.ostudy._storage, self.ostudy._study_id
+        out = []
+        for params in self.ostudy.sampler.sample_batch(self.ostudy, self.space, n):
+            template = FrozenTrial(
+                number=-1, state=TrialState.RUNNING, value=None,
+                datetime_start=datetime.datetime.now(), datetime_complete=None, params=params,
+                distributions=self.space, user_attrs={"owner": self.owner}, system_attrs={},
+                intermediate_values={}, trial_id=-1)
+            tid = storage.create_new_trial(sid, template_trial=template)
             if self.beats is not None:
-                self.beats.beat(trial._trial_id)  # before the tag: never untagged and unbeaten
-            trial.set_user_attr("owner", self.owner)
-            self.pending[trial.number] = trial
-            self.trial_ids[trial.number] = trial._trial_id
-            asked.append(trial)
+                self.beats.beat(tid)
+            out.append(_Asked(_trial_number(storage, tid), tid, params, None, None))
+        return out
+
+    def _has_waiting(self) -> bool:
+        return bool(self.ostudy._storage.get_all_trials(
+            self.ostudy._study_id, deepcopy=False, states=(TrialState.WAITING,)))
+
+    def ask_chunk(self, n: int) -> list[tuple[int, dict]]:
+        asked: list[_Asked] = []
+        if hasattr(self.ostudy.sampler, "sample_batch") and not self._has_waiting():
+            asked = self._ask_batch(n)
+        else:  # re-enqueued trials first (optuna pops them), or a sampler without a batch
+            asked = [self._ask_optuna() for _ in range(n)]
+        for rec in asked:
+            self.pending[rec.number] = rec
+            self.trial_ids[rec.number] = rec.trial_id
         ok = admit(self.ostudy, [t.number for t in asked], self.n_trials)
         chunk = []
-        for trial in asked:
-            if trial.number not in ok:
+        for rec in asked:
+            if rec.number not in ok:
                 self.n_surplus += 1
-                self._drop(trial, "surplus", True)
+                self._drop(rec, "surplus", True)
                 continue
-            pkey = params_key(trial.params)
-            origin = trial.user_attrs.get("requeued_from")
+            pkey = params_key(rec.params)
             other = self.seen.get(pkey)
-            if other is not None and other != origin and other != trial.number:
+            if other is not None and other != rec.requeued_from and other != rec.number:
                 self.n_duplicates += 1
-                self._drop(trial, "duplicate_of", int(other))
+                self._drop(rec, "duplicate_of", int(other))
                 continue
-            self.seen[pkey] = trial.number
-            chunk.append((trial.number, dict(trial.params)))
+            self.seen[pkey] = rec.number
+            chunk.append((rec.number, dict(rec.params)))
         return chunk
 
     # -- telling --------------------------------------------------------------------------
     def tell(self, res: dict[str, Any]) -> None:
-        trial = self.pending.pop(res["number"])
+        rec = self.pending.pop(res["number"])
         self.trial_ids.pop(res["number"], None)
         try:
             if "error" in res:
-                trial.set_user_attr("error", res["error"])
-                self.ostudy.tell(trial, state=TrialState.FAIL)
+                self._finish(rec, TrialState.FAIL, None, {"error": res["error"]})
             elif res["violations"] and self.multi:  # off the Pareto front: FAIL, kept
-                trial.set_user_attr("error", "breaks a fabrication limit")
-                self.ostudy.tell(trial, state=TrialState.FAIL)
+                self._finish(rec, TrialState.FAIL, None,
+                             {"error": "breaks a fabrication limit"})
             else:
-                # one write: the numbers behind the score (the sampler needs only the values)
-                trial.set_user_attr("score", res["score"])
-                self.ostudy.tell(trial, res["values"])
+                # one attribute: the numbers behind the score (the sampler needs the values)
+                self._finish(rec, TrialState.COMPLETE, res["values"], {"score": res["score"]})
                 if self.best_score is None or res["score"] > self.best_score:
                     self.best_score, self.best_number = res["score"], res["number"]
         except UpdateFinishedTrialError:
@@ -779,7 +840,8 @@ class _OwnerLoop:
     def run(self, flag: dict, time_budget: float | None, progress: Callable) -> None:
         ex = _executor(self.n_jobs) if self.n_jobs > 0 else None
         inflight: deque = deque()  # (chunk list, future or None, n_attempts)
-        n_slots = max(self.n_jobs, 1)
+        # two chunks per worker in flight: a worker never waits while the owner tells and asks
+        n_slots = max(2 * self.n_jobs, 1)
         n_empty = 0
         while True:
             is_over = (time_budget is not None

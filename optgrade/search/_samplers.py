@@ -57,10 +57,65 @@ class _TPE(SamplerFactory):
 
     @staticmethod
     def build(seed: int, is_multi: bool) -> optuna.samplers.BaseSampler:  # noqa: ARG004
-        import optuna
+        cls = _batch_tpe_class()
+        return cls(seed=seed, multivariate=True, constant_liar=True,
+                   n_startup_trials=TPE_STARTUP)
 
-        return optuna.samplers.TPESampler(seed=seed, multivariate=True, constant_liar=True,
-                                          n_startup_trials=TPE_STARTUP)
+
+def _batch_tpe_class() -> type:
+    """optuna's TPE with a ``sample_batch`` method (the owner's fast ask path), or plain TPE
+    where this optuna lacks the internals it reuses."""
+    import optuna
+
+    try:
+        from optuna.samplers._tpe.sampler import _split_trials
+    except ImportError:  # pragma: no cover  another optuna layout: the plain sampler
+        return optuna.samplers.TPESampler
+    from optuna.trial import TrialState
+
+    class BatchTPESampler(optuna.samplers.TPESampler):
+        """TPE that fits its two Parzen estimators once per batch of candidates.
+
+        optuna's TPE refits both estimators for every trial, reading the whole study; the
+        fit is Python work linear in the trials (22 ms per trial at 850 trials in memory,
+        measured, docs/search.md "Where the loop's time goes"), more than a WKB score.
+        ``sample_batch(study, space, n)`` reads the trials once, fits once and draws ``n``
+        candidates, each the best of its own ``n_ei_candidates`` draws from the same fit:
+        what ``n`` workers asking at the same moment would get. The running trials enter
+        the fit as the constant liar's worst values, as in optuna's TPE. Before the startup
+        count, candidates are independent uniform draws (optuna's TPE startup).
+        """
+
+        def sample_batch(self, study: optuna.Study, space: dict, n: int) -> list[dict]:
+            states = (TrialState.COMPLETE, TrialState.PRUNED, TrialState.RUNNING)
+            trials = study._get_trials(deepcopy=False, states=states, use_cache=False)
+            n_done = sum(t.state != TrialState.RUNNING for t in trials)
+            if n_done < self._n_startup_trials:
+                rnd = self._random_sampler
+                return [{name: rnd.sample_independent(study, None, name, dist)
+                         for name, dist in space.items()} for _ in range(n)]
+            if self._gamma is None:
+                from optuna.samplers._tpe.sampler import (
+                    default_gamma,
+                    default_gamma_multiobjective,
+                )
+                self._gamma = (default_gamma if len(study.directions) <= 1
+                               else default_gamma_multiobjective)
+            if not self._constant_liar:
+                trials = [t for t in trials if t.state != TrialState.RUNNING]
+            below, above = _split_trials(study, trials, self._gamma(n_done))
+            mpe_below = self._build_parzen_estimator(study, space, below, handle_below=True)
+            mpe_above = self._build_parzen_estimator(study, space, above, handle_below=False)
+            out = []
+            for _ in range(n):
+                samples = mpe_below.sample(self._rng.rng, self._n_ei_candidates)
+                acq = self._compute_acquisition_func(samples, mpe_below, mpe_above)
+                best = type(self)._compare(samples, acq)
+                out.append({name: dist.to_external_repr(best[name])
+                            for name, dist in space.items()})
+            return out
+
+    return BatchTPESampler
 
 
 @SAMPLERS.register
@@ -71,7 +126,14 @@ class _Random(SamplerFactory):
     def build(seed: int, is_multi: bool) -> optuna.samplers.BaseSampler:  # noqa: ARG004
         import optuna
 
-        return optuna.samplers.RandomSampler(seed=seed)
+        class BatchRandomSampler(optuna.samplers.RandomSampler):
+            """Uniform candidates, ``n`` at a time (the owner's fast ask path)."""
+
+            def sample_batch(self, study: optuna.Study, space: dict, n: int) -> list[dict]:
+                return [{name: self.sample_independent(study, None, name, dist)
+                         for name, dist in space.items()} for _ in range(n)]
+
+        return BatchRandomSampler(seed=seed)
 
 
 @SAMPLERS.register
