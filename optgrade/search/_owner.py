@@ -8,9 +8,15 @@ Design (see docs/search.md for the measurements behind it):
 - **Workers only score.** A joblib (loky) process pool; each worker builds the study's
   evaluation context (surrogate tables from the disk cache) once and keeps it in a module-level
   cache keyed by the study hash. The owner asks candidates in chunks of ``chunk_size`` and keeps
-  one chunk per worker in flight; chunks are told back in the order they were asked (FIFO), so
-  the sequence of asks and tells, and with it the whole search, is reproducible for a given
-  seed, worker count and chunk size.
+  one chunk per worker in flight (two were measured: no faster, and staler fits); chunks are
+  told back in the order they were asked (FIFO), so the sequence of asks and tells, and with
+  it the whole search, is reproducible for a given seed, worker count and chunk size.
+- **A chunk is one sampler fit.** Samplers with a ``sample_batch`` method (TPE, random) give
+  the whole chunk from one read of the study and one fit; each trial is then created in one
+  storage write with its parameters and owner tag, and told straight to the storage (no
+  read-back). Queued re-enqueued trials and the other samplers go through optuna's ``ask``.
+  Why: the loop, not the physics, set the pace (docs/search.md, "Where the loop's time
+  goes").
 - **Crash safety.** A told trial is in storage. A worker killed by a signal breaks the pool
   (``TerminatedWorkerError``): the owner survives, starts a fresh pool and re-scores the chunks
   that were in flight, so no finished trial is lost and none is told twice. A chunk that kills
@@ -840,8 +846,7 @@ class _OwnerLoop:
     def run(self, flag: dict, time_budget: float | None, progress: Callable) -> None:
         ex = _executor(self.n_jobs) if self.n_jobs > 0 else None
         inflight: deque = deque()  # (chunk list, future or None, n_attempts)
-        # two chunks per worker in flight: a worker never waits while the owner tells and asks
-        n_slots = max(2 * self.n_jobs, 1)
+        n_slots = max(self.n_jobs, 1)
         n_empty = 0
         while True:
             is_over = (time_budget is not None
