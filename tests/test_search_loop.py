@@ -92,3 +92,28 @@ def test_batch_tpe_startup_draws_are_uniform_and_seeded():
     assert draws[0] == draws[1]
     assert 4.0 < statistics.mean(draws[0]) < 6.0
     assert min(draws[0]) < 0.5 and max(draws[0]) > 9.5
+
+
+def test_an_owner_killed_before_its_first_heartbeat_leaves_an_untagged_trial(tmp_path,
+                                                                            monkeypatch):
+    """The batch path creates a trial, records its heartbeat, then tags it (optuna's ask
+    order). A kill between creation and the first heartbeat must leave an untagged trial, which
+    the lost-trial rules take after a few grace periods; a trial tagged at creation and never
+    beaten was never taken when its owner was on another host (CI: the surviving owner waited
+    for it until the test's 240 s timeout)."""
+
+    class Killed(BaseException):
+        pass
+
+    def die(self, trial_id):
+        raise Killed
+
+    monkeypatch.setattr(_lease.HeartbeatThread, "beat", die)
+    url = f"sqlite:///{tmp_path / 'kill.db'}"
+    with pytest.raises(Killed):
+        search.run_search(fake_study(search__batch_size=4), tmp_path / "out", n_trials=8,
+                          n_jobs=0, storage=url, pipeline=fake_pipeline, show_progress=False)
+    st = optuna.load_study(study_name="fake", storage=search.open_storage(url))
+    running = st.get_trials(deepcopy=False, states=(TrialState.RUNNING,))
+    assert len(running) == 1
+    assert "owner" not in running[0].user_attrs and running[0].params

@@ -13,10 +13,10 @@ Design (see docs/search.md for the measurements behind it):
   it the whole search, is reproducible for a given seed, worker count and chunk size.
 - **A chunk is one sampler fit.** Samplers with a ``sample_batch`` method (TPE, random) give
   the whole chunk from one read of the study and one fit; each trial is then created in one
-  storage write with its parameters and owner tag, and told straight to the storage (no
-  read-back). Queued re-enqueued trials and the other samplers go through optuna's ``ask``.
-  Why: the loop, not the physics, set the pace (docs/search.md, "Where the loop's time
-  goes").
+  storage write with its parameters (then heartbeat, then owner tag, as optuna's ask path), and
+  told straight to the storage (no read-back). Queued re-enqueued trials and the other
+  samplers go through optuna's ``ask``. Why: the loop, not the physics, set the pace
+  (docs/search.md, "Where the loop's time goes").
 - **Crash safety.** A told trial is in storage. A worker killed by a signal breaks the pool
   (``TerminatedWorkerError``): the owner survives, starts a fresh pool and re-scores the chunks
   that were in flight, so no finished trial is lost and none is told twice. A chunk that kills
@@ -728,18 +728,24 @@ class _OwnerLoop:
 
     def _ask_batch(self, n: int) -> list[_Asked]:
         """``n`` fresh trials from the sampler's batch method, each created in one write with
-        its parameters and owner tag (no gap between ask and tag)."""
+        its parameters, then given a heartbeat, then tagged with the owner: the order of
+        optuna's ask path, so a kill between any two steps leaves a trial that the lost-trial
+        rules take (untagged and unbeaten: after UNTAGGED_GRACE_FACTOR grace periods; beaten:
+        once its heartbeat is stale). Tagged at creation, a trial of an owner killed before its
+        first heartbeat would never be taken on another host (seen in CI: the survivor waited
+        for it for good)."""
         storage, sid = self.ostudy._storage, self.ostudy._study_id
         out = []
         for params in self.ostudy.sampler.sample_batch(self.ostudy, self.space, n):
             template = FrozenTrial(
                 number=-1, state=TrialState.RUNNING, value=None,
                 datetime_start=datetime.datetime.now(), datetime_complete=None, params=params,
-                distributions=self.space, user_attrs={"owner": self.owner}, system_attrs={},
+                distributions=self.space, user_attrs={}, system_attrs={},
                 intermediate_values={}, trial_id=-1)
             tid = storage.create_new_trial(sid, template_trial=template)
             if self.beats is not None:
-                self.beats.beat(tid)
+                self.beats.beat(tid)  # before the tag: never tagged and unbeaten
+            storage.set_trial_user_attr(tid, "owner", self.owner)
             out.append(_Asked(_trial_number(storage, tid), tid, params, None, None))
         return out
 
