@@ -62,13 +62,25 @@ class _TPE(SamplerFactory):
                    n_startup_trials=TPE_STARTUP)
 
 
+def _uniform_batch(sampler: optuna.samplers.RandomSampler, study: optuna.Study, space: dict,
+                   n: int) -> list[dict]:
+    """``n`` candidates of independent uniform draws from ``sampler`` (a seeded random
+    sampler), one parameter at a time in the space's order."""
+    return [{name: sampler.sample_independent(study, None, name, dist)
+             for name, dist in space.items()} for _ in range(n)]
+
+
 def _batch_tpe_class() -> type:
     """optuna's TPE with a ``sample_batch`` method (the owner's fast ask path), or plain TPE
     where this optuna lacks the internals it reuses."""
     import optuna
 
     try:
-        from optuna.samplers._tpe.sampler import _split_trials
+        from optuna.samplers._tpe.sampler import (
+            _split_trials,
+            default_gamma,
+            default_gamma_multiobjective,
+        )
     except ImportError:  # pragma: no cover  another optuna layout: the plain sampler
         return optuna.samplers.TPESampler
     from optuna.trial import TrialState
@@ -91,14 +103,8 @@ def _batch_tpe_class() -> type:
             trials = study._get_trials(deepcopy=False, states=states, use_cache=False)
             n_done = sum(t.state != TrialState.RUNNING for t in trials)
             if n_done < self._n_startup_trials:
-                rnd = self._random_sampler
-                return [{name: rnd.sample_independent(study, None, name, dist)
-                         for name, dist in space.items()} for _ in range(n)]
+                return _uniform_batch(self._random_sampler, study, space, n)
             if self._gamma is None:
-                from optuna.samplers._tpe.sampler import (
-                    default_gamma,
-                    default_gamma_multiobjective,
-                )
                 self._gamma = (default_gamma if len(study.directions) <= 1
                                else default_gamma_multiobjective)
             if not self._constant_liar:
@@ -130,8 +136,7 @@ class _Random(SamplerFactory):
             """Uniform candidates, ``n`` at a time (the owner's fast ask path)."""
 
             def sample_batch(self, study: optuna.Study, space: dict, n: int) -> list[dict]:
-                return [{name: self.sample_independent(study, None, name, dist)
-                         for name, dist in space.items()} for _ in range(n)]
+                return _uniform_batch(self, study, space, n)
 
         return BatchRandomSampler(seed=seed)
 
