@@ -297,7 +297,7 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     from optgrade.layout import write_table
 
     context = context or search.make_context(study)
-    trace = context.trace_fn(layout)
+    trace = _detailed_trace(study, layout, context)
     names = search.goal_names(study)
     values = objectives.evaluate_many(names, trace, layout, study, context)
     weights = {n: w for n, w in study.goal.weights.items() if w}
@@ -326,6 +326,8 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
                                  pareto=pareto, summary=summary, trial_number=trial_number,
                                  spread=spread, reach=reach)
+    if trace.far_face is not None and trace.far_face.flux is not None:
+        paths["far_face"] = _write_far_face_figure(out / "far_face.png", study, trace)
     from optgrade.verdict import verdict
 
     judged = verdict(study, layout, trace)
@@ -359,6 +361,38 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
                                   _report(study, layout, trace, summary, violations, is_site,
                                           trial_number, reach))
     return paths
+
+
+def _detailed_trace(study: Study, layout: Layout, context) -> Trace:
+    """The layout's trace with everything the report shows: the search's model scores only the
+    far-face zone (``far_face_detail`` False); the export asks for the whole map, then puts the
+    model back as it was."""
+    model = getattr(context, "model", None)
+    if study.substrate.thickness is None or model is None or model.far_face_detail:
+        return context.trace_fn(layout)
+    model.far_face_detail = True
+    try:
+        return context.trace_fn(layout)
+    finally:
+        model.far_face_detail = False
+
+
+def _write_far_face_figure(path: Path, study: Study, trace: Trace) -> Path:
+    """far_face.png: where the converted waves reach the block's far face (with the zone)."""
+    from matplotlib.figure import Figure
+
+    from optgrade._atomic import save_figure
+    from optgrade.plotting.trace import plot_far_face
+
+    zone = study.goal.far_face
+    fig = Figure(figsize=(9, 5.5), layout="constrained")
+    ax = fig.add_subplot()
+    plot_far_face(ax, trace, zone=None if zone is None else zone.x_range,
+                  mode=None if zone is None else zone.mode,
+                  title=f"{study.meta.name}: converted waves at the far face, block "
+                        f"{format_eng(trace.far_face.depth, 'm')} (first arrival)")
+    save_figure(fig, path)
+    return path
 
 
 def _reach_of(study: Study, context, trace: Trace):
@@ -415,6 +449,11 @@ def _report(study: Study, layout: Layout, trace: Trace, summary: list[str], viol
         f"  frequencies meeting the requirement: {int(meets.sum())} of {len(f)}",
     ]
     lines += ["  " + s for s in summary[1:]]
+    from optgrade.verdict import far_face_lines
+
+    face_lines = far_face_lines(study, trace)
+    if face_lines:
+        lines += ["", *face_lines]
     if reach is not None:
         lines += ["", "REACHABLE (estimate from the local modes of the admissible cells, before "
                   "any search)"] + ["  " + t.strip() for t in reach.lines()]

@@ -39,6 +39,7 @@ __all__ = [
     "CHANNELS",
     "LIMITS",
     "FabricationSpec",
+    "FarFaceSpec",
     "GoalSpec",
     "LayoutSpec",
     "Meta",
@@ -46,6 +47,7 @@ __all__ = [
     "SearchSpec",
     "Study",
     "SubstrateSpec",
+    "block_wavelengths",
     "load_study",
     "study_from_dict",
     "study_from_text",
@@ -90,7 +92,11 @@ LIMITS: dict[str, tuple[float, float]] = {
     "height_tolerance": (0.0, 1.0),
     "head_mass": (0.0, 1e5),
     "angle": (-90.0, 90.0),
+    "thickness": (1e-5, 1000.0),
+    "zone_position": (-10_000.0, 10_000.0),
 }
+#: Kinds whose values may be negative (angles from the normal, positions in the row's frame).
+_SIGNED = ("angle", "zone_position")
 _UNIT_OF = {  # display unit of each limit in messages
     "density": ("density", "kg/m^3"),
     "modulus": ("modulus", "Pa"),
@@ -130,7 +136,7 @@ def _quantity(dimension: str, kind: str, *, allow_zero: bool = False) -> Callabl
             number = parse_quantity(value, dimension)
         except UnitError as exc:
             raise ValueError(str(exc)) from None
-        if kind != "angle":
+        if kind not in _SIGNED:
             if number < 0 or (number == 0 and not allow_zero):
                 raise ValueError(
                     f"{value!r} must be {'zero or ' if allow_zero else ''}positive"
@@ -328,6 +334,8 @@ class _SubstrateIn(_Raw):
     loss_factor: LossFactor = 0.0
     # reserved key: any value is taken here so that _resolve_substrate can refuse it by name
     plate_thickness: Any = None
+    #: block thickness (m): the far face is free; absent = half-space (docs/physics.md s. 14)
+    thickness: _Q("length", "thickness") | None = None
     kind: Annotated[str, BeforeValidator(_registry_choice("optgrade.ground.GROUNDS"))] = (
         "halfspace"
     )
@@ -364,6 +372,11 @@ class _LayoutIn(_Raw):
 Weight = Annotated[float, Field(ge=0.0, le=1e6)]
 
 
+class _FarFaceIn(_Raw):
+    x_range: _R("length", "zone_position")
+    mode: _C(("avoid", "target"))
+
+
 class _GoalIn(_Raw):
     band: _R("frequency", "frequency")
     n_frequencies: Annotated[int, Field(ge=2, le=100_000)] = 128
@@ -371,6 +384,7 @@ class _GoalIn(_Raw):
     required_fraction: Fraction = 0.8
     angle_window: _R("angle", "angle") | None = None
     weights: dict[str, Weight] | None = None
+    far_face: _FarFaceIn | None = None
     model: _C(("lattice", "line")) = "lattice"
     propagation: Annotated[
         str, BeforeValidator(_registry_choice("optgrade.propagation.PROPAGATION_MODELS"))
@@ -410,6 +424,7 @@ _SECTION_MODELS: dict[tuple[str, ...], type[BaseModel]] = {
     ("resonator",): _ResonatorIn,
     ("layout",): _LayoutIn,
     ("goal",): _GoalIn,
+    ("goal", "far_face"): _FarFaceIn,
     ("fabrication",): _FabricationIn,
     ("search",): _SearchIn,
 }
@@ -443,6 +458,8 @@ class SubstrateSpec(_Frozen):
     cr: float
     loss_factor: float
     kind: str = "halfspace"
+    #: block thickness (m; None = half-space): the far face z = thickness is free
+    thickness: float | None = None
 
     @property
     def shear_modulus(self) -> float:
@@ -490,6 +507,14 @@ class LayoutSpec(_Frozen):
     position_step: float = 0.0
 
 
+class FarFaceSpec(_Frozen):
+    """``[goal.far_face]``: a zone of the far face (x range in the row's frame, m) where the
+    converted waves should arrive (``"target"``) or not (``"avoid"``)."""
+
+    x_range: tuple[float, float]
+    mode: Literal["avoid", "target"]
+
+
 class GoalSpec(_Frozen):
     """Goal: band (Hz), frequency count, wanted channel, required fraction, weights."""
 
@@ -501,6 +526,7 @@ class GoalSpec(_Frozen):
     weights: dict[str, float]
     model: Literal["lattice", "line"]
     propagation: str = "scattering"
+    far_face: FarFaceSpec | None = None
 
 
 class FabricationSpec(_Frozen):
@@ -690,6 +716,7 @@ def _resolve_substrate(raw: _SubstrateIn, out: _Collector) -> dict[str, Any] | N
         "ct": float(ct),
         "cr": cr,
         "loss_factor": raw.loss_factor,
+        "thickness": raw.thickness,
     }
 
 
@@ -903,7 +930,9 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
         goal=GoalSpec(band=band, n_frequencies=raw.goal.n_frequencies, channel=raw.goal.channel,
                       required_fraction=raw.goal.required_fraction,
                       angle_window_deg=raw.goal.angle_window, weights=extra["weights"],
-                      model=raw.goal.model, propagation=raw.goal.propagation),
+                      model=raw.goal.model, propagation=raw.goal.propagation,
+                      far_face=(None if raw.goal.far_face is None else FarFaceSpec(
+                          x_range=raw.goal.far_face.x_range, mode=raw.goal.far_face.mode))),
         fabrication=FabricationSpec(min_gap=raw.fabrication.min_gap,
                                     height_tolerance=raw.fabrication.height_tolerance,
                                     slenderness_max=raw.fabrication.slenderness_max),
@@ -915,8 +944,56 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
         source_sha256=sha256,
     )
     _check_band_reach(study, out)
+    _check_block(study, out)
     out.raise_if_any()
     return study
+
+
+#: A block thinner than this many Rayleigh wavelengths at the lowest band frequency is refused
+#: (thin-plate regime, not modelled); below BLOCK_WARN_WAVELENGTHS it is warned about.
+BLOCK_MIN_WAVELENGTHS, BLOCK_WARN_WAVELENGTHS = 2.0, 4.0
+
+
+def block_wavelengths(study: Study) -> float | None:
+    """Block thickness in Rayleigh wavelengths at the lowest band frequency (None: half-space)."""
+    h = study.substrate.thickness
+    if h is None:
+        return None
+    return float(h) * float(study.goal.band[0]) / float(study.substrate.cr)
+
+
+def _check_block(study: Study, out: _Collector) -> None:
+    """Rules of a finite block and of the far-face goal (docs/study-reference.md)."""
+    h = study.substrate.thickness
+    zone = study.goal.far_face
+    uses_goal = ("far_face" in study.goal.weights or "far_face" in study.search.objectives)
+    if h is None:
+        if zone is not None:
+            out.add(("goal", "far_face"), "a far-face zone needs substrate.thickness (the "
+                    "block's far face); without it the substrate is a half-space")
+        elif uses_goal:
+            out.add(("goal", "weights", "far_face"), "the far_face goal needs "
+                    "substrate.thickness and a [goal.far_face] zone")
+        return
+    if study.meta.scale == "site":
+        out.add(("substrate", "thickness"), "a finite thickness is for bench blocks with a free "
+                "far face; the bottom of a soil layer is not free (bedrock, stiffer strata): "
+                "omit thickness for site studies")
+        return
+    n_lam = block_wavelengths(study)
+    lam = float(study.substrate.cr) / float(study.goal.band[0])
+    if n_lam is not None and n_lam < BLOCK_MIN_WAVELENGTHS:
+        out.add(("substrate", "thickness"), (
+            f"{_eng(h, 'm')} is {n_lam:.2f} Rayleigh wavelengths at the lowest band frequency "
+            f"({_eng(lam, 'm')} at {_eng(study.goal.band[0], 'Hz')}); below "
+            f"{BLOCK_MIN_WAVELENGTHS:g} the block is a plate whose waves are not those of a "
+            f"half-space (not modelled): use at least {_eng(BLOCK_MIN_WAVELENGTHS * lam, 'm')} "
+            "or raise the band"))
+    if zone is not None and zone.x_range[0] >= zone.x_range[1]:
+        out.add(("goal", "far_face", "x_range"), "zone min must be below max")
+    if uses_goal and zone is None:
+        out.add(("goal", "far_face"), "the far_face goal needs a [goal.far_face] zone "
+                "(x_range and mode)")
 
 
 def study_from_text(text: str, *, source: str = "<study>") -> Study:

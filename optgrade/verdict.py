@@ -179,3 +179,45 @@ def verdict(study: Study, layout: Layout, trace: Trace) -> Verdict:
     return Verdict(study.goal.channel, req, trace.propagation,
                    np.asarray(trace.frequency, float), wanted, wanted >= req,
                    binding_limits(study, layout))
+
+
+def far_face_lines(study: Study, trace: Trace) -> list[str]:
+    """The far-face verdict (a study with ``substrate.thickness``): where the converted power
+    arrives on the block's far face and, with a ``[goal.far_face]`` zone, how much of it lands
+    inside; empty for a half-space. Lengths in mm on the bench (docs/physics.md section 14)."""
+    face = getattr(trace, "far_face", None)
+    if face is None:
+        return []
+    from optgrade.channels import RADIATING
+    from optgrade.propagation._farface import zone_fraction
+    from optgrade.units import format_eng
+
+    how = ("map from the exact model's forces" if face.method == "map"
+           else "ray estimate: position + H tan(angle)")
+    lines = [f"FAR FACE ({format_eng(face.depth, 'm')} block, first arrival; {how})"]
+    zone = study.goal.far_face
+    if zone is not None:
+        inside = zone_fraction(face, trace.fractions, zone.x_range)
+        mean = float(np.nanmean(inside)) if np.isfinite(inside).any() else 0.0
+        ok = mean >= 0.5 if zone.mode == "target" else mean <= 0.5
+        word = "inside" if zone.mode == "target" else "inside the avoided"
+        lines.append(
+            f"  {'ZONE OK' if ok else 'ZONE NOT OK'}: {mean:.0%} of the converted power arrives "
+            f"{word} zone {format_eng(zone.x_range[0], 'm')} .. "
+            f"{format_eng(zone.x_range[1], 'm')} (band mean)")
+    for c in RADIATING:
+        frac = np.asarray(trace.fractions[c], float)
+        if float(np.mean(frac)) < 0.01:
+            continue
+        arr = np.asarray(face.arrival[c], float)
+        wts = np.where(np.isfinite(arr), frac, 0.0)
+        if wts.sum() <= 0:
+            continue
+        mean_x = float(np.sum(np.nan_to_num(arr) * wts) / wts.sum())
+        lo, hi = float(np.nanmin(arr)), float(np.nanmax(arr))
+        lines.append(f"  {c}: band-mean {float(np.mean(frac)):.2f} of the incident power, "
+                     f"arriving at {format_eng(mean_x, 'm')} (power-weighted; "
+                     f"{format_eng(lo, 'm')} .. {format_eng(hi, 'm')} over the band)")
+    lines.append("  left out: the reflection at the far face back to the top (second bounce) "
+                 "and the side faces")
+    return lines

@@ -107,6 +107,16 @@ def study_warnings(study: Study, figures: dict[str, Any] | None = None) -> list[
     e = format_eng
     f_lo, f_hi = goal.band
     out = []
+    from optgrade.study import BLOCK_WARN_WAVELENGTHS, block_wavelengths
+
+    n_lam = block_wavelengths(study)
+    if n_lam is not None and n_lam < BLOCK_WARN_WAVELENGTHS:
+        out.append(
+            f"block thickness {e(sub.thickness, 'm')} is only {n_lam:.2f} Rayleigh wavelengths "
+            f"at {e(f_lo, 'Hz')} (below {BLOCK_WARN_WAVELENGTHS:g}): the surface wave still "
+            "feels the far face there, and the half-space dispersion the row is designed with "
+            "is less accurate at the low end of the band"
+        )
     shear_wavelength_top = sub.ct / f_hi
     if res.row_pitch > shear_wavelength_top:
         out.append(

@@ -132,6 +132,12 @@ def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = No
     is_wkb = issubclass(PROPAGATION_MODELS.get(name), WKBMarch)
     freq = study_frequencies(study)
     modes, wkb = _wkb_picture(study, layout, freq, model, console)
+    if study.substrate.thickness is not None and wkb.far_face is None:
+        from dataclasses import replace
+
+        from optgrade.propagation._farface import ray_only
+
+        wkb = replace(wkb, far_face=ray_only(wkb, float(study.substrate.thickness)))
     if is_wkb:
         tr, shares = wkb, None
     else:
@@ -148,6 +154,10 @@ def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = No
 
     judged = verdict(study, layout, tr)
     payload = {"verdict": judged.to_dict(), **payload}
+    if tr.far_face is not None:
+        from optgrade.verdict import far_face_lines
+
+        payload["verdict"]["far_face"] = far_face_lines(study, tr)
     if not is_wkb:
         w = wkb.to_dict()
         payload["wkb"] = {k: w[k] for k in ("fractions", "position_m", "angle_deg", "eps_max",
@@ -215,6 +225,14 @@ def _write_figures(study: Study, layout: Layout, out: Path, freq: np.ndarray, mo
     save_figure(fig, out / "fractions.png")
     plt.close(fig)
 
+    if tr.far_face is not None:
+        zone = study.goal.far_face
+        fig, ax = plt.subplots(figsize=(9, 5.5), layout="constrained")
+        pt.plot_far_face(ax, tr, zone=None if zone is None else zone.x_range,
+                         mode=None if zone is None else zone.mode)
+        save_figure(fig, out / "far_face.png")
+        plt.close(fig)
+
 
 def _summary(study: Study, layout: Layout, freq: np.ndarray, tr: Trace, wkb: Trace,
              is_wkb: bool, console: Console | None, out: Path, is_figures: bool,
@@ -249,9 +267,14 @@ def _summary(study: Study, layout: Layout, freq: np.ndarray, tr: Trace, wkb: Tra
         n_off = int(np.sum(wkb_disagreement(wkb, tr)))
         say(f"  WKB march off the {tr.propagation} model by more than {WKB_DISAGREEMENT} on some "
             f"channel at {n_off} of {freq.size} frequencies (trace.json wkb.disagrees)")
+    from optgrade.verdict import far_face_lines
+
+    for text in far_face_lines(study, tr):
+        say(escape(text))
     if study.meta.scale == "site":
         say(f"[yellow]{SITE_CAUTION}[/]")
-    say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {len(FIGURES)} figures"))
+    n_fig = len(FIGURES) + (tr.far_face is not None)
+    say(f"wrote {out / 'trace.json'}" + ("" if not is_figures else f" and {n_fig} figures"))
 
 
 def run(args: argparse.Namespace) -> int:

@@ -55,6 +55,7 @@ BUILTIN: tuple[str, ...] = (
     "compactness",
     "adiabaticity",
     "robustness",
+    "far_face",
 )
 
 #: Trace one layout (the study's propagation model over the goal band).

@@ -7,7 +7,8 @@ Used by ``optgrade trace`` and reusable by the search's figure sheet:
   local gaps shaded, local rod resonance and Rayleigh zone-edge lines;
 - :func:`plot_channel_map`: where (position) each frequency's power leaves, coloured by channel,
   marker area by fraction;
-- :func:`plot_fractions`: stacked channel fractions against frequency.
+- :func:`plot_fractions`: stacked channel fractions against frequency;
+- :func:`plot_far_face`: where the converted waves reach a block's far face, per frequency.
 
 Frequency and length units are picked for readability (Hz/kHz/MHz, mm/m); plots that share an
 axis use the same picks.
@@ -38,6 +39,7 @@ __all__ = [
     "length_unit",
     "plot_channel_map",
     "plot_elevation",
+    "plot_far_face",
     "plot_fractions",
     "plot_local_dispersion",
 ]
@@ -349,4 +351,58 @@ def plot_fractions(ax: Axes, trace: Trace, *, goal_channel: str | None = None,
     ax.set_ylabel("fraction of incident power")
     ax.set_title(f"where the power goes: {_model_label(trace.propagation)}")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    return ax
+
+
+def plot_far_face(ax: Axes, trace: Trace, *, zone: tuple[float, float] | None = None,
+                  mode: str | None = None, title: str | None = None) -> Axes:
+    """Where the converted waves reach a block's far face: frequency against far-face position.
+
+    Grey background: the flux of the whole bulk field per unit length of the face, scaled to its
+    largest value at each frequency (a map from the exact model; absent for a ray estimate).
+    Coloured per channel (channels carrying at least 1 % of the incident power in the band mean):
+    the power-weighted arrival position with a band of +- one width, line width by fraction; dashed:
+    the ray estimate position + H tan(angle). The zone of ``[goal.far_face]`` is shaded (green for a
+    target, red for an avoided zone).
+    """
+    from optgrade.channels import RADIATING
+
+    face = trace.far_face
+    f = np.asarray(face.frequency, float)
+    fs, funit = frequency_unit(float(f.max()))
+    x_all = [face.x] if face.x is not None else []
+    x_all += [np.asarray(face.arrival[c], float) for c in RADIATING]
+    finite = np.concatenate([np.ravel(v)[np.isfinite(np.ravel(v))] for v in x_all] or [[0.0]])
+    ls, lunit = length_unit(float(np.max(np.abs(finite))) if finite.size else 1.0)
+    if face.flux_total is not None and face.x is not None:
+        tot = face.flux_total
+        peak = np.max(np.abs(tot), axis=1, keepdims=True)
+        img = np.where(peak > 0, np.clip(tot, 0, None) / np.where(peak > 0, peak, 1.0), 0.0)
+        ax.pcolormesh(face.x / ls, f / fs, img, cmap="Greys", vmin=0, vmax=1.6,
+                      shading="nearest", rasterized=True)
+    if zone is not None:
+        colour = "#2ca02c" if mode == "target" else "#d62728"
+        ax.axvspan(zone[0] / ls, zone[1] / ls, color=colour, alpha=0.15, lw=0,
+                   label=f"zone ({mode})")
+    for c in RADIATING:
+        frac = np.asarray(trace.fractions[c], float)
+        if float(np.mean(frac)) < 0.01:
+            continue
+        arr = np.asarray(face.arrival[c], float)
+        col = CHANNEL_COLOURS[c]
+        lw = 0.8 + 3.0 * min(1.0, float(np.mean(frac)) / 0.5)
+        ax.plot(arr / ls, f / fs, color=col, lw=lw, label=CHANNEL_LABELS[c])
+        wid = np.asarray(face.width[c], float)
+        if np.isfinite(wid).any():
+            ax.fill_betweenx(f / fs, (arr - wid) / ls, (arr + wid) / ls, color=col, alpha=0.15,
+                             lw=0)
+        if face.method == "map":
+            ax.plot(np.asarray(face.ray_arrival[c], float) / ls, f / fs, color=col, lw=1.0,
+                    ls="--")
+    ax.plot([], [], color="k", ls="--", lw=1.0, label="ray estimate x + H tan(angle)")
+    ax.set_xlabel(f"far-face position in the row's frame ({lunit})")
+    ax.set_ylabel(f"frequency ({funit})")
+    ax.set_title(title or f"converted waves at the far face, block {face.depth / ls:.4g} {lunit}"
+                 " (first arrival)")
+    ax.legend(loc="upper right", fontsize=7, framealpha=0.85)
     return ax

@@ -38,6 +38,9 @@ class PropagationModel(ABC):
     """
 
     name: ClassVar[str] = ""
+    #: With ``substrate.thickness``: the whole far-face map (trace, report) or only what the
+    #: far_face goal scores (the search sets False; docs/physics.md section 14).
+    far_face_detail: bool = True
 
     def __init__(self, study: Study) -> None:
         self.study = study

@@ -548,6 +548,7 @@ def scattering_trace(
     cache_dir=None,
     tables: GreenTables | None = None,
     per_resonator: bool = True,
+    far_face_detail: bool = True,
 ) -> ScatteringResult:
     """Exact multiple-scattering trace of a layout over the study's band (or ``freq``, Hz).
 
@@ -567,6 +568,9 @@ def scattering_trace(
     per_resonator : bool
         Keep each resonator's share of every channel (``resonator_power``; the channel map);
         False is faster and gives the same trace.
+    far_face_detail : bool
+        With ``substrate.thickness``: the whole far-face map (True) or only the zone integral
+        of ``[goal.far_face]`` (False, much faster; the same zone number).
 
     Returns
     -------
@@ -589,8 +593,30 @@ def scattering_trace(
     sol = solve_row(tables, layout.x, comp, float(res.row_pitch), per_resonator=per_resonator)
     lossy = float(study.substrate.loss_factor or 0.0) > 0.0
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
+    if study.substrate.thickness is not None:
+        trace = _with_far_face(study, layout, trace, sol["forces"], model or study.goal.model,
+                               far_face_detail)
     return ScatteringResult(trace, balance, sol["forces"], sol["T"], sol["R"], sol["per"])
 
+
+
+def _with_far_face(study: Study, layout: Layout, trace: Trace, forces: np.ndarray,
+                   model: str, detail: bool = True) -> Trace:
+    """``trace`` with the far-face map of a block (docs/physics.md section 14); without
+    ``detail`` only the zone integral the far_face goal scores (the search's fast path)."""
+    from dataclasses import replace
+
+    from optgrade.propagation._farface import face_grid, far_face_map
+
+    h = float(study.substrate.thickness)
+    zone = None if study.goal.far_face is None else study.goal.far_face.x_range
+    x = np.asarray(layout.x, float)
+    grid = face_grid(float(x[0]), float(x[-1]), h, float(study.substrate.ct),
+                     float(np.max(trace.frequency)), zone)
+    face = far_face_map(study.substrate, trace.frequency, x, forces,
+                        float(study.resonator.diameter), model, h, grid if detail else None,
+                        zone=zone, trace=trace)
+    return replace(trace, far_face=face)
 
 
 @PROPAGATION_MODELS.register
@@ -622,7 +648,8 @@ class ScatteringModel(PropagationModel):
         ``per_resonator``) over ``freq`` (Hz)."""
         f = self.frequencies(freq)
         return scattering_trace(self.study, layout, f, model=self.model, cache_dir=self.cache_dir,
-                                per_resonator=per_resonator)
+                                per_resonator=per_resonator,
+                                far_face_detail=self.far_face_detail)
 
     def trace_height_errors(self, layout: Layout, errors: np.ndarray) -> list[Trace]:
         """Exact traces of ``layout`` with each row of ``errors`` (m) added to the rod heights,

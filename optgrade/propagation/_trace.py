@@ -57,6 +57,10 @@ class Trace:
         computed without booking a remainder (dimensionless); None (null in trace.json) for
         models that close the balance by construction (the WKB march books what is left to the
         channels it follows) and for lossy substrates (no independent balance).
+    far_face : FarFaceMap or None
+        Where the converted waves reach the far face of a block (`optgrade.propagation.
+        _farface`; the study has ``substrate.thickness``): the map from the exact model's
+        forces, or the ray estimate only from a model without forces; None for a half-space.
     """
 
     frequency: np.ndarray
@@ -71,6 +75,7 @@ class Trace:
     phase: np.ndarray
     propagation: str = "wkb"
     balance_error: np.ndarray | None = None
+    far_face: Any = None
 
     def total(self) -> np.ndarray:
         """Sum of all channel fractions per frequency (1 up to rounding)."""
@@ -96,6 +101,7 @@ class Trace:
             "balance_error": (None if self.balance_error is None
                               or not np.isfinite(self.balance_error).any()
                               else clean(self.balance_error)),
+            **({} if self.far_face is None else {"far_face": self.far_face.to_dict()}),
         }
 
     def to_frame(self) -> pd.DataFrame:

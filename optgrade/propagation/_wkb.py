@@ -466,6 +466,13 @@ class WKBMarch(PropagationModel):
 
     def trace(self, layout: Layout, freq: ArrayLike | None = None) -> Trace:
         """WKB trace of ``layout`` over ``freq`` (Hz; the study's grid when omitted)."""
-        return trace(
+        tr = trace(
             layout, self.dispersion, self.frequencies(freq), cr=float(self.study.substrate.cr)
         )
+        if self.study.substrate.thickness is not None:
+            from dataclasses import replace
+
+            from optgrade.propagation._farface import ray_only
+
+            tr = replace(tr, far_face=ray_only(tr, float(self.study.substrate.thickness)))
+        return tr

@@ -193,6 +193,7 @@ def _real_pipeline(study: Study) -> tuple[PropagationModel, Callable[[Layout], T
         model = propagation.propagation_model(study, dispersion=proxy)
     else:
         model = propagation.propagation_model(study)
+    model.far_face_detail = False  # the search scores the far-face zone only
     return model, model.trace
 
 
