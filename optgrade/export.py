@@ -326,7 +326,7 @@ def _write_set(study: Study, layout: Layout, out: Path, *, context, trial_number
     paths["sheet"] = write_sheet(out / "sheet.png", study, layout, trace, history=history,
                                  pareto=pareto, summary=summary, trial_number=trial_number,
                                  spread=spread, reach=reach)
-    if trace.far_face is not None and trace.far_face.flux is not None:
+    if getattr(trace, "far_face", None) is not None and trace.far_face.flux is not None:
         paths["far_face"] = _write_far_face_figure(out / "far_face.png", study, trace)
     from optgrade.verdict import verdict
 
@@ -368,7 +368,8 @@ def _detailed_trace(study: Study, layout: Layout, context) -> Trace:
     far-face zone (``far_face_detail`` False); the export asks for the whole map, then puts the
     model back as it was."""
     model = getattr(context, "model", None)
-    if study.substrate.thickness is None or model is None or model.far_face_detail:
+    thick = getattr(study.substrate, "thickness", None)
+    if thick is None or model is None or getattr(model, "far_face_detail", True):
         return context.trace_fn(layout)
     model.far_face_detail = True
     try:

@@ -206,3 +206,90 @@ def test_the_zone_number_is_the_same_with_and_without_the_whole_map():
     direct = full.far_face.flux_total[:, inside].sum(axis=1) * (x[1] - x[0])
     bulk = sum(full.fractions[c] for c in RADIATING)
     np.testing.assert_allclose(a, direct / bulk, atol=0.01)
+
+
+# ------------------------------------------------------------------ the block from end to end
+
+ROOT = Path(__file__).parents[1]
+
+
+def test_trace_of_a_block_writes_the_map_the_figure_and_the_zone_verdict(tmp_path, capsys):
+    from optgrade.cli import main
+
+    study = tmp_path / "block.toml"
+    text = (ROOT / "studies" / "bench_backward_shear.toml").read_text()
+    study.write_text(text.replace('loss_factor = 0.0\n', 'loss_factor = 0.0\nthickness = "60 mm"\n',
+                                  1) + '\n[goal.far_face]\nx_range = ["-80 mm", "0 mm"]\n'
+                     'mode = "avoid"\n')
+    out = tmp_path / "tr"
+    code = main(["trace", str(study), "--layout",
+                 str(ROOT / "studies" / "layouts" / "bench_backward_shear.csv"), "--out", str(out)])
+    text_out = capsys.readouterr().out
+    assert code == 0
+    data = __import__("json").loads((out / "trace.json").read_text())
+    face = data["far_face"]
+    assert face["method"] == "map" and face["depth_m"] == pytest.approx(0.06)
+    n_f, n_x = len(data["frequency_hz"]), len(face["position_m"])
+    assert np.asarray(face["flux_per_m"]["backward_shear"]).shape == (n_f, n_x)
+    assert len(face["zone"]["inside"]) == n_f
+    assert "second bounce" in face["leaves_out"]
+    assert any("ZONE" in line for line in data["verdict"]["far_face"])
+    assert (out / "far_face.png").stat().st_size > 10_000
+    assert "FAR FACE (60 mm block" in text_out and "inside the avoided zone" in text_out
+
+
+def test_check_warns_about_a_block_under_four_rayleigh_wavelengths():
+    from optgrade.commands.check import study_warnings
+
+    warned = [w for w in study_warnings(_row_study(thickness="60 mm")) if "block thickness" in w]
+    assert warned and "2.08 Rayleigh wavelengths" in warned[0]
+    assert not [w for w in study_warnings(_row_study(thickness="130 mm"))
+                if "block thickness" in w]
+
+
+def test_a_site_study_refuses_a_thickness():
+    from optgrade.errors import StudyError
+    from optgrade.study import study_from_text
+
+    text = (ROOT / "studies" / "site_ground_barrier.toml").read_text()
+    [section_end] = [i for i, line in enumerate(text.splitlines()) if line.strip() == "[substrate]"]
+    lines = text.splitlines()
+    lines.insert(section_end + 1, 'thickness = "40 m"')
+    with pytest.raises(StudyError, match="substrate.thickness: a finite thickness is for bench"):
+        study_from_text("\n".join(lines))
+
+
+def test_the_wkb_march_gives_the_ray_estimate_and_the_goal_counts_rays():
+    from optgrade.layout import read_table
+    from optgrade.objectives import get
+    from optgrade.propagation import propagation_model
+
+    study = _row_study("lattice", zone=("-400 mm", "2000 mm", "target"))
+    lay = read_table(ROOT / "studies" / "layouts" / "bench_backward_shear.csv")
+    tr = propagation_model(study, "wkb").trace(lay)
+    assert tr.far_face.method == "ray" and tr.far_face.flux is None
+    c = "backward_shear"
+    ok = np.isfinite(tr.angle[c])
+    np.testing.assert_allclose(tr.far_face.ray_arrival[c][ok],
+                               tr.position[c][ok] + 0.06 * np.tan(np.radians(tr.angle[c][ok])))
+    value = get("far_face").evaluate(tr, lay, study, None)
+    assert value.details["method"] == "ray" and 0.9 < value.score <= 1.0  # a zone over it all
+
+
+def test_a_block_study_searches_and_exports_end_to_end(tmp_path):
+    from optgrade.cli import main
+
+    text = (ROOT / "studies" / "bench_block_far_face.toml").read_text()
+    study = tmp_path / "b.toml"
+    study.write_text(text.replace("trials = 200", "trials = 6").replace("workers = 2",
+                                                                          "workers = 1")
+                     .replace("n_frequencies = 64", "n_frequencies = 16"))
+    out = tmp_path / "s"
+    assert main(["search", str(study), "--out", str(out)]) == 0
+    result = __import__("json").loads((out / "result.json").read_text())
+    assert "far_face" in result["objectives"]
+    assert result["performance"]["far_face"]["method"] == "map"
+    assert (out / "far_face.png").is_file()
+    manifest = __import__("json").loads((out / "export.json").read_text())
+    assert "far_face.png" in manifest["files"]
+    assert "FAR FACE" in (out / "report.txt").read_text()

@@ -53,8 +53,12 @@ def test_every_registered_goal_is_accepted_by_the_study_file():
         return re.sub(r"\[goal\.weights\]\n(.+\n)+", "[goal.weights]\n" + lines, text, count=1)
 
     # every name, written in reverse: kept in the canonical (BUILTIN) order, so the weighted
-    # sum does not depend on the order of the keys in the file
-    s = study_from_text(with_weights("".join(f"{n} = 0.5\n" for n in objectives.names()[::-1])))
+    # sum does not depend on the order of the keys in the file (far_face needs a block and a
+    # far-face zone, given here)
+    block = ('loss_factor = 0.0\nthickness = "60 mm"\n', '\n[goal.far_face]\nx_range = '
+             '["0 mm", "50 mm"]\nmode = "target"\n')
+    s = study_from_text(with_weights("".join(f"{n} = 0.5\n" for n in objectives.names()[::-1]))
+                        .replace("loss_factor = 0.0\n", block[0], 1) + block[1])
     assert list(s.goal.weights) == list(objectives.BUILTIN)
     with pytest.raises(StudyError) as err:
         study_from_text(with_weights("channel = 1.0\nwrost = 1.0\n"))

@@ -65,6 +65,7 @@ def run(args: argparse.Namespace) -> int:
         export_trial(study, ostudy, number, args.out)
     except SearchError as exc:
         raise StudyError([f"{args.study}: {exc}"]) from None
-    print(f"exported trial {number} to {args.out}: table.csv layout.dxf sheet.png result.json "
-          "report.txt")
+    extra = " far_face.png" if study.substrate.thickness is not None else ""
+    print(f"exported trial {number} to {args.out}: table.csv layout.dxf sheet.png{extra} "
+          "result.json report.txt")
     return 0

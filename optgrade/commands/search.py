@@ -107,7 +107,9 @@ def run(args: argparse.Namespace) -> int:
           + f"); best {best}")
     print(f"storage: {mask_url(outcome.storage)}")
     if not args.no_export and outcome.best_number is not None:
-        print(f"exported to {args.out}: table.csv layout.dxf sheet.png result.json report.txt")
+        extra = " far_face.png" if study.substrate.thickness is not None else ""
+        print(f"exported to {args.out}: table.csv layout.dxf sheet.png{extra} result.json "
+              "report.txt")
         if candidates and candidates["paths"]:
             print(f"the {len(candidates['paths'])} best distinct layouts: {args.out}/candidates/ "
                   f"(compare them with: optgrade compare STUDY {args.out}/candidates/rank*.csv "

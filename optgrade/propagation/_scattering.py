@@ -593,7 +593,7 @@ def scattering_trace(
     sol = solve_row(tables, layout.x, comp, float(res.row_pitch), per_resonator=per_resonator)
     lossy = float(study.substrate.loss_factor or 0.0) > 0.0
     trace, balance = _make_trace(tables.freq, layout, sol, tables.pole.kr, lossy)
-    if study.substrate.thickness is not None:
+    if getattr(study.substrate, "thickness", None) is not None:
         trace = _with_far_face(study, layout, trace, sol["forces"], model or study.goal.model,
                                far_face_detail)
     return ScatteringResult(trace, balance, sol["forces"], sol["T"], sol["R"], sol["per"])

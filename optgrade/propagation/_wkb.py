@@ -469,7 +469,7 @@ class WKBMarch(PropagationModel):
         tr = trace(
             layout, self.dispersion, self.frequencies(freq), cr=float(self.study.substrate.cr)
         )
-        if self.study.substrate.thickness is not None:
+        if getattr(self.study.substrate, "thickness", None) is not None:
             from dataclasses import replace
 
             from optgrade.propagation._farface import ray_only
