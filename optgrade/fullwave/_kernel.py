@@ -31,8 +31,11 @@ from numba import njit
 @njit(cache=True)
 def step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h,
                   ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h,
-                  p_vx_x, p_vx_z, p_vz_x, p_vz_z):  # pragma: no cover - compiled
-    """Advance vx, vz by one step from the stresses (momentum balance, CPML in both axes)."""
+                  p_vx_x, p_vx_z, p_vz_x, p_vz_z, free_bottom=False):  # pragma: no cover
+    """Advance vx, vz by one step from the stresses (momentum balance, CPML in both axes).
+
+    With ``free_bottom`` the last row j = nz - 1 is a second free face (a block's far face,
+    no layer below): its shear stress is imaged antisymmetrically below it, as at the top."""
     nx, nz = vx.shape
     c = dt / (rho * h)
     for i in range(nx - 1):
@@ -42,6 +45,8 @@ def step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h,
             dsxx = sxx[i + 1, j] - sxx[i, j]
             if j == 0:
                 dsxz = 2.0 * sxz[i, 0]
+            elif free_bottom and j == nz - 1:
+                dsxz = -2.0 * sxz[i, nz - 2]
             else:
                 dsxz = sxz[i, j] - sxz[i, j - 1]
             if axh != 0.0:
@@ -69,8 +74,12 @@ def step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h,
 @njit(cache=True)
 def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
                 ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h,
-                p_s_x, p_s_z, p_sxz_x, p_sxz_z, tz, sel, tau):  # pragma: no cover
+                p_s_x, p_s_z, p_sxz_x, p_sxz_z, tz, sel, tau,
+                free_bottom=False):  # pragma: no cover
     """Advance the stresses by one step (Hooke's law); free surface with applied traction.
+
+    With ``free_bottom`` the last row is a free face too (szz = 0, sxx with the plane-strain
+    modulus of a free face; see :func:`step_velocity`).
 
     With ``tau > 0`` the substrate is Kelvin-Voigt viscoelastic, sigma = C (e + tau de/dt):
     ``sel`` (3, nx, nz) keeps the elastic parts of sxx, szz, sxz and the stresses are the
@@ -94,14 +103,14 @@ def step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h,
             if axi != 0.0:
                 p_s_x[i, j] = bxi * p_s_x[i, j] + axi * dvx
                 dvx += p_s_x[i, j]
-            if j == 0:
+            if j == 0 or (free_bottom and j == nz - 1):
                 d = c * m_surf * dvx
                 if is_visc:
-                    sel[0, i, 0] += d
-                    sxx[i, 0] = sel[0, i, 0] + g * d
+                    sel[0, i, j] += d
+                    sxx[i, j] = sel[0, i, j] + g * d
                 else:
-                    sxx[i, 0] += d
-                szz[i, 0] = -tz[i]
+                    sxx[i, j] += d
+                szz[i, j] = -tz[i] if j == 0 else 0.0
                 continue
             dvz = vz[i, j] - vz[i, j - 1]
             if az_i[j] != 0.0:
@@ -179,8 +188,11 @@ def step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc,
 def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
             ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi, src, i_source, tz,
             rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
-            fp_count, sel, tau):  # pragma: no cover - compiled
+            fp_count, sel, tau, free_bottom, sponge):  # pragma: no cover - compiled
     """Steps n0 .. n1-1 in one call (velocity, rods, surface traction, stress).
+
+    ``sponge`` (nx,) or empty: every field of column i is multiplied by sponge[i] after each
+    step (a block's side layers, see `optgrade.fullwave._solver.plan_grid`).
 
     ``src[n]`` is the source traction at time (n + 1) dt on surface node ``i_source``;
     ``psi`` stacks the eight CPML memory arrays; with ``is_uz`` the vertical displacement
@@ -188,14 +200,24 @@ def advance(n0, n1, vx, vz, sxx, szz, sxz, uz, is_uz, rho, lam, mu, dt, h,
     """
     for n in range(n0, n1):
         step_velocity(vx, vz, sxx, szz, sxz, rho, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
-                      az_h, bz_h, psi[0], psi[1], psi[2], psi[3])
+                      az_h, bz_h, psi[0], psi[1], psi[2], psi[3], free_bottom)
         tz[:] = 0.0
         tz[i_source] = src[n]
         if rod_v.shape[0] > 0:
             step_rods(vz, rod_v, rod_c, rod_e, n_seg, ds, m_node, m_tip, ea, visc, fp_start,
                       fp_count, dt, h, tz)
         step_stress(vx, vz, sxx, szz, sxz, lam, mu, dt, h, ax_h, bx_h, ax_i, bx_i, az_i, bz_i,
-                    az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz, sel, tau)
+                    az_h, bz_h, psi[4], psi[5], psi[6], psi[7], tz, sel, tau, free_bottom)
+        if sponge.size:
+            for i in range(vx.shape[0]):
+                g = sponge[i]
+                if g != 1.0:
+                    for j in range(vx.shape[1]):
+                        vx[i, j] *= g
+                        vz[i, j] *= g
+                        sxx[i, j] *= g
+                        szz[i, j] *= g
+                        sxz[i, j] *= g
         if is_uz:
             for i in range(uz.shape[0]):
                 for j in range(uz.shape[1]):
@@ -222,5 +244,5 @@ def warm_up() -> None:
                 1, np.zeros(nx), np.zeros((n_rods, 3)), np.zeros((n_rods, 2)),
                 np.zeros((n_rods, 2)), np.full(n_rods, 2), np.ones(n_rods), np.ones(n_rods),
                 np.zeros(n_rods), np.ones(n_rods), np.zeros(n_rods), np.ones(n_rods, np.int64),
-                np.ones(n_rods, np.int64), np.zeros((3, nx, nz)), 0.0)
+                np.ones(n_rods, np.int64), np.zeros((3, nx, nz)), 0.0, False, np.zeros(0))
 

@@ -169,6 +169,22 @@ def cpml_profile(dist: np.ndarray, thickness: float, c_max: float, dt: float, f_
     return np.where(inside, a, 0.0), np.where(inside, b, 1.0)
 
 
+def sponge_profile(grid: Grid, edge: float = 0.92) -> np.ndarray:
+    """Per-column damping factors of a block's side layers (``grid.n_pml`` columns each side):
+    G = edge^(((n - d) / n)^2) at d cells from the outer edge, 1 inside (a Gaussian taper in
+    the manner of C. Cerjan, D. Kosloff, R. Kosloff and M. Reshef, Geophysics 50, 705, 1985;
+    from memory). Used instead of the CPML in a block: a CPML in a plate with two free faces
+    grew without bound (backward guided modes; measured on the bare block, energy x 1e6 in
+    0.3 ms), a sponge only ever removes energy."""
+    n = grid.n_pml
+    g = np.ones(grid.nx)
+    d = np.arange(n)
+    ramp = edge ** (((n - d) / n) ** 2)
+    g[:n] = ramp
+    g[grid.nx - n:] = ramp[::-1]
+    return g
+
+
 STABILITY_SAFETY = 0.95  # omega_max dt <= 2 x 0.95 for the coupled system (margin)
 
 
@@ -342,11 +358,19 @@ class Grid:
     j_bottom: int
     j_shallow: int
     x_array: float  # grid x (m) of the layout's x = 0
+    #: a block: the last row j = nz - 1 is the free far face (no layer below); the face is
+    #: recorded over columns i_far0 .. i_far1 - 1
+    free_bottom: bool = False
+    i_far0: int = 0
+    i_far1: int = 0
 
     @property
     def n_cells(self) -> int:
         return self.nx * self.nz
 
+
+#: A block's side sponges are this many times as wide as the CPML of a half-space model.
+SPONGE_WIDTH = 4
 
 QUALITY = {"normal": {"ppw": 20.0, "n_pml": 20, "fp_cells": 2, "dur": 12.0},
            "fast": {"ppw": 10.0, "n_pml": 14, "fp_cells": 1, "dur": 10.0}}
@@ -355,7 +379,7 @@ QUALITY = {"normal": {"ppw": 20.0, "n_pml": 20, "fp_cells": 2, "dur": 12.0},
 def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diameter: float,
               *, quality: str = "normal", ppw: float | None = None, n_pml: int | None = None,
               duration_factor: float | None = None, courant: float = 0.5,
-              rods: RodRow | None = None) -> Grid:
+              rods: RodRow | None = None, block_depth: float | None = None) -> Grid:
     """Choose the grid, time step, box and run length for a band and an array length.
 
     Spacing h: ``ppw`` points per Rayleigh wavelength at the top of the band, and at least
@@ -367,24 +391,49 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     pulse plus 1.5 Rayleigh transit times from source to the right line, at most the pulse plus
     ``duration_factor`` transit times; in between the run stops once the energy left in the
     model (substrate outside the layers, and rods) is below ``energy_tol`` of its peak.
+
+    With ``block_depth`` H (m) the model is a block: the spacing is trimmed so that H is a whole
+    number of cells, the last row is the free far face (no absorbing layer below), and the box
+    is widened by H tan(72 deg) (the far-face map's window, docs/physics.md section 14) on
+    both sides so that the converted beams reach the far face outside the side layers; the
+    far face is recorded over that window (``i_far0 .. i_far1``).
     """
     q = QUALITY[quality]
     ppw = q["ppw"] if ppw is None else ppw
     n_pml = q["n_pml"] if n_pml is None else n_pml
+    if block_depth is not None:
+        n_pml *= SPONGE_WIDTH
     dur = q["dur"] if duration_factor is None else duration_factor
     f_lo, f_hi = band
     cr = rayleigh_speed(medium.cl, medium.ct)
     lam_lo, lam_hi = cr / f_lo, cr / f_hi
     h = min(lam_hi / ppw, min_diameter / q["fp_cells"])
+    if block_depth is not None:
+        h = float(block_depth) / math.ceil(float(block_depth) / h)
     depth = 1.5 * lam_lo
     j_bottom = int(math.ceil(depth / h))
     nz = j_bottom + 6 + n_pml
     gap = 0.25 * lam_lo + 3 * h
     i_source = n_pml + int(math.ceil(0.3 * lam_lo / h))
+    reach = 0
+    if block_depth is not None:
+        nz = int(round(float(block_depth) / h)) + 1
+        reach = int(math.ceil(float(block_depth) * math.tan(math.radians(72.0)) / h)) + 2
+        if j_bottom + 6 >= nz:
+            raise ValueError(f"block_depth: {block_depth:.4g} m is too thin for the receiver box "
+                             f"(1.5 Rayleigh wavelengths, {depth:.4g} m)")
     i_left = i_source + int(math.ceil(3.0 * depth / h))
     x_array = (i_left * h) + gap
+    if block_depth is not None:  # the far face before the row lies inside, clear of the layer
+        shift = max(0, n_pml + 4 + reach - int(x_array / h))
+        i_source, i_left, x_array = i_source + shift, i_left + shift, x_array + shift * h
     i_right = int(math.ceil((x_array + length + gap) / h))
     nx = i_right + int(math.ceil(0.3 * lam_lo / h)) + n_pml
+    i_far0 = i_far1 = 0
+    if block_depth is not None:
+        i_far0 = int(x_array / h) - reach
+        i_far1 = int(math.ceil((x_array + length) / h)) + reach
+        nx = max(nx, i_far1 + 4 + n_pml)
     # Kelvin-Voigt substrate (tau = eta / w_centre): stable for dt^2 + 2 tau dt <= dt0^2
     tau = substrate_tau(medium, band)
     dt0 = courant * h / medium.cl
@@ -399,7 +448,8 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     j_shallow = max(2, int(round(0.05 * lam_lo / h)))
     return Grid(h=h, dt=dt, nx=nx, nz=nz, n_pml=n_pml, n_steps=n_steps, min_steps=min_steps,
                 sample_every=sample_every, i_source=i_source, i_left=i_left, i_right=i_right,
-                j_bottom=j_bottom, j_shallow=j_shallow, x_array=x_array)
+                j_bottom=j_bottom, j_shallow=j_shallow, x_array=x_array,
+                free_bottom=block_depth is not None, i_far0=i_far0, i_far1=i_far1)
 
 
 # --------------------------------------------------------------------------------------------
@@ -491,10 +541,16 @@ def _pml_profiles(grid: Grid, medium: Medium, band: tuple[float, float]) -> tupl
     def dist_x(x: np.ndarray) -> np.ndarray:
         return np.maximum(thick - x, x - (x_max - thick))
 
+    if grid.free_bottom:  # a block: side sponges instead (see sponge_profile)
+        zero, one = np.zeros(grid.nx), np.ones(grid.nx)
+        zz, oz = np.zeros(grid.nz), np.ones(grid.nz)
+        return zero, one, zero.copy(), one.copy(), zz, oz, zz.copy(), oz.copy()
     ax_i, bx_i = cpml_profile(dist_x(xi), thick, medium.cl, dt, f_c)
     ax_h, bx_h = cpml_profile(dist_x(xh), thick, medium.cl, dt, f_c)
-    az_i, bz_i = cpml_profile(zi - (z_max - thick), thick, medium.cl, dt, f_c)
-    az_h, bz_h = cpml_profile(zh - (z_max - thick), thick, medium.cl, dt, f_c)
+    # a block's far face is free: no layer below (distance into it never positive)
+    z_layer = (z_max + thick) if grid.free_bottom else (z_max - thick)
+    az_i, bz_i = cpml_profile(zi - z_layer, thick, medium.cl, dt, f_c)
+    az_h, bz_h = cpml_profile(zh - z_layer, thick, medium.cl, dt, f_c)
     return ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h
 
 
@@ -640,6 +696,7 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
     else:
         ra_k = ra
     psi_k = np.zeros((8, nx, nz))
+    sponge = sponge_profile(grid) if grid.free_bottom else np.zeros(0)
     tau = substrate_tau(medium, band)
     sel = np.zeros((3, nx, nz)) if tau > 0 else np.zeros((3, 1, 1))
     snap_every = m * max(1, snap_every // m) if snap_every else 0
@@ -650,7 +707,7 @@ def simulate(medium: Medium, grid: Grid, band: tuple[float, float], freq: np.nda
                    ax_h, bx_h, ax_i, bx_i, az_i, bz_i, az_h, bz_h, psi_k, src, grid.i_source,
                    tz_new, ra_k["rod_v"], ra_k["rod_c"], ra_k["rod_e"], ra_k["n_seg"],
                    ra_k["ds"], ra_k["m_node"], ra_k["m_tip"], ra_k["ea"], ra_k["visc"],
-                   ra_k["fp_start"], ra_k["fp_count"], sel, tau)
+                   ra_k["fp_start"], ra_k["fp_count"], sel, tau, grid.free_bottom, sponge)
         t_new = n1 * dt
         if snap_every and n1 % snap_every == 0 and len(snaps) < n_snapshots:
             snaps.append(uz.astype(np.float32))
@@ -723,12 +780,15 @@ def receiver_blocks(grid: Grid) -> dict[str, tuple[int, int, int, int]]:
     side is what the interpolation to common nodes needs.
     """
     il, ir, jb, js = grid.i_left, grid.i_right, grid.j_bottom, grid.j_shallow
-    return {
+    out = {
         "left": (il - 1, il + 2, 0, jb + 2),
         "right": (ir - 1, ir + 2, 0, jb + 2),
         "top": (il - 1, ir + 2, 0, js + 2),
         "bottom": (il - 1, ir + 2, jb - 1, jb + 2),
     }
+    if grid.free_bottom:  # a block: the far face and the rows just above it
+        out["far"] = (grid.i_far0 - 1, grid.i_far1 + 1, grid.nz - 6, grid.nz)
+    return out
 
 
 def _rod_energy(ra: dict | None) -> float:
@@ -744,7 +804,7 @@ def _rod_energy(ra: dict | None) -> float:
 def _grid_energy(vx, vz, sxx, szz, sxz, medium: Medium, grid: Grid) -> float:
     """Kinetic + strain energy (J/m) in the physical part of the grid (outside the CPML)."""
     p = grid.n_pml
-    sl = (slice(p, grid.nx - p), slice(0, grid.nz - p))
+    sl = (slice(p, grid.nx - p), slice(0, grid.nz - (0 if grid.free_bottom else p)))
     mu, lam = medium.mu, medium.lam
     kin = 0.5 * medium.rho * (np.sum(vx[sl] ** 2) + np.sum(vz[sl] ** 2))
     a, c, s = sxx[sl], szz[sl], sxz[sl]
