@@ -14,7 +14,11 @@ surrogate's line model beside it. Writes
   ``caution`` for site-scale studies;
 - ``DIR/comparison.png`` (full-wave, exact row model and WKB trace per channel, 3-D lattice
   exact model dotted), ``DIR/snapshots.png`` (displacement field at four moments) and
-  ``DIR/animation.gif`` (when Pillow is available).
+  ``DIR/animation.gif`` (when Pillow is available);
+- with ``substrate.thickness`` (a block): a second pair of runs on the block with a free far
+  face (optgrade.fullwave._block), verify.json ``far_face`` (arrival positions and fractions
+  at the far face against the exact model's map, and the measured downgoing flux with the
+  later passes), ``DIR/far_face_check.png`` and ``DIR/block_snapshots.png`` (the whole block).
 
 Every run checks itself (energy balance, closure, power into lossless rods, energy left at the
 end; bounds in ``optgrade.fullwave._solver.CHECK_BOUNDS``). A run outside a bound is reported
@@ -157,6 +161,9 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
         else:
             say("[yellow]note[/]: no GIF writer (Pillow) available; animation skipped")
 
+    if getattr(study.substrate, "thickness", None) is not None:
+        n_files += _block_check(study, layout, out, payload, is_fast, say)
+        write_json(out / "verify.json", payload)
     say(f"[bold]{escape(study.meta.name)}[/]: {layout.x.size} resonators, {ver.frequency.size} "
         f"frequencies, grid {grid.nx} x {grid.nz} (h = {grid.h * 1e3:.3g} mm), "
         f"{ver.info['n_steps']} steps in {ver.info['seconds']:.1f} s")
@@ -174,6 +181,56 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     if ver.status != "ok":
         say(f"[bold red]FAILED[/]: {ver.reason}")
     return payload
+
+
+def _block_check(study: Study, layout: Layout, out: Path, payload: dict, is_fast: bool,
+                 say: Any) -> int:
+    """The far face of a block (substrate.thickness): the block run pair, verify.json
+    ``far_face``, far_face_check.png and block_snapshots.png. Returns the figures written."""
+    import matplotlib.pyplot as plt
+    from rich.markup import escape
+
+    from optgrade.fullwave._block import block_check
+    from optgrade.fullwave._solver import UnstableRun, _plain_progress, rods_of
+    from optgrade.plotting import fullwave as pf
+    from optgrade.units import format_eng
+
+    say(f"block: the layout on a {format_eng(study.substrate.thickness, 'm')} block with a free "
+        "far face (with resonators and bare) ...")
+    try:
+        check = block_check(study, layout, quality="fast" if is_fast else "normal",
+                            progress=_plain_progress())
+    except UnstableRun as exc:
+        payload["far_face"] = {"status": "failed", "reason": str(exc)}
+        say(f"[bold red]block run FAILED[/]: {escape(str(exc))}")
+        return 0
+    agree = check.agreement
+    payload["far_face"] = {"status": "ok", **agree}
+    word = "within" if agree["is_within"] else "OUTSIDE"
+    say(f"[bold]far face[/] (block {format_eng(study.substrate.thickness, 'm')}): first arrival "
+        f"against the prediction {word} the limits: arrival off by up to "
+        f"{agree['worst_arrival_difference_shear_wavelengths']:.2f} shear wavelengths (limit 1), "
+        f"fraction by up to {agree['worst_fraction_difference']:.2f} (limit 0.1)")
+    say(f"  all downgoing waves at the far face (first arrival and later passes): band mean "
+        f"{agree['band_mean_downgoing_measured']:.2f} of the incident power, first arrival "
+        f"{agree['band_mean_first_arrival']:.2f}; {escape(agree['leaves_out'])}")
+    fig = plt.figure(figsize=(14, 5.2), layout="constrained")
+    pf.plot_far_face_check(fig, check)
+    fig.suptitle(f"{study.meta.name}: far face of the {format_eng(study.substrate.thickness, 'm')}"
+                 " block, full-wave against the prediction")
+    save_figure(fig, out / "far_face_check.png")
+    plt.close(fig)
+    rods = rods_of(study, layout)
+    grid = check.grid
+    aspect = (grid.nz * grid.h + 1.15 * float(np.max(rods.height))) / (grid.nx * grid.h)
+    fig = plt.figure(figsize=(11, min(14.0, 0.7 + 4 * (9.6 * aspect + 0.42))),
+                     layout="constrained")
+    pf.plot_snapshots(fig, check.run.snapshots, check.run.snapshot_times, grid, rods)
+    fig.suptitle(f"the whole {format_eng(study.substrate.thickness, 'm')} block (free far face "
+                 "at the bottom; side layers grey)")
+    save_figure(fig, out / "block_snapshots.png")
+    plt.close(fig)
+    return 2
 
 
 def _verdict_of(study: Study, layout: Layout, ver: Any) -> Any:

@@ -42,7 +42,7 @@ if TYPE_CHECKING:  # pragma: no cover
     from optgrade.layout import Layout
     from optgrade.study import Study
 
-__all__ = ["BlockCheck", "block_check", "downgoing_flux"]
+__all__ = ["BlockCheck", "block_check", "downgoing_flux", "plane_wave_amplitudes"]
 
 #: Channels a far-face comparison is made for: at least this fraction of the incident power.
 MIN_FRACTION = 0.05
@@ -79,19 +79,18 @@ def _moments(flux: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return tot, mean
 
 
-def downgoing_flux(ux, uz, sxz, szz, freq, medium: Medium, h: float,
-                   taper: float = 0.1) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Downgoing power flux per channel and of the whole downgoing field on a horizontal line.
+def plane_wave_amplitudes(ux, uz, sxz, szz, freq, medium: Medium, h: float,
+                          taper: float = 0.1) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Amplitudes of the four plane waves that make up a field on a horizontal line.
 
-    ``ux, uz`` displacements (m), ``sxz, szz`` stresses (Pa), phasors of shape (n_f, n_x) on
-    nodes h apart. Per wavenumber the state (u_x, u_z, s_xz, s_zz) is the sum of four plane
-    waves, phi = A exp(i (k_x x +- nu_L z)) and psi = B exp(i (k_x x +- nu_T z)) with
-    u = grad phi + curl(psi y) (the amplitudes of docs/physics.md section 14); the system is
-    solved for the four amplitudes and the downgoing propagating ones are transformed back.
-    Flux convention of the solver's receiver lines: -Re(s_xz conj(v_x) + s_zz conj(v_z))
-    (positive downwards), so it divides by the same incident power. Returns (per channel
-    (n_f, n_x), whole downgoing field (n_f, n_x)); the taper (flat-top Tukey, 5 % each end)
-    is divided back out where it is not small.
+    ``ux, uz`` displacements (m), ``sxz, szz`` stresses (Pa), phasors (n_f, n_x) on nodes h
+    apart, transformed along x (zero-padded, flat-top Tukey taper: 5 % at each end). Per
+    wavenumber k_x the state (u_x, u_z, s_xz, s_zz) is the sum of phi = A exp(i (k_x x +- nu_L
+    z)) and psi = B exp(i (k_x x +- nu_T z)) with u = grad phi + curl(psi y) (the amplitudes of
+    docs/physics.md section 14; + downgoing), nu = sqrt(k^2 - k_x^2) (principal: evanescent
+    waves decay in their direction). Returns ``kx`` (n_pad,), the amplitudes (n_f, n_pad, 4) in
+    the order P down, S down, P up, S up (zero at the cone edges, where the system is
+    singular), and the column vectors (n_f, n_pad, 4, 4) of each wave's state per amplitude.
     """
     from optgrade.fullwave._solver import tukey_window
 
@@ -101,9 +100,8 @@ def downgoing_flux(ux, uz, sxz, szz, freq, medium: Medium, h: float,
     kx = 2 * math.pi * np.fft.fftfreq(n_pad, h)
     state = np.stack([np.fft.fft(a * win, n_pad, axis=-1) for a in (ux, uz, sxz, szz)], axis=-1)
     lam, mu = medium.lam, medium.mu
-    out = {c: np.zeros((n_f, n)) for c in RADIATING}
-    whole = np.zeros((n_f, n))
-    inv_win = np.where(win > 0.2, 1.0 / np.where(win > 0.2, win, 1.0), 0.0)
+    amps = np.zeros((n_f, n_pad, 4), dtype=complex)
+    mats = np.zeros((n_f, n_pad, 4, 4), dtype=complex)
     for i, f in enumerate(np.asarray(freq, float)):
         w = 2 * math.pi * f
         kl, kt = w / medium.cl, w / medium.ct
@@ -115,14 +113,37 @@ def downgoing_flux(ux, uz, sxz, szz, freq, medium: Medium, h: float,
         s_up = np.stack([1j * nt, 1j * kx, mu * (nt**2 - kx**2), 2 * mu * kx * nt], -1)
         mat = np.stack([p_dn, s_dn, p_up, s_up], axis=-1)  # (n_pad, 4 components, 4 waves)
         ok = (np.abs(np.abs(kx) - kl) > 1e-6 * kl) & (np.abs(np.abs(kx) - kt) > 1e-6 * kt)
-        amp = np.zeros((n_pad, 4), dtype=complex)
-        amp[ok] = np.linalg.solve(mat[ok], state[i][ok][..., None])[..., 0]
-        total_state = np.zeros((4, n_pad), dtype=complex)
-        for wave, vec, k_c in ((0, p_dn, kl), (1, s_dn, kt)):
+        amps[i, ok] = np.linalg.solve(mat[ok], state[i][ok][..., None])[..., 0]
+        mats[i] = mat
+    return kx, amps, mats
+
+
+def downgoing_flux(ux, uz, sxz, szz, freq, medium: Medium, h: float,
+                   taper: float = 0.1) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Downgoing power flux per channel and of the whole downgoing field on a horizontal line
+    (`plane_wave_amplitudes`; the downgoing propagating waves transformed back, forward /
+    backward by the sign of k_x). Flux convention of the solver's receiver lines:
+    -Re(s_xz conj(v_x) + s_zz conj(v_z)) (positive downwards), so it divides by the same
+    incident power. Returns (per channel (n_f, n_x), whole downgoing field (n_f, n_x)); the
+    taper is divided back out where it is above 0.2."""
+    from optgrade.fullwave._solver import tukey_window
+
+    n_f, n = ux.shape
+    kx, amps, mats = plane_wave_amplitudes(ux, uz, sxz, szz, freq, medium, h, taper)
+    win = tukey_window(n, taper)
+    inv_win = np.where(win > 0.2, 1.0 / np.where(win > 0.2, win, 1.0), 0.0)
+    out = {c: np.zeros((n_f, n)) for c in RADIATING}
+    whole = np.zeros((n_f, n))
+    for i, f in enumerate(np.asarray(freq, float)):
+        w = 2 * math.pi * f
+        total_state = np.zeros((4, kx.size), dtype=complex)
+        for wave, c_speed in ((0, medium.cl), (1, medium.ct)):
+            k_c = w / c_speed
+            vec = mats[i, :, :, wave]
             for sign, c in ((1, "forward"), (-1, "backward")):
                 name = f"{c}_{'compressional' if wave == 0 else 'shear'}"
-                keep = ok & (sign * kx > 0) & (np.abs(kx) < k_c)
-                spec = np.where(keep[:, None], amp[:, wave:wave + 1] * vec, 0.0).T  # (4, n_pad)
+                keep = (sign * kx > 0) & (np.abs(kx) < k_c)
+                spec = np.where(keep[:, None], amps[i, :, wave:wave + 1] * vec, 0.0).T
                 total_state += spec
                 out[name][i] = _line_flux(spec, w, n) * inv_win**2
         whole[i] = _line_flux(total_state, w, n) * inv_win**2

@@ -102,7 +102,10 @@ def _draw_frame(ax: Any, field: np.ndarray, grid: Any, rods: Any, vmax: float) -
     ext = _extent(grid)
     ax.axvspan(ext[0], ext[0] + p, color="0.85", alpha=0.6, lw=0)
     ax.axvspan(ext[1] - p, ext[1], color="0.85", alpha=0.6, lw=0)
-    ax.axhspan(ext[2] - p, ext[2], color="0.85", alpha=0.6, lw=0)
+    if getattr(grid, "free_bottom", False):  # a block: the far face is free (drawn as a line)
+        ax.axhline(ext[2], color="k", lw=1.2)
+    else:
+        ax.axhspan(ext[2] - p, ext[2], color="0.85", alpha=0.6, lw=0)
     xl = u * (grid.i_left * grid.h - grid.x_array)
     xr = u * (grid.i_right * grid.h - grid.x_array)
     zb = u * grid.j_bottom * grid.h
@@ -131,6 +134,40 @@ def plot_snapshots(fig: Any, snapshots: np.ndarray, times: np.ndarray, grid: Any
     np.atleast_1d(axes)[-1].set_xlabel(
         f"x from the first resonator ({_len_unit(grid.nx * grid.h)[1]})")
     fig.colorbar(im, ax=axes, shrink=0.6, label="u_z (arbitrary units)")
+
+
+def plot_far_face_check(fig: Any, check: Any) -> None:
+    """The block run's far face against the prediction: three panels of frequency against
+    far-face position, each the flux of the whole bulk field scaled to its largest value per
+    frequency (predicted by the exact row model; first arrival from the block run's own rod
+    forces; measured downgoing flux just above the far face, with the later passes), the
+    predicted arrival of each channel carrying at least 5 % drawn over all three."""
+    from optgrade.channels import RADIATING
+    from optgrade.plotting.trace import CHANNEL_COLOURS, CHANNEL_LABELS, frequency_unit
+
+    f = np.asarray(check.frequency, float)
+    fs, funit = frequency_unit(float(f.max()))
+    u, lunit = _len_unit(float(np.ptp(check.x)))
+    panels = (("predicted (exact row model, half-space, first arrival)",
+               check.predicted.flux_total),
+              ("first arrival from the block run's rod forces", check.first.flux_total),
+              ("measured: all downgoing waves just above the far face", check.measured_total))
+    axes = fig.subplots(1, 3, sharey=True)
+    for ax, (title, flux) in zip(axes, panels, strict=True):
+        peak = np.max(np.abs(flux), axis=1, keepdims=True)
+        img = np.where(peak > 0, np.clip(flux, 0, None) / np.where(peak > 0, peak, 1.0), 0.0)
+        ax.pcolormesh(u * check.x, f / fs, img, cmap="Greys", vmin=0, vmax=1.3,
+                      shading="nearest", rasterized=True)
+        for c in RADIATING:
+            frac = np.asarray(check.predicted.reaching[c], float)
+            if float(np.mean(frac)) < 0.05:
+                continue
+            ax.plot(u * np.asarray(check.predicted.arrival[c], float), f / fs,
+                    color=CHANNEL_COLOURS[c], lw=1.2, label=CHANNEL_LABELS[c] + " (predicted)")
+        ax.set_title(title, fontsize=9)
+        ax.set_xlabel(f"far-face position in the row's frame ({lunit})")
+    axes[0].set_ylabel(f"frequency ({funit})")
+    axes[0].legend(loc="upper right", fontsize=7, framealpha=0.85)
 
 
 def write_animation(path: Any, snapshots: np.ndarray, times: np.ndarray, grid: Any,
