@@ -246,6 +246,14 @@ def check_verify_plan(study: Study, layout: Layout, is_fast: bool) -> dict:
                      quality=quality, rods=rods_of(study, layout))
     cells = float(grid.nx) * float(grid.nz)
     updates = 2.0 * cells * grid.n_steps  # the run with the rods and the bare reference
+    thickness = getattr(study.substrate, "thickness", None)
+    if thickness is not None:  # a block: a second pair of runs (runs one at a time)
+        block = plan_grid(medium_of(study), band, float(layout.length),
+                          float(np.min(layout.diameter)), quality=quality,
+                          rods=rods_of(study, layout), block_depth=float(thickness))
+        block_cells = float(block.nx) * float(block.nz)
+        updates += 2.0 * block_cells * block.n_steps
+        cells = max(cells, block_cells)
     # both runs, measured with tracemalloc on the bench 30-rod fast grid (31,808 cells): 29 MB
     # without snapshots at 16 frequencies, 49 MB with the 40 snapshots verify keeps, 201 MB at
     # 128 frequencies; taken as per cell 930 B + 16 B per snapshot + 45 B per frequency
@@ -256,7 +264,8 @@ def check_verify_plan(study: Study, layout: Layout, is_fast: bool) -> dict:
                     f"needs about {_gib(need)}, more than half of this machine's memory")
     if updates > MAX_CELL_UPDATES:
         msgs.append(f"--layout: the {quality} full-wave check needs {updates:.3g} cell updates "
-                    f"({grid.nx} x {grid.nz} cells, {grid.n_steps} steps, two runs), more than "
+                    f"({grid.nx} x {grid.nz} cells, {grid.n_steps} steps, two runs"
+                    f"{', and two on the block' if thickness is not None else ''}), more than "
                     f"the limit {MAX_CELL_UPDATES:.0e} (about 2 hours); "
                     + ("shorten the row" if is_fast else "try --fast or shorten the row"))
     if msgs:
