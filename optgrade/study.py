@@ -952,6 +952,12 @@ def study_from_dict(data: Mapping[str, Any], *, source: str = "<study>",
 #: A block thinner than this many Rayleigh wavelengths at the lowest band frequency is refused
 #: (thin-plate regime, not modelled); below BLOCK_WARN_WAVELENGTHS it is warned about.
 BLOCK_MIN_WAVELENGTHS, BLOCK_WARN_WAVELENGTHS = 2.0, 4.0
+#: A block thicker than this many Rayleigh wavelengths at the band top is refused: for the row it
+#: is a half-space, and the far-face map's work grows with the thickness in wavelengths.
+BLOCK_MAX_WAVELENGTHS = 100.0
+#: A far-face zone must lie within H tan(ZONE_MAX_ANGLE_DEG) of the longest row: beyond, only
+#: grazing waves arrive (and the map's work grows with the distance).
+ZONE_MAX_ANGLE_DEG = 85.0
 
 
 def block_wavelengths(study: Study) -> float | None:
@@ -989,8 +995,22 @@ def _check_block(study: Study, out: _Collector) -> None:
             f"{BLOCK_MIN_WAVELENGTHS:g} the block is a plate whose waves are not those of a "
             f"half-space (not modelled): use at least {_eng(BLOCK_MIN_WAVELENGTHS * lam, 'm')} "
             "or raise the band"))
+    lam_top = float(study.substrate.cr) / float(study.goal.band[1])
+    if h > BLOCK_MAX_WAVELENGTHS * lam_top:
+        out.add(("substrate", "thickness"), (
+            f"{_eng(h, 'm')} is {h / lam_top:.0f} Rayleigh wavelengths at the band top (above "
+            f"{BLOCK_MAX_WAVELENGTHS:g}): for the row such a block is a half-space and the "
+            "far-face map would take very long; omit thickness"))
     if zone is not None and zone.x_range[0] >= zone.x_range[1]:
         out.add(("goal", "far_face", "x_range"), "zone min must be below max")
+    elif zone is not None:
+        reach = h * math.tan(math.radians(ZONE_MAX_ANGLE_DEG))
+        lo, hi = -reach, float(study.layout.max_length) + reach
+        if zone.x_range[0] < lo or zone.x_range[1] > hi:
+            out.add(("goal", "far_face", "x_range"), (
+                f"the zone must lie within {_eng(lo, 'm')} .. {_eng(hi, 'm')} (the longest row "
+                f"widened by thickness x tan {ZONE_MAX_ANGLE_DEG:g} deg): beyond it only grazing "
+                "waves arrive"))
     if uses_goal and zone is None:
         out.add(("goal", "far_face"), "the far_face goal needs a [goal.far_face] zone "
                 "(x_range and mode)")

@@ -264,7 +264,7 @@ def test_the_wkb_march_gives_the_ray_estimate_and_the_goal_counts_rays():
     from optgrade.objectives import get
     from optgrade.propagation import propagation_model
 
-    study = _row_study("lattice", zone=("-400 mm", "2000 mm", "target"))
+    study = _row_study("lattice", zone=("-600 mm", "1200 mm", "target"))
     lay = read_table(ROOT / "studies" / "layouts" / "bench_backward_shear.csv")
     tr = propagation_model(study, "wkb").trace(lay)
     assert tr.far_face.method == "ray" and tr.far_face.flux is None
