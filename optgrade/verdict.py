@@ -201,10 +201,13 @@ def far_face_lines(study: Study, trace: Trace) -> list[str]:
         mean = float(np.nanmean(inside)) if np.isfinite(inside).any() else 0.0
         ok = mean >= 0.5 if zone.mode == "target" else mean <= 0.5
         word = "inside" if zone.mode == "target" else "inside the avoided"
+        from optgrade.plotting.trace import length_unit
+
+        ls, lunit = length_unit(max(abs(float(v)) for v in zone.x_range))
         lines.append(
             f"  {'ZONE OK' if ok else 'ZONE NOT OK'}: {mean:.0%} of the converted power arrives "
-            f"{word} zone {format_eng(zone.x_range[0], 'm')} .. "
-            f"{format_eng(zone.x_range[1], 'm')} (band mean)")
+            f"{word} zone {zone.x_range[0] / ls:.4g} .. {zone.x_range[1] / ls:.4g} {lunit} "
+            "(band mean)")
     for c in RADIATING:
         frac = np.asarray(trace.fractions[c], float)
         if float(np.mean(frac)) < 0.01:
