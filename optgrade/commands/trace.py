@@ -132,12 +132,9 @@ def run_trace(study: Study, layout: Layout, out: Path, *, model: str | None = No
     is_wkb = issubclass(PROPAGATION_MODELS.get(name), WKBMarch)
     freq = study_frequencies(study)
     modes, wkb = _wkb_picture(study, layout, freq, model, console)
-    if study.substrate.thickness is not None and wkb.far_face is None:
-        from dataclasses import replace
+    from optgrade.propagation._farface import with_ray_estimate
 
-        from optgrade.propagation._farface import ray_only
-
-        wkb = replace(wkb, far_face=ray_only(wkb, float(study.substrate.thickness)))
+    wkb = with_ray_estimate(wkb, study)  # the bare march has no far-face record
     if is_wkb:
         tr, shares = wkb, None
     else:

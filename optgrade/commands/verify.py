@@ -144,14 +144,7 @@ def run_verify(study: Study, layout: Layout, out: Path, *, is_fast: bool = False
     plt.close(fig)
 
     run_rec, grid = ver.run, ver.grid
-    aspect = (grid.nz * grid.h + 1.15 * float(np.max(rods.height))) / (grid.nx * grid.h)
-    # each panel: the image at the width the colour bar leaves (about 9.2 in), its title and
-    # ticks (0.55 in); the sheet no taller than that, so no empty bands between the frames
-    fig = plt.figure(figsize=(11, min(14.0, 0.7 + 4 * (9.6 * aspect + 0.42))),
-                     layout="constrained")
-    pf.plot_snapshots(fig, run_rec.snapshots, run_rec.snapshot_times, grid, rods)
-    save_figure(fig, out / "snapshots.png")
-    plt.close(fig)
+    _snapshot_sheet(out / "snapshots.png", run_rec, grid, rods)
     n_files = 3
     if is_animation:
         tmp = out / ".animation.tmp.gif"
@@ -220,17 +213,29 @@ def _block_check(study: Study, layout: Layout, out: Path, payload: dict, is_fast
                  " block, full-wave against the prediction")
     save_figure(fig, out / "far_face_check.png")
     plt.close(fig)
-    rods = rods_of(study, layout)
-    grid = check.grid
+    _snapshot_sheet(out / "block_snapshots.png", check.run, check.grid, rods_of(study, layout),
+                    title=f"the whole {format_eng(study.substrate.thickness, 'm')} block (free far "
+                          "face at the bottom; side layers grey)")
+    return 2
+
+
+def _snapshot_sheet(path: Path, run: Any, grid: Any, rods: Any, title: str | None = None) -> None:
+    """Four displacement snapshots of a run, one above the other (snapshots.png and the
+    block's block_snapshots.png)."""
+    import matplotlib.pyplot as plt
+
+    from optgrade.plotting import fullwave as pf
+
     aspect = (grid.nz * grid.h + 1.15 * float(np.max(rods.height))) / (grid.nx * grid.h)
+    # each panel: the image at the width the colour bar leaves (about 9.2 in), its title and
+    # ticks (0.55 in); the sheet no taller than that, so no empty bands between the frames
     fig = plt.figure(figsize=(11, min(14.0, 0.7 + 4 * (9.6 * aspect + 0.42))),
                      layout="constrained")
-    pf.plot_snapshots(fig, check.run.snapshots, check.run.snapshot_times, grid, rods)
-    fig.suptitle(f"the whole {format_eng(study.substrate.thickness, 'm')} block (free far face "
-                 "at the bottom; side layers grey)")
-    save_figure(fig, out / "block_snapshots.png")
+    pf.plot_snapshots(fig, run.snapshots, run.snapshot_times, grid, rods)
+    if title:
+        fig.suptitle(title)
+    save_figure(fig, path)
     plt.close(fig)
-    return 2
 
 
 def _verdict_of(study: Study, layout: Layout, ver: Any) -> Any:

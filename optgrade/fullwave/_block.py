@@ -71,8 +71,11 @@ class BlockCheck:
 
 
 def _moments(flux: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Fraction crossing (trapezoid) and power-weighted mean position per frequency."""
-    w = np.gradient(x)
+    """Fraction crossing and power-weighted mean position per frequency (trapezoid weights,
+    as `FarFaceMap.reaching` and ``arrival``)."""
+    from optgrade.propagation._farface import _trapezoid_weights
+
+    w = _trapezoid_weights(x)
     tot = flux @ w
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(tot > 1e-12, (flux * x[None, :]) @ w / np.where(tot > 0, tot, 1), np.nan)
@@ -93,6 +96,7 @@ def plane_wave_amplitudes(ux, uz, sxz, szz, freq, medium: Medium, h: float,
     singular), and the column vectors (n_f, n_pad, 4, 4) of each wave's state per amplitude.
     """
     from optgrade.fullwave._solver import tukey_window
+    from optgrade.propagation._farface import plane_wave_state
 
     n_f, n = ux.shape
     n_pad = 1 << int(math.ceil(math.log2(4 * n)))
@@ -107,11 +111,9 @@ def plane_wave_amplitudes(ux, uz, sxz, szz, freq, medium: Medium, h: float,
         kl, kt = w / medium.cl, w / medium.ct
         nl = np.sqrt(kl * kl - kx * kx + 0j)
         nt = np.sqrt(kt * kt - kx * kx + 0j)
-        p_dn = np.stack([1j * kx, 1j * nl, -2 * mu * kx * nl, -(lam * kl**2 + 2 * mu * nl**2)], -1)
-        p_up = np.stack([1j * kx, -1j * nl, 2 * mu * kx * nl, -(lam * kl**2 + 2 * mu * nl**2)], -1)
-        s_dn = np.stack([-1j * nt, 1j * kx, mu * (nt**2 - kx**2), -2 * mu * kx * nt], -1)
-        s_up = np.stack([1j * nt, 1j * kx, mu * (nt**2 - kx**2), 2 * mu * kx * nt], -1)
-        mat = np.stack([p_dn, s_dn, p_up, s_up], axis=-1)  # (n_pad, 4 components, 4 waves)
+        # columns P down, S down, P up, S up: (n_pad, 4 components, 4 waves)
+        mat = np.stack([plane_wave_state(wave, kx, sign * nu, lam, mu, kl).T
+                        for sign in (1, -1) for wave, nu in (("L", nl), ("T", nt))], axis=-1)
         ok = (np.abs(np.abs(kx) - kl) > 1e-6 * kl) & (np.abs(np.abs(kx) - kt) > 1e-6 * kt)
         amps[i, ok] = np.linalg.solve(mat[ok], state[i][ok][..., None])[..., 0]
         mats[i] = mat
@@ -164,7 +166,7 @@ def block_check(study: Study, layout: Layout, *, quality: str = "normal",
     from optgrade.fullwave import _solver as fw
     from optgrade.ground import rayleigh_speed
     from optgrade.propagation._farface import far_face_map
-    from optgrade.propagation._scattering import ScatteringModel
+    from optgrade.propagation._scattering import scattering_trace
 
     depth = float(study.substrate.thickness)
     medium = fw.medium_of(study)
@@ -212,21 +214,15 @@ def block_check(study: Study, layout: Layout, *, quality: str = "normal",
     forces = run.rod_c / u0[:, None]
     first = far_face_map(study.substrate, freq, rods.x, forces, float(study.resonator.diameter),
                          "line", depth, x)
-    exact = ScatteringModel(study, model="line").trace(layout, freq)
-    predicted = far_face_map(study.substrate, freq, np.asarray(layout.x, float),
-                             _exact_forces(study, layout, freq), float(study.resonator.diameter),
-                             "line", depth, x, trace=exact)
+    # one exact solve (its own far-face record is not needed: the map is made on this grid)
+    exact = scattering_trace(study, layout, freq, model="line", per_resonator=False,
+                             far_face_detail=False)
+    predicted = far_face_map(study.substrate, freq, np.asarray(layout.x, float), exact.forces,
+                             float(study.resonator.diameter), "line", depth, x, trace=exact.trace)
     agreement = _agreement(freq, x, measured, measured_total, first, predicted, medium, grid,
                            run, ref)
     return BlockCheck(freq, x, measured, measured_total, first, predicted, np.abs(uz_face),
                       agreement, grid, run, ref)
-
-
-def _exact_forces(study: Study, layout: Layout, freq: np.ndarray) -> np.ndarray:
-    from optgrade.propagation._scattering import scattering_trace
-
-    return scattering_trace(study, layout, freq, model="line", per_resonator=False,
-                            far_face_detail=False).forces
 
 
 def _agreement(freq, x, measured, measured_total, first, predicted, medium, grid, run,
@@ -237,8 +233,8 @@ def _agreement(freq, x, measured, measured_total, first, predicted, medium, grid
     chans: dict[str, Any] = {}
     worst_pos, worst_frac = 0.0, 0.0
     for c in RADIATING:
-        pred_tot, pred_x = _moments(predicted.flux[c], x)
-        first_tot, first_x = _moments(first.flux[c], x)
+        pred_tot, pred_x = predicted.reaching[c], predicted.arrival[c]
+        first_tot, first_x = first.reaching[c], first.arrival[c]
         meas_tot, meas_x = _moments(measured[c], x)
         use = pred_tot >= MIN_FRACTION
         if not use.any():
@@ -259,8 +255,11 @@ def _agreement(freq, x, measured, measured_total, first, predicted, medium, grid
         }
         worst_pos = max(worst_pos, float(np.nanmean(d_first)))
         worst_frac = max(worst_frac, float(np.mean(f_first)))
-    tot_meas = float(np.mean(measured_total @ np.gradient(x)))
-    tot_first = float(np.mean(first.flux_total @ np.gradient(x)))
+    from optgrade.propagation._farface import _trapezoid_weights
+
+    wts = _trapezoid_weights(x)
+    tot_meas = float(np.mean(measured_total @ wts))
+    tot_first = float(np.mean(first.flux_total @ wts))
     return {
         "channels": chans,
         "worst_arrival_difference_shear_wavelengths": worst_pos,

@@ -418,7 +418,10 @@ def plan_grid(medium: Medium, band: tuple[float, float], length: float, min_diam
     reach = 0
     if block_depth is not None:
         nz = int(round(float(block_depth) / h)) + 1
-        reach = int(math.ceil(float(block_depth) * math.tan(math.radians(72.0)) / h)) + 2
+        from optgrade.propagation._farface import WINDOW_ANGLE_DEG
+
+        reach = int(math.ceil(float(block_depth) * math.tan(math.radians(WINDOW_ANGLE_DEG))
+                              / h)) + 2
         if j_bottom + 6 >= nz:
             raise ValueError(f"block_depth: {block_depth:.4g} m is too thin for the receiver box "
                              f"(1.5 Rayleigh wavelengths, {depth:.4g} m)")

@@ -46,8 +46,8 @@ from numba import njit
 
 from optgrade.channels import RADIATING
 
-__all__ = ["FarFaceMap", "face_grid", "far_face_map", "ray_arrivals", "ray_only", "zone_fraction",
-           "zone_grid"]
+__all__ = ["FarFaceMap", "face_grid", "far_face_map", "plane_wave_state", "ray_arrivals",
+           "ray_only", "with_ray_estimate", "zone_fraction", "zone_grid"]
 
 #: Gauss-Legendre order per angle panel, and the largest phase change per panel (rad).
 N_GL = 16
@@ -61,8 +61,20 @@ MAX_POINTS = 1200
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(N_GL)
 #: (wave, direction) of each radiating channel, in the order of RADIATING.
 _WAVE_NAMES = {"T": "shear", "L": "compressional"}
-_PARTS = {"forward_shear": ("T", 1), "forward_compressional": ("L", 1),
-          "backward_shear": ("T", -1), "backward_compressional": ("L", -1)}
+#: channel of each (wave, sign of the horizontal wavenumber)
+_CHANNEL_OF = {("T", 1): "forward_shear", ("L", 1): "forward_compressional",
+               ("T", -1): "backward_shear", ("L", -1): "backward_compressional"}
+
+
+def plane_wave_state(wave: str, xi, nu, lam: float, mu: float, kl: float) -> np.ndarray:
+    """(u_x, u_z, s_xz, s_zz) on a horizontal plane of one plane wave per unit potential
+    amplitude, phi (``wave`` "L") or psi ("T") = exp(i (xi x + nu z)), u = grad phi +
+    curl(psi y); nu > 0 goes down, -nu up. Shape (4, ...) like ``xi``."""
+    xi = np.asarray(xi)
+    nu = np.asarray(nu)
+    if wave == "L":
+        return np.stack([1j * xi, 1j * nu, -2 * mu * xi * nu, -(lam * kl * kl + 2 * mu * nu * nu)])
+    return np.stack([-1j * nu, 1j * xi, mu * (nu * nu - xi * xi), -2 * mu * xi * nu])
 
 
 @dataclass(frozen=True)
@@ -374,8 +386,8 @@ def far_face_map(sub, freq, x_res, forces, diameter: float, model: str, depth: f
     flux_all = np.zeros((n_f, n_x))
     flux_wave = {name: np.zeros((n_f, n_x)) for name in _WAVE_NAMES.values()}
     inside = np.zeros(n_f) if zone is not None else None
-    whole: list = [None] * len(grids)
     for i, w in enumerate(w_all):
+        whole = [np.zeros((4, grid.size), dtype=complex) for _, grid in grids]
         kl, kt = w / cl, w / ct
         p_inc = w / (4.0 * float(np.real(res[i])))
         for wave, k, kc in (("L", kl, w / (cl * root)), ("T", kt, w / (ct * root))):
@@ -401,23 +413,20 @@ def far_face_map(sub, freq, x_res, forces, diameter: float, model: str, depth: f
             down = np.exp(1j * nu_c.real * h - abs(nu_c.imag) * h)
             if wave == "L":
                 amp = -t_spec * (2 * xi2 - kt * kt) / (mu * r)
-                vec = np.stack([1j * xi, 1j * nu, -2 * mu * xi * nu,
-                                -(lam * kl * kl + 2 * mu * nu * nu)])
             else:
                 amp = 2j * xi * al * t_spec / (mu * r)
-                vec = np.stack([-1j * nu, 1j * xi, mu * (nu * nu - xi2), -2 * mu * xi * nu])
+            vec = plane_wave_state(wave, xi, nu, lam, mu, kl)
             coef = vec * (amp * down * jac / (2 * math.pi))[None, :]
             # the whole channel from the spectrum (Parseval): rho w^3 nu |amp|^2 / 2
             dens = 0.5 * rho * w**3 * nu * np.abs(amp * down) ** 2 * jac / (2 * math.pi)
-            fwd = next(n for n, (wv, sg) in _PARTS.items() if wv == wave and sg > 0)
-            bwd = next(n for n, (wv, sg) in _PARTS.items() if wv == wave and sg < 0)
+            fwd, bwd = _CHANNEL_OF[wave, 1], _CHANNEL_OF[wave, -1]
             pos, neg = xi > 0, xi < 0
             total[fwd][i] = float(np.sum(dens[pos])) / p_inc
             total[bwd][i] = float(np.sum(dens[neg])) / p_inc
             for g, (kind, grid) in enumerate(grids):
                 cf = _fields_on(grid, xi[pos], coef[:, pos])
                 cb = _fields_on(grid, xi[neg], coef[:, neg])
-                whole[g] = cf + cb if wave == "L" else whole[g] + cf + cb
+                whole[g] += cf + cb
                 if kind == "map":
                     flux[fwd][i], flux[bwd][i] = _flux(cf, w) / p_inc, _flux(cb, w) / p_inc
                     flux_wave[_WAVE_NAMES[wave]][i] = _flux(cf + cb, w) / p_inc
@@ -447,6 +456,17 @@ def far_face_map(sub, freq, x_res, forces, diameter: float, model: str, depth: f
     return FarFaceMap(h, f, xf, flux if xf is not None else None, arrival, width, reaching,
                       total, ray, "map", zone, inside, flux_all if xf is not None else None,
                       flux_wave if xf is not None else None)
+
+
+def with_ray_estimate(trace, study):
+    """``trace`` with the ray-estimate far-face record when the study has a thickness and the
+    trace has no far-face record yet (a propagation model without forces); else unchanged."""
+    thickness = getattr(study.substrate, "thickness", None)
+    if thickness is None or getattr(trace, "far_face", None) is not None:
+        return trace
+    from dataclasses import replace
+
+    return replace(trace, far_face=ray_only(trace, float(thickness)))
 
 
 def ray_only(trace, depth: float) -> FarFaceMap:

@@ -469,10 +469,6 @@ class WKBMarch(PropagationModel):
         tr = trace(
             layout, self.dispersion, self.frequencies(freq), cr=float(self.study.substrate.cr)
         )
-        if getattr(self.study.substrate, "thickness", None) is not None:
-            from dataclasses import replace
+        from optgrade.propagation._farface import with_ray_estimate
 
-            from optgrade.propagation._farface import ray_only
-
-            tr = replace(tr, far_face=ray_only(tr, float(self.study.substrate.thickness)))
-        return tr
+        return with_ray_estimate(tr, self.study)
